@@ -1,0 +1,65 @@
+"""The ``raytrace`` command line: one subcommand per module in this package.
+
+Each subcommand module defines ``NAME``, ``HELP``, ``add_arguments(parser)`` and
+``run(args) -> int``. Errors caused by the user's input (InputError) print one
+line and exit with status 2; anything else is a bug: exit status 1 with a
+pointer to report it.
+"""
+
+import argparse
+import sys
+from importlib import import_module
+
+from .. import __version__
+from ..errors import InputError
+
+# Subcommand modules, in the order of the data flow.
+_SUBCOMMANDS = ("background",)
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(
+        prog="raytrace",
+        description=(
+            "Monte Carlo sightlines through electron-density boxes: resonant photon to "
+            "dark-photon conversion, its spread between sightlines, sky maps and CMB limits."
+        ),
+    )
+    parser.add_argument("--version", action="version", version=f"raytrace {__version__}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for module_name in _SUBCOMMANDS:
+        module = import_module(f".{module_name}", __name__)
+        sub = commands.add_parser(module.NAME, help=module.HELP, description=module.HELP)
+        module.add_arguments(sub)
+        sub.set_defaults(_run=module.run)
+    return parser
+
+
+def main(argv=None):
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "_run", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except InputError as error:
+        print(f"raytrace {args.command}: error: {error}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"raytrace {args.command}: interrupted", file=sys.stderr)
+        return 130
+    except Exception as error:  # a bug, not the user's fault
+        import traceback
+
+        traceback.print_exc()
+        print(
+            f"raytrace {args.command}: internal error ({type(error).__name__}: {error}). "
+            "This is a bug in raytrace; please report it with the command and the traceback above.",
+            file=sys.stderr,
+        )
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,68 @@
+"""Resonant photon -> dark-photon conversion at level crossings (PHYSICS.md section 2).
+
+In: the dark-photon mass m, the mixing epsilon, the photon energy and the rate
+d ln m_gamma^2 / dt at each crossing. Out: the Landau-Zener exponent, the
+conversion probability of one crossing and of many incoherent crossings.
+
+A crossing's probability factorises as p = epsilon^2 K / omega_0 with the
+kernel K = pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) (eV), so one ray trace
+serves every epsilon and every observed photon energy omega_0.
+"""
+
+import numpy as np
+
+from .errors import InputError
+
+
+def crossing_kernel(mass_eV, z_crossing, dln_m2_dt_eV):
+    """K = pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) in eV (rate in eV, i.e. hbar/s)."""
+    mass = np.asarray(mass_eV, dtype=float)
+    rate = np.abs(np.asarray(dln_m2_dt_eV, dtype=float))
+    return np.pi * mass**2 / ((1.0 + np.asarray(z_crossing, dtype=float)) * rate)
+
+
+def landau_zener_exponent(epsilon, mass_eV, omega_eV, dln_m2_dt_eV):
+    """gamma = pi epsilon^2 m^2 / (omega |d ln m_gamma^2/dt|) (Landau 1932; Zener 1932)."""
+    rate = np.abs(np.asarray(dln_m2_dt_eV, dtype=float))
+    return np.pi * np.asarray(epsilon, float) ** 2 * np.asarray(mass_eV, float) ** 2 / (
+        np.asarray(omega_eV, float) * rate
+    )
+
+
+def crossing_probability(gamma, saturate=False):
+    """Conversion probability of one crossing: gamma (linear) or 1 - exp(-gamma)."""
+    gamma = np.asarray(gamma, dtype=float)
+    if np.any(gamma < 0) or np.any(~np.isfinite(gamma)):
+        raise InputError("gamma: expected finite values >= 0")
+    return -np.expm1(-gamma) if saturate else gamma
+
+
+def combine_crossings(probabilities, saturate=False, axis=-1):
+    """Total conversion probability of incoherent crossings along ``axis``.
+
+    Linear: P = sum p_i (valid while P << 1). Saturating: P = (1 - prod(1 - 2 p_i)) / 2,
+    the incoherent composition of two-level steps with random phases.
+    """
+    p = np.asarray(probabilities, dtype=float)
+    if saturate:
+        return 0.5 * (1.0 - np.prod(1.0 - 2.0 * p, axis=axis))
+    return np.sum(p, axis=axis)
+
+
+def probability_from_kernel(kernel_eV, epsilon, omega0_eV, saturate=False):
+    """P = epsilon^2 K / omega_0 from a summed kernel K (eV) and the observed energy omega_0 (eV).
+
+    With ``saturate=True`` the many-small-crossings limit of the incoherent
+    composition is used, P = (1 - exp(-2 epsilon^2 K / omega_0)) / 2; it is exact
+    where each crossing is small, which is what a summed kernel can support.
+    """
+    epsilon = np.asarray(epsilon, dtype=float)
+    omega0 = np.asarray(omega0_eV, dtype=float)
+    if np.any(epsilon < 0) or np.any(~np.isfinite(epsilon)):
+        raise InputError("epsilon: expected finite values >= 0")
+    if np.any(omega0 <= 0) or np.any(~np.isfinite(omega0)):
+        raise InputError("omega0_eV: expected positive photon energies in eV")
+    linear = epsilon**2 * np.asarray(kernel_eV, dtype=float) / omega0
+    if saturate:
+        return -0.5 * np.expm1(-2.0 * linear)
+    return linear

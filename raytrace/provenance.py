@@ -1,0 +1,73 @@
+"""Provenance and safe writing of outputs.
+
+In: output paths, input files, run parameters. Out: package versions, input
+checksums, and atomic writes (a temporary file renamed into place), so that a
+crash never leaves a half-written result and nothing existing is overwritten
+unless asked.
+"""
+
+import hashlib
+import json
+import os
+import platform
+import tempfile
+from contextlib import contextmanager
+from importlib import metadata
+from pathlib import Path
+
+from .errors import InputError
+
+_PACKAGES = ("raytrace", "numpy", "scipy", "numba", "h5py", "astropy", "camb", "healpy", "joblib")
+
+
+def package_versions():
+    """Versions of Python and of the packages a result depends on."""
+    versions = {"python": platform.python_version()}
+    for name in _PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions
+
+
+def file_checksum(path, chunk_bytes=1 << 22):
+    """SHA-256 of a file's bytes, as 'sha256:<hex>'."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(chunk_bytes), b""):
+            digest.update(chunk)
+    return "sha256:" + digest.hexdigest()
+
+
+def provenance_json(**fields):
+    """Fields plus package versions, as one JSON string to store as an attribute."""
+    return json.dumps({**fields, "versions": package_versions()}, sort_keys=True, default=str)
+
+
+def check_writable(path, overwrite):
+    """Refuse to replace an existing output unless ``overwrite`` is set."""
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise InputError(f"{path}: output exists; pass --overwrite (overwrite=True) to replace it")
+    if not path.parent.exists():
+        raise InputError(f"{path}: the folder {path.parent} does not exist")
+
+
+@contextmanager
+def atomic_output(path, overwrite=False):
+    """Yield a temporary path beside ``path``; rename it onto ``path`` on success.
+
+    On any exception the temporary file is removed and ``path`` is untouched.
+    """
+    path = Path(path)
+    check_writable(path, overwrite)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(handle)
+    try:
+        yield Path(temporary)
+        os.replace(temporary, path)
+    except BaseException:
+        if os.path.exists(temporary):
+            os.unlink(temporary)
+        raise
