@@ -1,0 +1,101 @@
+"""``raytrace sightlines``: random sightlines through a box series, from a TOML run file or flags."""
+
+import numpy as np
+
+from ..runfile import SIGHTLINE_OPTIONS, add_flags, require, settings
+
+NAME = "sightlines"
+HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
+        "conversion kernels (HDF5) and a plot of the mean with sightline bands.")
+
+
+def add_arguments(parser):
+    add_flags(parser, SIGHTLINE_OPTIONS)
+
+
+def load_boxes(values):
+    """The box series a run file's [boxes] section describes."""
+    from ..boxes import load_series
+
+    files = require(values, "boxes.files", SIGHTLINE_OPTIONS)
+    return load_series(
+        files if len(files) > 1 else files[0],
+        dataset=values["boxes.dataset"],
+        blend=values["boxes.blend"],
+        quantity=values["boxes.quantity"],
+        box_size=values["boxes.box_size"],
+        redshift=values["boxes.redshift"],
+        hubble_h=values["boxes.hubble_h"],
+    )
+
+
+def masses(values):
+    from ..errors import InputError
+
+    low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
+    if not low < high and count > 1:
+        raise InputError(f"masses: expected min_eV < max_eV, got {low:g} and {high:g}")
+    return np.geomspace(low, high, count)
+
+
+def observed_energy(values):
+    from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
+
+    if values["output.frequency"] is None:
+        return CMB_PHOTON_ENERGY_EV
+    return photon_energy_eV(values["output.frequency"], "output.frequency (--frequency)")
+
+
+def run(args):
+    from ..engine import cast_sightlines
+    from ..provenance import check_writable
+    from ..results import HDF5Backend, MemoryBackend
+
+    values = settings(args, SIGHTLINE_OPTIONS)
+    output = values["output.path"]
+    plot = values["output.plot"]
+    if plot:
+        check_writable(plot, values["output.overwrite"])
+    series = load_boxes(values)
+    mass = masses(values)
+    omega0 = observed_energy(values)
+    backend = (HDF5Backend(output, resume=values["output.resume"], overwrite=values["output.overwrite"])
+               if output else MemoryBackend())
+    result = cast_sightlines(
+        series, mass, values["rays.count"], values["rays.z_max"], seed=values["rays.seed"],
+        step=values["rays.step_cells"], n_jobs=values["rays.jobs"],
+        include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+        batch_size=values["rays.batch_size"], backend=backend, progress=True,
+    )
+    print_summary(result, values["output.epsilon"], omega0)
+    if output:
+        print(f"result: {output}")
+    if plot:
+        from ..plots import _pyplot, kernel_bands, save_figure
+
+        plt = _pyplot()
+        figure, ax = plt.subplots(figsize=(6.4, 4.4))
+        kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
+        save_figure(figure, plot, overwrite=values["output.overwrite"])
+        plt.close(figure)
+        print(f"plot: {plot}")
+    return 0
+
+
+def print_summary(result, epsilon, omega0):
+    mean, error = result.mean(), result.standard_error()
+    q16, q84 = result.percentiles((16.0, 84.0))
+    fraction = result.boxes_fraction()
+    print(f"# {result.n_rays} sightlines to z = {result.run['z_max']:g} (boxes to z = {result.run['z_boxes']:g}), "
+          f"seed {result.run['seed']}; mean DM = {result.dispersion_measure.mean():.1f} pc cm^-3")
+    header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'sem_K_eV':>10} {'K_16%':>10} {'K_84%':>10} {'boxes':>6}"
+    if epsilon is not None:
+        header += f" {'P_mean':>10}"
+    print(header)
+    step = max(1, result.mass_eV.size // 16)
+    for k in range(0, result.mass_eV.size, step):
+        line = (f"  {result.mass_eV[k]:11.4e} {mean[k]:11.4e} {error[k]:10.3e} {q16[k]:10.3e} {q84[k]:10.3e} "
+                f"{fraction[k]:6.2f}")
+        if epsilon is not None:
+            line += f" {epsilon**2 * mean[k] / omega0:10.3e}"
+        print(line)

@@ -1,0 +1,228 @@
+"""The sightline engine: casts random rays through a series of boxes.
+
+In: a box series (or a list of boxes, or one box), a sorted mass grid (eV), the
+number of rays, z_max and the run's options. Out: a
+:class:`~raytrace.results.SightlineResult`.
+
+The boxes serve redshifts up to ``z_boxes``; with ``include_background`` the
+homogeneous universe adds the rest up to ``z_max`` (the same for every ray and
+reported apart). Ray i draws its random numbers from a stream fixed by
+(seed, i) alone and every ray is computed on its own, so results are
+bit-identical for any ``n_jobs`` and ``batch_size``.
+"""
+
+import math
+from contextlib import contextmanager
+
+import numba
+import numpy as np
+
+from . import __version__
+from .background import MeanPlasma
+from .constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from .errors import InputError, require_positive_finite
+from .kernels.crossings import add_crossings
+from .kernels.sampling import add_log_density
+from .rays import draw_ray, plan_samples
+from .results import MemoryBackend, SightlineResult
+
+#: Interpolated densities are floored at this fraction of the box mean so that
+#: empty cells give a finite ln n_e; masses that low are never probed by a box.
+DENSITY_FLOOR = 1e-8
+
+
+def as_series(series):
+    from .boxes import as_series as _as_series
+
+    return _as_series(series)
+
+
+def check_masses(mass_eV):
+    """Positive, finite, strictly increasing masses as a float array."""
+    mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
+    if mass.ndim != 1 or np.any(np.diff(mass) <= 0):
+        raise InputError("mass_eV: expected a one-dimensional, strictly increasing grid of masses")
+    return mass
+
+
+class RayTracer:
+    """Everything one batch of rays needs: the plan, the boxes' arrays, the mass targets.
+
+    Built once per run (and once per worker process in a cluster run, from the
+    boxes' files); :meth:`trace` is a pure function of the ray indices.
+    """
+
+    def __init__(self, series, mass_eV, z_boxes, seed, step, blend, cosmology, density_floor=DENSITY_FLOOR):
+        self.boxes = series.boxes
+        self.seed = int(seed)
+        self.mass_eV = mass_eV
+        self.plan = plan_samples(
+            cosmology,
+            [box.redshift for box in self.boxes],
+            [box.box_size_cMpc for box in self.boxes],
+            [box.n_cells for box in self.boxes],
+            z_boxes,
+            step,
+            blend=blend,
+        )
+        self.n_cells = np.array([box.n_cells for box in self.boxes])
+        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
+        self.mass2 = mass_eV**2
+        spacing = np.diff(self.targets)
+        self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
+        self.floors = [density_floor * float(np.mean(box.data, dtype=np.float64)) for box in self.boxes]
+        self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
+
+    def trace(self, ray_indices):
+        """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
+        plan = self.plan
+        n = len(ray_indices)
+        starts = np.empty((n, plan.n_segments, 3))
+        directions = np.empty((n, plan.n_segments, 3))
+        ray_direction = np.empty((n, 3))
+        for row, index in enumerate(ray_indices):
+            ray_direction[row], starts[row], directions[row], _ = draw_ray(self.seed, index, plan, self.n_cells)
+        ln_density = np.zeros((n, plan.n_samples))
+        for b, box in enumerate(self.boxes):
+            used = self.segments[b]
+            if used.size == 0:
+                continue
+            add_log_density(
+                box.data, math.log(box.comoving_scale), self.floors[b],
+                plan.segment_first[used], plan.segment_stop[used], plan.local_cells,
+                np.ascontiguousarray(starts[:, used]), np.ascontiguousarray(directions[:, used]),
+                plan.weights[b], ln_density,
+            )
+        ln_density += 3.0 * plan.u[None, :]  # comoving -> physical at each sample's redshift
+        kernel = np.zeros((n, self.mass_eV.size))
+        count = np.zeros((n, self.mass_eV.size), dtype=np.int32)
+        dispersion = np.zeros(n)
+        add_crossings(plan.chi, plan.u, ln_density, self.targets, self.mass2, self.uniform,
+                      HBAR_EV_S, C_MPC_S, kernel, count, dispersion)
+        return {"kernel_boxes": kernel, "crossings": count, "dispersion_measure_boxes": dispersion,
+                "direction": ray_direction}
+
+
+@contextmanager
+def numba_threads(n_jobs):
+    """Run numba's parallel loops on ``n_jobs`` threads (-1: all cores), then restore."""
+    previous = numba.get_num_threads()
+    wanted = numba.config.NUMBA_NUM_THREADS if n_jobs in (-1, None) else int(n_jobs)
+    if wanted < 1:
+        raise InputError(f"n_jobs: expected a positive number of workers or -1, got {n_jobs!r}")
+    numba.set_num_threads(min(wanted, numba.config.NUMBA_NUM_THREADS))
+    try:
+        yield
+    finally:
+        numba.set_num_threads(previous)
+
+
+def background_dispersion_measure(plasma, z_from, z_to, points=4001):
+    """Mean DM (pc cm^-3) of the homogeneous universe from z_from to z_to: integral of nbar_e,com (1+z) dchi."""
+    if z_to <= z_from:
+        return 0.0
+    z = np.expm1(np.linspace(np.log1p(z_from), np.log1p(z_to), points))
+    chi = plasma.cosmology.comoving_distance_Mpc(z)
+    integrand = plasma.mean_comoving_electron_density_cm3(z) * (1.0 + z)
+    return float(np.trapezoid(integrand, chi) * 1.0e6)
+
+
+def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, include_background=True,
+                    z_boxes=None, batch_size=256, plasma=None, backend=None, progress=False,
+                    density_floor=DENSITY_FLOOR, executor=None):
+    """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
+
+    Parameters
+    ----------
+    series : BoxSeries, Box or list of Box
+    mass_eV : sorted array of dark-photon masses in eV
+    n_rays : number of sightlines
+    z_max : redshift the rays reach (last scattering: ~1100)
+    seed : ray i draws from a stream fixed by (seed, i) alone
+    step : sampling step in cells of the serving box
+    n_jobs : numba threads (-1: all cores)
+    include_background : boxes serve up to ``z_boxes`` (default: the highest
+        snapshot's redshift) and the homogeneous background the rest; if False
+        the boxes serve all of 0..z_max
+    batch_size : rays per batch (results do not depend on it)
+    plasma : MeanPlasma for the background part (default: CAMB, Planck 2018)
+    backend : MemoryBackend (default) or HDF5Backend (checkpointed, resumable)
+    executor : optional callable ``executor(tracer_arguments, batches) -> iterator
+        of (batch, start, arrays)`` that runs batches elsewhere (a cluster)
+    """
+    series = as_series(series)
+    mass = check_masses(mass_eV)
+    if isinstance(n_rays, bool) or not isinstance(n_rays, (int, np.integer)) or n_rays < 1:
+        raise InputError(f"n_rays: expected a whole number >= 1, got {n_rays!r}")
+    if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 1:
+        raise InputError(f"batch_size: expected a whole number >= 1, got {batch_size!r}")
+    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
+        raise InputError(f"step: expected a positive step in cells, got {step!r}")
+    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
+        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
+    plasma = plasma if plasma is not None else MeanPlasma()
+    if include_background:
+        if z_max > plasma.ionisation.z_max:
+            raise InputError(
+                f"z_max = {z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
+                f"which ends at z = {plasma.ionisation.z_max:g}"
+            )
+        z_boxes = series.z_max if z_boxes is None else float(z_boxes)
+        if not z_boxes > 0:
+            raise InputError(f"z_boxes: expected a positive redshift, got {z_boxes!r}")
+        z_boxes = min(z_boxes, z_max)
+    else:
+        if z_boxes is not None and float(z_boxes) != z_max:
+            raise InputError("z_boxes: only meaningful with include_background=True")
+        from .cosmology import Z_TABLE_MAX
+
+        if z_max > Z_TABLE_MAX:
+            raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
+        z_boxes = z_max
+    blend = bool(getattr(series, "blend", False))
+    run = {
+        "raytrace": __version__,
+        "n_rays": int(n_rays),
+        "z_max": float(z_max),
+        "z_boxes": float(z_boxes),
+        "include_background": bool(include_background),
+        "seed": int(seed),
+        "step_cells": float(step),
+        "batch_size": int(batch_size),
+        "density_floor": float(density_floor),
+        "blend": blend,
+        "mass_eV": mass.tolist(),
+        "boxes": [box.describe() for box in series.boxes],
+        "ionisation": plasma.ionisation.description,
+        "cosmology": plasma.cosmology.name,
+    }
+    tracer = RayTracer(series, mass, z_boxes, seed, step, blend, plasma.cosmology, density_floor)
+    if include_background and z_max > z_boxes:
+        kernel_background = plasma.kernel(mass, z_boxes, z_max)
+        dm_background = background_dispersion_measure(plasma, z_boxes, z_max)
+    else:
+        kernel_background = np.zeros(mass.size)
+        dm_background = 0.0
+
+    starts = list(range(0, n_rays, batch_size))
+    backend = backend if backend is not None else MemoryBackend()
+    backend.open(mass, n_rays, run, len(starts))
+    done = backend.completed_batches()
+    todo = [(b, s) for b, s in enumerate(starts) if not done[b]]
+    from tqdm.auto import tqdm
+
+    with tqdm(total=n_rays, initial=n_rays - sum(min(batch_size, n_rays - s) for _, s in todo),
+              unit="ray", desc="sightlines", disable=not progress) as bar:
+        if executor is None:
+            with numba_threads(n_jobs):
+                for b, s in todo:
+                    backend.write_batch(b, s, tracer.trace(range(s, min(s + batch_size, n_rays))))
+                    bar.update(min(batch_size, n_rays - s))
+        else:
+            for b, s, arrays in executor(tracer, [(b, s, min(s + batch_size, n_rays)) for b, s in todo]):
+                backend.write_batch(b, s, arrays)
+                bar.update(min(batch_size, n_rays - s))
+    arrays = backend.read()
+    result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
+                             arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run)
+    return backend.finish(result)

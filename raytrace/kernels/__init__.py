@@ -1,0 +1,1 @@
+"""numba kernels: small, pure, arrays in and arrays out."""

@@ -1,0 +1,67 @@
+"""Figures people would rather look at than read.
+
+In: a SightlineResult (and optionally epsilon and omega_0). Out: matplotlib
+figures: the mean kernel (or P) versus mass with the 68 % and 95 % sightline
+bands, and the homogeneous-background part for comparison.
+"""
+
+import numpy as np
+
+
+def _pyplot():
+    import matplotlib
+
+    if matplotlib.get_backend().lower() not in ("agg", "pdf", "svg") and not matplotlib.is_interactive():
+        matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def kernel_bands(result, ax=None, epsilon=None, omega0_eV=None):
+    """Mean over sightlines with 68 % and 95 % bands, versus mass, on log-log axes."""
+    plt = _pyplot()
+    if ax is None:
+        _, ax = plt.subplots(figsize=(6.4, 4.4))
+    to_plotted = (lambda k: k) if epsilon is None else (lambda k: result_probability(k, epsilon, omega0_eV))
+    q = to_plotted(result.percentiles((2.5, 16.0, 50.0, 84.0, 97.5)))
+    mean = to_plotted(result.mean())
+    m = result.mass_eV
+    ax.fill_between(m, q[0], q[4], color="C0", alpha=0.18, lw=0, label="95 % of sightlines")
+    ax.fill_between(m, q[1], q[3], color="C0", alpha=0.35, lw=0, label="68 % of sightlines")
+    ax.plot(m, mean, color="C0", lw=2, label=f"mean over {result.n_rays} sightlines")
+    ax.plot(m, q[2], color="C0", lw=1, ls=":", label="median")
+    if np.any(result.kernel_background > 0):
+        ax.plot(m, to_plotted(result.kernel_background), color="k", lw=1, ls="--",
+                label=f"homogeneous part, z > {result.run.get('z_boxes', 0):g}")
+    ax.set_xscale("log")
+    positive = mean[mean > 0]
+    if positive.size:
+        ax.set_yscale("log")
+        ax.set_ylim(positive.min() / 30, None)
+    ax.set_xlabel("dark-photon mass m [eV]")
+    if epsilon is None:
+        ax.set_ylabel(r"conversion kernel $K$ [eV]  ($P = \epsilon^2 K/\omega_0$)")
+    else:
+        ax.set_ylabel(rf"conversion probability $P$ ($\epsilon$ = {epsilon:g}, $\omega_0$ = {omega0_eV:.3g} eV)")
+    ax.set_title(f"z = 0 to {result.run.get('z_max'):g}, boxes to z = {result.run.get('z_boxes'):g}", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+    return ax
+
+
+def result_probability(kernel, epsilon, omega0_eV):
+    from .conversion import probability_from_kernel
+
+    return probability_from_kernel(kernel, epsilon, omega0_eV)
+
+
+def save_figure(figure, path, overwrite=False):
+    """Save a figure atomically (the format from the file's suffix)."""
+    from pathlib import Path
+
+    from .provenance import atomic_output
+
+    path = Path(path)
+    with atomic_output(path, overwrite=overwrite) as temporary:
+        figure.savefig(temporary, format=path.suffix.lstrip(".") or "png", dpi=150, bbox_inches="tight")
+    return path

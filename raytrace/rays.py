@@ -1,0 +1,189 @@
+"""Ray geometry: where each sightline goes and which copy of which box it sees.
+
+In: the boxes' redshifts, sizes and grids, the redshift range the boxes serve, the
+step in cells, and (seed, ray index). Out: a :class:`SamplingPlan` shared by all
+rays (sample distances chi and u = ln(1+z), segments, which box serves each
+sample with which blending weight) and, per ray, its direction and one random
+cube symmetry plus periodic shift per segment.
+
+The universe along a ray is a stack of box copies. A segment is one box length
+of travel through one copy; the next segment enters a new copy with a fresh
+random transform (one of the 48 symmetries of the cube, and a uniformly random
+shift), so no structure repeats along a ray. Applying a symmetry R and a shift
+to the box is the same as starting the segment at a random point and turning
+the direction by R, which is what is drawn. A box interval (the redshifts one
+snapshot serves) starts a new segment, since box sizes may differ.
+"""
+
+from dataclasses import dataclass
+from itertools import permutations, product
+
+import numpy as np
+
+from .errors import InputError
+
+
+def _cube_symmetries():
+    """The 48 signed permutation matrices: rotations and reflections of the cube."""
+    matrices = []
+    for perm in permutations(range(3)):
+        for signs in product((1, -1), repeat=3):
+            matrix = np.zeros((3, 3))
+            for row, (column, sign) in enumerate(zip(perm, signs)):
+                matrix[row, column] = sign
+            matrices.append(matrix)
+    return np.array(matrices)
+
+
+CUBE_SYMMETRIES = _cube_symmetries()
+
+
+def ray_generator(seed, index):
+    """The random stream of ray ``index``: fixed by (seed, index) alone."""
+    return np.random.default_rng(np.random.SeedSequence([int(seed), int(index)]))
+
+
+def isotropic_direction(rng):
+    """A unit vector uniform on the sphere (normalised Gaussian triple)."""
+    while True:
+        vector = rng.standard_normal(3)
+        norm = np.sqrt(vector @ vector)
+        if norm > 1e-12:
+            return vector / norm
+
+
+@dataclass(frozen=True)
+class SamplingPlan:
+    """Sample positions and segments along a ray, identical for every ray.
+
+    Attributes
+    ----------
+    chi, u : (n_samples,) comoving distance (Mpc) and ln(1+z) of each sample.
+    segment_first, segment_stop : (n_segments,) sample index range of each segment.
+    segment_box : (n_segments,) index of the box whose size sets the segment.
+    local_cells : (n_samples,) distance of each sample from its segment's start,
+        in cells of that segment's box.
+    weights : (n_boxes, n_samples) blending weight of each box at each sample
+        (one box with weight 1 per sample unless blending).
+    """
+
+    chi: np.ndarray
+    u: np.ndarray
+    segment_first: np.ndarray
+    segment_stop: np.ndarray
+    segment_box: np.ndarray
+    local_cells: np.ndarray
+    weights: np.ndarray
+
+    @property
+    def n_samples(self):
+        return self.chi.size
+
+    @property
+    def n_segments(self):
+        return self.segment_first.size
+
+    def segments_of(self, box_index):
+        """Indices of the segments in which box ``box_index`` has non-zero weight."""
+        used = np.flatnonzero(self.weights[box_index] != 0)
+        if used.size == 0:
+            return np.zeros(0, dtype=np.int64)
+        owner = np.searchsorted(self.segment_stop, used, side="right")
+        return np.unique(owner)
+
+
+def plan_samples(cosmology, redshifts, box_sizes_cMpc, n_cells, z_stop, step_cells, blend=False):
+    """Build the :class:`SamplingPlan` for boxes at ``redshifts`` serving 0 <= z <= z_stop.
+
+    Without blending the nearest snapshot in redshift serves each sample (the
+    boundaries sit half-way between snapshot redshifts). With blending, between
+    two snapshots both serve, with weights linear in z (log-linear in density).
+    """
+    redshifts = np.asarray(redshifts, dtype=float)
+    sizes = np.asarray(box_sizes_cMpc, dtype=float)
+    cells = np.asarray(n_cells, dtype=float)
+    if not step_cells > 0:
+        raise InputError(f"step: expected a positive step in cells, got {step_cells!r}")
+    if not z_stop > 0:
+        raise InputError(f"z_max: expected a positive redshift, got {z_stop!r}")
+    n_boxes = redshifts.size
+    if blend and n_boxes > 1:
+        edges_z = redshifts.copy()
+    else:
+        edges_z = 0.5 * (redshifts[1:] + redshifts[:-1])
+    pieces_z = np.concatenate(([0.0], edges_z[(edges_z > 0) & (edges_z < z_stop)], [z_stop]))
+    pieces_chi = cosmology.comoving_distance_Mpc(pieces_z)
+
+    chis, owners, firsts, stops, seg_boxes, locals_ = [], [], [], [], [], []
+    n = 0
+    for p in range(pieces_z.size - 1):
+        z_mid = 0.5 * (pieces_z[p] + pieces_z[p + 1])
+        box = _serving_box(redshifts, z_mid, blend)
+        cell = sizes[box] / cells[box]
+        chi_a, chi_b = pieces_chi[p], pieces_chi[p + 1]
+        last_piece = p == pieces_z.size - 2
+        count = int(np.floor((chi_b - chi_a) / (step_cells * cell) * (1 + 1e-12)))
+        chi = chi_a + step_cells * cell * np.arange(count + 1)
+        chi = chi[chi < chi_b]
+        if last_piece:
+            chi = np.append(chi, chi_b)
+        segment = np.floor((chi - chi_a) / sizes[box]).astype(np.int64)
+        for g in np.unique(segment):
+            in_segment = np.flatnonzero(segment == g)
+            firsts.append(n + in_segment[0])
+            stops.append(n + in_segment[-1] + 1)
+            seg_boxes.append(box)
+        locals_.append((chi - chi_a - segment * sizes[box]) / cell)
+        chis.append(chi)
+        owners.append(np.full(chi.size, box))
+        n += chi.size
+    chi = np.concatenate(chis)
+    u = np.log1p(cosmology.redshift_at_distance(np.minimum(chi, pieces_chi[-1])))
+    u[0] = 0.0
+    weights = _weights(redshifts, np.expm1(u), np.concatenate(owners), blend)
+    return SamplingPlan(
+        chi=chi,
+        u=u,
+        segment_first=np.asarray(firsts, dtype=np.int64),
+        segment_stop=np.asarray(stops, dtype=np.int64),
+        segment_box=np.asarray(seg_boxes, dtype=np.int64),
+        local_cells=np.concatenate(locals_),
+        weights=weights,
+    )
+
+
+def _serving_box(redshifts, z, blend):
+    if blend:
+        return int(min(np.searchsorted(redshifts, z), redshifts.size - 1))
+    return int(np.argmin(np.abs(redshifts - z)))
+
+
+def _weights(redshifts, z, owner, blend):
+    weights = np.zeros((redshifts.size, z.size))
+    if not blend or redshifts.size == 1:
+        weights[owner, np.arange(z.size)] = 1.0
+        return weights
+    high = np.clip(np.searchsorted(redshifts, z), 1, redshifts.size - 1)
+    low = high - 1
+    w = np.clip((z - redshifts[low]) / (redshifts[high] - redshifts[low]), 0.0, 1.0)
+    weights[low, np.arange(z.size)] += 1.0 - w
+    weights[high, np.arange(z.size)] += w
+    return weights
+
+
+def draw_ray(seed, index, plan, n_cells):
+    """Direction and per-segment geometry of ray ``index``.
+
+    Returns ``(direction, starts, directions, symmetries)``: the unit direction
+    (3,), the start point of each segment in cells of that segment's box
+    (n_segments, 3), the segment's direction after its cube symmetry
+    (n_segments, 3), and the symmetry index (0-47) of each segment.
+    """
+    rng = ray_generator(seed, index)
+    direction = isotropic_direction(rng)
+    symmetries = rng.integers(0, 48, size=plan.n_segments)
+    shifts = rng.random((plan.n_segments, 3))
+    cells = np.asarray(n_cells, dtype=float)[plan.segment_box]
+    starts = shifts * cells[:, None]
+    directions = CUBE_SYMMETRIES[symmetries] @ direction
+    return direction, starts, directions, symmetries

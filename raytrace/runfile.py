@@ -1,0 +1,196 @@
+"""Run files: a TOML document of sections and keys, every key also a CLI flag.
+
+In: a TOML file and/or command-line flags. Out: a validated, flat dict of run
+settings (``{"rays.count": 2000, ...}``). Unknown sections or keys, wrong types
+and out-of-range values are InputErrors that name the key, the file and what
+is expected (an unknown key lists the known ones).
+
+The schema is data (:data:`SIGHTLINE_OPTIONS`), so the TOML keys, the flags,
+their help and their checks cannot drift apart.
+"""
+
+import argparse
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
+
+from .errors import InputError
+
+
+@dataclass(frozen=True)
+class Option:
+    key: str            # "section.name" in the TOML file
+    kind: type          # str, int, float, bool, list (of str or float)
+    default: object
+    help: str
+    at_least: float = None   # inclusive lower bound
+    above: float = None      # exclusive lower bound
+    flag_name: str = None    # when the key's own name would be ambiguous as a flag
+
+    @property
+    def flag(self):
+        return "--" + (self.flag_name or self.key.split(".", 1)[1].replace("_", "-"))
+
+    @property
+    def dest(self):
+        return self.key.replace(".", "__")
+
+
+BOX_OPTIONS = (
+    Option("boxes.files", list, None, "box files or glob patterns (HDF5); a series when several", flag_name="boxes"),
+    Option("boxes.dataset", str, None, "path of the 3-D density dataset in each file (default: the only 3-D dataset)"),
+    Option("boxes.quantity", str, None, "what the values are (overrides the file's 'quantity' attribute)"),
+    Option("boxes.box_size", str, None, "box side with its unit, e.g. '100 Mpc/h' (overrides the 'box_size' attribute)"),
+    Option("boxes.redshift", float, None, "snapshot redshift (overrides the 'redshift' attribute; one file only)", at_least=0.0),
+    Option("boxes.hubble_h", float, None, "the simulation's h, when the box size unit has /h", above=0.0),
+    Option("boxes.blend", bool, False, "blend the two snapshots bracketing each redshift (log-linear)"),
+)
+
+MASS_OPTIONS = (
+    Option("masses.min_eV", float, 1e-15, "lowest dark-photon mass in eV", above=0.0, flag_name="mass-min"),
+    Option("masses.max_eV", float, 1e-12, "highest dark-photon mass in eV", above=0.0, flag_name="mass-max"),
+    Option("masses.count", int, 64, "number of log-spaced masses", at_least=1, flag_name="mass-count"),
+)
+
+TRACE_OPTIONS = (
+    Option("rays.z_max", float, 6.0, "redshift the rays reach (1100: last scattering)", above=0.0),
+    Option("rays.z_boxes", float, None, "highest redshift the boxes serve (default: the highest snapshot's)", above=0.0),
+    Option("rays.include_background", bool, True, "add the homogeneous universe from z_boxes to z_max"),
+    Option("rays.step_cells", float, 0.5, "sampling step along the ray, in cells", above=0.0),
+    Option("rays.seed", int, 0, "random seed; ray i's stream is fixed by (seed, i)", at_least=0),
+    Option("rays.jobs", int, 1, "parallel threads (-1: all cores)", at_least=-1),
+    Option("rays.batch_size", int, 256, "rays per batch (checkpoint granularity)", at_least=1),
+)
+
+OUTPUT_OPTIONS = (
+    Option("output.path", str, None, "result file (HDF5)", flag_name="output"),
+    Option("output.plot", str, None, "figure of the kernel versus mass (PNG or PDF)"),
+    Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel", above=0.0),
+    Option("output.frequency", str, None, "observed photon frequency for P, with a unit (default: k T_0)"),
+    Option("output.overwrite", bool, False, "replace existing outputs"),
+    Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
+)
+
+SIGHTLINE_OPTIONS = BOX_OPTIONS + MASS_OPTIONS + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),) + TRACE_OPTIONS + OUTPUT_OPTIONS
+
+
+def add_flags(parser, options):
+    """Add one flag per option; flags default to None so the run file's value stands unless given."""
+    parser.add_argument("run_file", nargs="?", default=None, help="TOML run file (flags override its keys)")
+    sections = {}
+    for option in options:
+        section = option.key.split(".")[0]
+        group = sections.setdefault(section, parser.add_argument_group(f"[{section}]"))
+        kwargs = {"dest": option.dest, "default": None, "help": f"{option.help} (TOML {option.key})"}
+        if option.kind is not bool:
+            kwargs["metavar"] = {int: "N", float: "X", str: "TEXT", list: "PATH"}[option.kind]
+        if option.kind is bool:
+            group.add_argument(option.flag, action=argparse.BooleanOptionalAction, **kwargs)
+        elif option.kind is list:
+            group.add_argument(option.flag, nargs="+", **kwargs)
+        else:
+            group.add_argument(option.flag, type=str, **kwargs)
+
+
+def settings(args, options):
+    """The run's settings: defaults, then the run file, then the flags."""
+    values = {option.key: option.default for option in options}
+    if args.run_file:
+        values.update(read_run_file(args.run_file, options))
+    by_key = {option.key: option for option in options}
+    for option in options:
+        given = getattr(args, option.dest, None)
+        if given is not None:
+            values[option.key] = _convert(option, given, f"flag {option.flag}")
+    for key, value in values.items():
+        _check_range(by_key[key], value)
+    return values
+
+
+def read_run_file(path, options):
+    """Validated settings from a TOML run file (only the keys it sets)."""
+    path = Path(path)
+    try:
+        with open(path, "rb") as handle:
+            document = tomllib.load(handle)
+    except FileNotFoundError:
+        raise InputError(f"{path}: run file not found") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
+        raise InputError(f"{path}: not valid TOML ({error})") from None
+    except OSError as error:
+        raise InputError(f"{path}: cannot read the run file ({error})") from None
+    known = {option.key: option for option in options}
+    sections = sorted({key.split(".")[0] for key in known})
+    found = {}
+    for section, table in document.items():
+        if section not in sections:
+            raise InputError(f"{path}: unknown section [{section}]; known sections: {', '.join(sections)}")
+        if not isinstance(table, dict):
+            raise InputError(f"{path}: [{section}] must be a table of keys")
+        for name, value in table.items():
+            key = f"{section}.{name}"
+            if key not in known:
+                names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
+                raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")
+            found[key] = _convert(known[key], value, f"{path}: key {key}")
+    if "boxes.files" in found:
+        # Relative box paths in a run file are relative to the run file, so it can be run from anywhere.
+        found["boxes.files"] = [str(p) if Path(p).is_absolute() else str(path.parent / p) for p in found["boxes.files"]]
+    return found
+
+
+def _convert(option, value, where):
+    kind = option.kind
+    try:
+        if kind is bool:
+            if isinstance(value, bool):
+                return value
+            raise TypeError
+        if kind is list:
+            if isinstance(value, str):
+                return [value]
+            if isinstance(value, list) and all(isinstance(v, str) for v in value) and value:
+                return list(value)
+            raise TypeError
+        if kind is int:
+            if isinstance(value, bool) or (isinstance(value, float) and not value.is_integer()):
+                raise TypeError
+            return int(value)
+        if kind is float:
+            if isinstance(value, bool):
+                raise TypeError
+            number = float(value)
+            if not math.isfinite(number):
+                raise TypeError
+            return number
+        if kind is str:
+            if not isinstance(value, str) or not value:
+                raise TypeError
+            return value
+    except (TypeError, ValueError):
+        pass
+    expected = {bool: "true or false", list: "a list of strings", int: "a whole number",
+                float: "a finite number", str: "a non-empty string"}[kind]
+    raise InputError(f"{where}: expected {expected}, got {value!r}")
+
+
+def _check_range(option, value):
+    if value is None or option.kind not in (int, float):
+        return
+    if option.at_least is not None and value < option.at_least:
+        raise InputError(f"{option.key} ({option.flag}): expected a value >= {option.at_least:g}, got {value!r}")
+    if option.above is not None and value <= option.above:
+        raise InputError(f"{option.key} ({option.flag}): expected a value > {option.above:g}, got {value!r}")
+
+
+def require(values, key, options):
+    """The value of a key that has no default, or an InputError naming its flag and TOML key."""
+    if values.get(key) is None:
+        option = {o.key: o for o in options}[key]
+        raise InputError(f"{option.flag} (TOML {key}) is required: {option.help}")
+    return values[key]

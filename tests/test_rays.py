@@ -1,0 +1,84 @@
+"""Ray geometry: cube symmetries, sample coverage, per-ray streams.
+
+Sources: the symmetry group of the cube (the hyperoctahedral group B3, order 48:
+rotations and reflections, every element a signed permutation matrix; common
+practice, no source); comoving distances from astropy.
+"""
+
+import numpy as np
+import pytest
+from astropy.cosmology import Planck18
+
+from raytrace.cosmology import Cosmology
+from raytrace.errors import InputError
+from raytrace.rays import CUBE_SYMMETRIES, draw_ray, plan_samples
+
+
+def test_the_48_transforms_are_the_symmetries_of_the_cube():
+    assert CUBE_SYMMETRIES.shape == (48, 3, 3)
+    for matrix in CUBE_SYMMETRIES:
+        np.testing.assert_array_equal(matrix @ matrix.T, np.eye(3))  # orthogonal
+        assert abs(round(np.linalg.det(matrix))) == 1
+        # a signed permutation: one +-1 per row and column, zeros elsewhere
+        assert np.all(np.sort(np.abs(matrix), axis=1) == [0, 0, 1])
+        assert np.all(np.abs(matrix).sum(axis=0) == 1)
+    distinct = {m.astype(int).tobytes() for m in CUBE_SYMMETRIES}
+    assert len(distinct) == 48
+    # closed under composition: a group
+    products = {(a @ b).astype(int).tobytes() for a in CUBE_SYMMETRIES for b in CUBE_SYMMETRIES}
+    assert products == distinct
+    # a cube symmetry maps the cube's vertices onto its vertices
+    vertices = np.array([[x, y, z] for x in (-1, 1) for y in (-1, 1) for z in (-1, 1)])
+    for matrix in CUBE_SYMMETRIES:
+        assert {tuple(v) for v in (vertices @ matrix.T).astype(int)} == {tuple(v) for v in vertices}
+
+
+@pytest.mark.parametrize("blend", [False, True])
+def test_samples_cover_the_whole_ray_without_gaps(blend):
+    cosmology = Cosmology()
+    redshifts, sizes, cells = [0.0, 0.5, 1.0, 2.0], [100.0, 150.0, 150.0, 80.0], [32, 48, 48, 16]
+    if blend:
+        sizes, cells = [100.0] * 4, [32] * 4
+    plan = plan_samples(cosmology, redshifts, sizes, cells, z_stop=2.5, step_cells=0.5, blend=blend)
+    chi_end = Planck18.comoving_distance(2.5).to_value("Mpc")
+    assert plan.chi[0] == 0.0
+    assert plan.chi[-1] == pytest.approx(chi_end, rel=1e-9)  # astropy
+    steps = np.diff(plan.chi)
+    largest_cell = max(s / c for s, c in zip(sizes, cells))
+    assert np.all(steps > 0)
+    assert steps.max() <= 0.5 * largest_cell * (1 + 1e-9)
+    # segments tile the samples in order, each at most one box length long
+    assert plan.segment_first[0] == 0 and plan.segment_stop[-1] == plan.n_samples
+    np.testing.assert_array_equal(plan.segment_first[1:], plan.segment_stop[:-1])
+    for first, stop, box in zip(plan.segment_first, plan.segment_stop, plan.segment_box):
+        assert plan.chi[stop - 1] - plan.chi[first] < sizes[box]
+        assert np.all(plan.local_cells[first:stop] * sizes[box] / cells[box] < sizes[box] + 1e-9)
+    # every sample is served with total weight 1
+    np.testing.assert_allclose(plan.weights.sum(axis=0), 1.0)
+    # u = ln(1+z) of each sample against astropy's distance
+    z = np.expm1(plan.u[::500])
+    np.testing.assert_allclose(Planck18.comoving_distance(z).to_value("Mpc"), plan.chi[::500], rtol=1e-6, atol=1e-6)
+
+
+def test_each_ray_has_its_own_fixed_stream():
+    cosmology = Cosmology()
+    plan = plan_samples(cosmology, [0.0], [100.0], [32], z_stop=1.0, step_cells=0.5)
+    a = draw_ray(4, 17, plan, [32])
+    b = draw_ray(4, 17, plan, [32])
+    c = draw_ray(4, 18, plan, [32])
+    for x, y in zip(a, b):
+        np.testing.assert_array_equal(x, y)
+    assert not np.array_equal(a[0], c[0])
+    direction, starts, directions, symmetries = a
+    np.testing.assert_allclose(directions, CUBE_SYMMETRIES[symmetries] @ direction)
+    assert np.all((starts >= 0) & (starts < 32))
+    # with ~ (chi(1)=3396 Mpc)/(100 Mpc) = 34 segments, the symmetries are not all the same
+    assert plan.n_segments >= 34 and len(set(symmetries)) > 5
+
+
+def test_bad_plan_input():
+    cosmology = Cosmology()
+    with pytest.raises(InputError, match="step"):
+        plan_samples(cosmology, [0.0], [100.0], [32], z_stop=1.0, step_cells=0.0)
+    with pytest.raises(InputError, match="z_max"):
+        plan_samples(cosmology, [0.0], [100.0], [32], z_stop=-1.0, step_cells=0.5)
