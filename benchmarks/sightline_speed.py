@@ -25,7 +25,7 @@ from scipy import ndimage
 import raytrace
 from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries, load_series
-from raytrace.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from raytrace.constants import HBAR_EV_S
 from raytrace.engine import RayTracer, numba_threads
 from raytrace.fields import lognormal_overdensity
 from raytrace.kernels.sampling import gather_nearest
@@ -60,7 +60,7 @@ def without_the_tool(box, tracer, ray_indices):
         ln_n = np.log(box.comoving_scale) + np.log(np.maximum(values, tracer.floors[0])) + 3 * plan.u
         y0, y1 = ln_n[:-1], ln_n[1:]
         low, high = np.minimum(y0, y1), np.maximum(y0, y1)
-        dt = np.diff(plan.chi) * 0.5 * (np.exp(-plan.u[:-1]) + np.exp(-plan.u[1:])) / C_MPC_S
+        dt = plan.proper_time_steps
         rate = np.abs(y1 - y0) / dt * HBAR_EV_S
         hit = (targets[None, :] >= low[:, None]) & (targets[None, :] < high[:, None])
         pair, mass = np.nonzero(hit)

@@ -45,6 +45,9 @@ class MeanPlasma:
     def __setattr__(self, name, value):
         raise AttributeError("MeanPlasma objects are immutable")
 
+    def __delattr__(self, name):
+        raise AttributeError("MeanPlasma objects are immutable")
+
     def __repr__(self):
         return f"MeanPlasma({self.cosmology!r}, {self.ionisation!r})"
 

@@ -49,6 +49,9 @@ class Cosmology:
     def __setattr__(self, name, value):
         raise AttributeError("Cosmology objects are immutable")
 
+    def __delattr__(self, name):
+        raise AttributeError("Cosmology objects are immutable")
+
     def __repr__(self):
         return f"Cosmology({self._astropy.name or self._astropy!r})"
 

@@ -19,7 +19,7 @@ import numpy as np
 
 from . import __version__
 from .background import MeanPlasma
-from .constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from .constants import HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, require_positive_finite
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density
@@ -72,6 +72,7 @@ class RayTracer:
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
         self.floors = [density_floor * float(np.mean(box.data, dtype=np.float64)) for box in self.boxes]
         self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
+        self.dt = self.plan.proper_time_steps
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
@@ -97,8 +98,8 @@ class RayTracer:
         kernel = np.zeros((n, self.mass_eV.size))
         count = np.zeros((n, self.mass_eV.size), dtype=np.int32)
         dispersion = np.zeros(n)
-        add_crossings(plan.chi, plan.u, ln_density, self.targets, self.mass2, self.uniform,
-                      HBAR_EV_S, C_MPC_S, kernel, count, dispersion)
+        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
+                      HBAR_EV_S, kernel, count, dispersion)
         return {"kernel_boxes": kernel, "crossings": count, "dispersion_measure_boxes": dispersion,
                 "direction": ray_direction}
 

@@ -50,6 +50,9 @@ class IonisationHistory:
     def __setattr__(self, name, value):
         raise AttributeError("IonisationHistory objects are immutable")
 
+    def __delattr__(self, name):
+        raise AttributeError("IonisationHistory objects are immutable")
+
     def __repr__(self):
         return f"IonisationHistory({self.description})"
 

@@ -80,6 +80,13 @@ class SamplingPlan:
         return self.chi.size
 
     @property
+    def proper_time_steps(self):
+        """Proper time (s) between consecutive samples: dt = a dchi / c, trapezoid in a."""
+        from .constants import C_MPC_S
+
+        return np.diff(self.chi) * 0.5 * (np.exp(-self.u[:-1]) + np.exp(-self.u[1:])) / C_MPC_S
+
+    @property
     def n_segments(self):
         return self.segment_first.size
 

@@ -9,7 +9,8 @@ crossings for each mass, and the dispersion measure (pc cm^-3).
 Between two samples every target between their ln n_e values is a crossing
 (PHYSICS.md sections 2-3): its redshift is interpolated linearly in ln n_e, and
 its rate d ln n_e/dt is the finite difference over the proper time between the
-samples, dt = a dchi / c, so the (1+z)^3 dilution enters by itself. The kernel
+samples (dt = a dchi / c, computed once per plan), so the (1+z)^3 dilution
+enters by itself. The kernel
 is pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) with the rate in eV (hbar/s).
 A log-uniform mass grid finds its crossings by arithmetic, O(1) per sample plus
 O(1) per crossing; any other sorted grid by binary search.
@@ -38,33 +39,36 @@ def _first_at_or_above(targets, value, uniform, first_target, spacing):
 
 
 @numba.njit(cache=True, parallel=True)
-def add_crossings(chi, u, ln_density, targets, mass2, uniform, hbar_eV_s, c_Mpc_s, kernel, count, dispersion):
+def add_crossings(chi, u, dt, ln_density, targets, mass2, uniform, hbar_eV_s, kernel, count, dispersion):
     """Accumulate crossings and dispersion measure along each ray of a batch.
 
-    ``kernel`` and ``count`` are (n_rays, n_masses), ``dispersion`` (n_rays,);
-    a target t crosses between samples j and j+1 when min <= t < max of their ln n_e.
+    ``dt`` (n_samples - 1,) is the proper time (s) between consecutive samples;
+    ``kernel`` and ``count`` are (n_rays, n_masses), ``dispersion`` (n_rays,).
+    A target t crosses between samples j and j+1 when min <= t < max of their ln n_e.
     """
     n_rays, n_samples = ln_density.shape
-    uniform_grid = uniform and targets.shape[0] > 1
+    n_targets = targets.shape[0]
+    uniform_grid = uniform and n_targets > 1
     first_target = targets[0]
-    spacing = (targets[-1] - targets[0]) / (targets.shape[0] - 1) if targets.shape[0] > 1 else 1.0
+    spacing = (targets[-1] - targets[0]) / (n_targets - 1) if n_targets > 1 else 1.0
     for r in numba.prange(n_rays):
         dm = 0.0
+        # n_e,physical dl / (1+z) with dl = a dchi: n_e (1+z)^-2 dchi, trapezoid.
+        g0 = math.exp(ln_density[r, 0] - 2.0 * u[0])
         for j in range(n_samples - 1):
             y0 = ln_density[r, j]
             y1 = ln_density[r, j + 1]
-            dchi = chi[j + 1] - chi[j]
-            # n_e,physical dl / (1+z) with dl = a dchi: n_e (1+z)^-2 dchi, trapezoid.
-            dm += 0.5 * (math.exp(y0 - 2.0 * u[j]) + math.exp(y1 - 2.0 * u[j + 1])) * dchi
+            g1 = math.exp(y1 - 2.0 * u[j + 1])
+            dm += 0.5 * (g0 + g1) * (chi[j + 1] - chi[j])
+            g0 = g1
             if y0 == y1:
                 continue
             low, high = min(y0, y1), max(y0, y1)
             k = _first_at_or_above(targets, low, uniform_grid, first_target, spacing)
-            if k >= targets.shape[0] or targets[k] >= high:
+            if k >= n_targets or targets[k] >= high:
                 continue
-            dt = dchi * 0.5 * (math.exp(-u[j]) + math.exp(-u[j + 1])) / c_Mpc_s
-            rate_eV = abs(y1 - y0) / dt * hbar_eV_s
-            while k < targets.shape[0] and targets[k] < high:
+            rate_eV = abs(y1 - y0) / dt[j] * hbar_eV_s
+            while k < n_targets and targets[k] < high:
                 fraction = (targets[k] - y0) / (y1 - y0)
                 one_plus_z = math.exp(u[j] + fraction * (u[j + 1] - u[j]))
                 kernel[r, k] += math.pi * mass2[k] / (one_plus_z * rate_eV)
