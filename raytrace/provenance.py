@@ -66,6 +66,10 @@ def atomic_output(path, overwrite=False):
     os.close(handle)
     try:
         yield Path(temporary)
+        # mkstemp makes the file private (0600); give it the permissions a plain open() would.
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(temporary, 0o666 & ~umask)
         os.replace(temporary, path)
     except BaseException:
         if os.path.exists(temporary):
