@@ -1,0 +1,102 @@
+"""``raytrace grid``: gas particles in an HDF5 file -> a box file of comoving n_e.
+
+In: the particle file, the names of its datasets and their units (flags below,
+the same options as raytrace.gridding.grid_particles). Out: a box file that
+``raytrace.load_box`` reads with no extra flags, and the electron totals
+before and after deposition on stdout.
+"""
+
+NAME = "grid"
+HELP = "Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths) onto an N^3 box of n_e."
+
+
+def dataset_or_number(text):
+    """A number when the text reads as one (one value for every particle), else a dataset name."""
+    try:
+        return float(text)
+    except ValueError:
+        return text
+
+
+def add_arguments(parser):
+    parser.add_argument("particles", metavar="PARTICLES.h5", help="HDF5 file of gas particles")
+    parser.add_argument("--cells", type=int, required=True, metavar="N", help="cells along each side of the grid")
+    parser.add_argument("--output", required=True, metavar="BOX.h5", help="box file to write")
+    parser.add_argument("--overwrite", action="store_true", help="replace --output if it exists")
+    parser.add_argument("--compress", action="store_true", help="gzip the box (smaller; cannot be memory-mapped)")
+
+    where = parser.add_argument_group("positions and box")
+    where.add_argument("--positions", required=True, metavar="DATASET", help="dataset of positions, shape (N, 3)")
+    where.add_argument(
+        "--position-unit", metavar="UNIT",
+        help="unit of positions and smoothing lengths: [c|p](pc|kpc|Mpc|Gpc)[/h], 'c' comoving, 'p' proper, "
+        "e.g. ckpc/h",
+    )
+    where.add_argument("--box-size", metavar="SIZE", help="box side with a unit, e.g. '25 cMpc/h'")
+    where.add_argument("--redshift", type=float, help="snapshot redshift")
+    where.add_argument("--hubble-h", type=float, metavar="H", help="H0 / (100 km/s/Mpc); needed by any '/h' unit")
+    where.add_argument(
+        "--not-periodic", dest="periodic", action="store_false",
+        help="the box is not periodic: positions outside it are an error instead of being wrapped",
+    )
+
+    mass = parser.add_argument_group("gas mass: --masses, or --densities with --volumes (mass = density * volume)")
+    mass.add_argument("--masses", type=dataset_or_number, metavar="DATASET|VALUE", help="particle masses")
+    mass.add_argument("--densities", metavar="DATASET", help="densities, in mass unit per position unit^3")
+    mass.add_argument("--volumes", metavar="DATASET", help="volumes, in position unit^3")
+    mass.add_argument("--mass-unit", metavar="UNIT", help="e.g. '1e10 Msun/h', 'Msun' or 'g'")
+    mass.add_argument(
+        "--hydrogen-fraction", type=float, default=0.76, metavar="X_H",
+        help="hydrogen mass fraction (default 0.76)",
+    )
+
+    electrons = parser.add_argument_group(
+        "electrons: --electron-abundance, or --ionised-fraction with --helium-electrons"
+    )
+    electrons.add_argument(
+        "--electron-abundance", type=dataset_or_number, metavar="DATASET|VALUE", help="n_e / n_H"
+    )
+    electrons.add_argument(
+        "--ionised-fraction", type=dataset_or_number, metavar="DATASET|VALUE", help="n_HII / n_H, in [0, 1]"
+    )
+    electrons.add_argument(
+        "--helium-electrons", type=int, choices=(0, 1, 2),
+        help="electrons per helium atom where hydrogen is ionised (with --ionised-fraction)",
+    )
+
+    kernel = parser.add_argument_group("deposit (default: SPH with --smoothing-lengths, else cloud in cell)")
+    kernel.add_argument("--smoothing-lengths", metavar="DATASET", help="SPH smoothing lengths, in the position unit")
+    kernel.add_argument(
+        "--kernel-support", type=float, metavar="FACTOR",
+        help="kernel support radius / stored smoothing length: 2 for Monaghan's h, 1 for a stored support radius",
+    )
+    kernel.add_argument("--method", choices=("auto", "cic", "sph"), default="auto", help="deposit scheme")
+
+
+def run(args):
+    from ..gridding import grid_particles
+    from ..provenance import check_writable
+
+    check_writable(args.output, args.overwrite)  # before the work, not after it
+    result = grid_particles(
+        args.particles, args.cells,
+        positions=args.positions, position_unit=args.position_unit, box_size=args.box_size,
+        redshift=args.redshift, hubble_h=args.hubble_h, periodic=args.periodic,
+        masses=args.masses, densities=args.densities, volumes=args.volumes, mass_unit=args.mass_unit,
+        hydrogen_fraction=args.hydrogen_fraction,
+        electron_abundance=args.electron_abundance, ionised_fraction=args.ionised_fraction,
+        helium_electrons=args.helium_electrons,
+        smoothing_lengths=args.smoothing_lengths, kernel_support=args.kernel_support, method=args.method,
+    )
+    written = result.write(args.output, overwrite=args.overwrite, compression="gzip" if args.compress else None)
+    print(f"# {result.n_particles} particles from {args.particles}, deposit {result.method}", end="")
+    print(f" ({result.kernel_fallbacks} by CIC: kernel under one cell)" if result.method == "sph" else "")
+    print(
+        f"# electrons: {result.electrons_read:.10e} read, {result.electrons_gridded:.10e} on the grid "
+        f"(relative difference {result.relative_difference:.2e})"
+    )
+    print(
+        f"# wrote {written}: {args.cells}^3 cells, {result.box_size_cMpc:g} cMpc, z = {result.redshift:g}, "
+        f"mean n_e = {result.density.mean():.4e} cm^-3 comoving"
+    )
+    return 0
