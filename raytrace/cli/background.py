@@ -34,18 +34,34 @@ def add_ionisation_arguments(parser):
     group.add_argument("--helium-fraction", type=float, default=None, help="helium mass fraction Y_p")
 
 
+# Parameter names in the library's messages and the flags a user typed.
+_FLAG_OF_PARAMETER = {
+    "optical_depth": "--optical-depth",
+    "reionisation_redshift": "--reionisation-redshift",
+    "helium_fraction": "--helium-fraction",
+}
+
+
 def ionisation_from_args(args, cosmology=None):
+    from ..errors import InputError
     from ..ionisation import DEFAULT_HELIUM_FRACTION, IonisationHistory
 
-    if args.ionisation_table:
-        helium = DEFAULT_HELIUM_FRACTION if args.helium_fraction is None else args.helium_fraction
-        return IonisationHistory.from_table(args.ionisation_table, helium_fraction=helium)
-    return IonisationHistory.from_camb(
-        cosmology,
-        optical_depth=args.optical_depth,
-        reionisation_redshift=args.reionisation_redshift,
-        helium_fraction=args.helium_fraction,
-    )
+    try:
+        if args.ionisation_table:
+            helium = DEFAULT_HELIUM_FRACTION if args.helium_fraction is None else args.helium_fraction
+            return IonisationHistory.from_table(args.ionisation_table, helium_fraction=helium)
+        return IonisationHistory.from_camb(
+            cosmology,
+            optical_depth=args.optical_depth,
+            reionisation_redshift=args.reionisation_redshift,
+            helium_fraction=args.helium_fraction,
+        )
+    except InputError as error:
+        message = str(error)
+        for parameter, flag in _FLAG_OF_PARAMETER.items():
+            if message.startswith(parameter + ":"):
+                raise InputError(flag + message[len(parameter):]) from None
+        raise
 
 
 def masses_from_args(args):
@@ -65,12 +81,21 @@ def masses_from_args(args):
 def run(args):
     from ..background import MeanPlasma
     from ..conversion import probability_from_kernel
-    from ..errors import require_positive_finite
+    from ..errors import InputError, require_positive_finite
     from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
-    masses = require_positive_finite(masses_from_args(args), "--mass")
+    masses = require_positive_finite(masses_from_args(args), "--mass-range" if args.mass is None else "--mass")
+    if not (np.isfinite(args.epsilon) and args.epsilon >= 0):
+        raise InputError(f"--epsilon: expected a finite value >= 0, got {args.epsilon!r}")
+    if not (np.isfinite(args.z_min) and np.isfinite(args.z_max) and 0 <= args.z_min < args.z_max):
+        raise InputError(f"--z-min, --z-max: expected 0 <= z_min < z_max, got {args.z_min!r} and {args.z_max!r}")
     omega0 = CMB_PHOTON_ENERGY_EV if args.frequency is None else photon_energy_eV(args.frequency, "--frequency")
     plasma = MeanPlasma(None, ionisation_from_args(args))
+    if args.z_max > plasma.ionisation.z_max:
+        raise InputError(
+            f"--z-max: {args.z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
+            f"which ends at z = {plasma.ionisation.z_max:g}"
+        )
     found = plasma.crossings(masses, args.z_min, args.z_max)
     kernel = np.bincount(found.mass_index, weights=found.kernel_eV, minlength=masses.size)
     probability = probability_from_kernel(kernel, args.epsilon, omega0)
