@@ -14,7 +14,7 @@ from .. import __version__
 from ..errors import InputError
 
 # Subcommand modules, in the order of the data flow.
-_SUBCOMMANDS = ("background", "grid", "sightlines", "limits")
+_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "limits")
 
 
 def build_parser():

@@ -1,0 +1,263 @@
+"""``raytrace inspect``: what box files hold and which dark-photon masses they can probe.
+
+In: HDF5 box files or quoted globs, with the box options that fill in or override
+their attributes. Out (stdout, text or JSON): for each box its grid, dtype, size,
+cell, redshift, what the values mean, the mean and percentiles of n_e / nbar_e,
+the plasma-mass range at its redshift and so the masses it can probe; for
+several boxes, the series' redshift coverage (which box serves where). With
+``--plot FILE`` a figure of each box's density PDF and a slice.
+"""
+
+import json
+
+import numpy as np
+
+NAME = "inspect"
+HELP = "Describe box files: grid, size, redshift, meaning, n_e/nbar_e percentiles and the masses they probe."
+
+
+def add_box_arguments(parser):
+    """Options that fill in or override a box file's attributes; shared by every command that reads boxes."""
+    from ..boxes import QUANTITIES
+
+    group = parser.add_argument_group("boxes (each option overrides the file's attribute of the same name)")
+    group.add_argument(
+        "--dataset", default=None, metavar="PATH[,PATH...]",
+        help="dataset path(s) in each file (default: the only 3-D dataset, or every 3-D dataset that "
+        "carries its own 'redshift' attribute)",
+    )
+    group.add_argument("--quantity", default=None, choices=tuple(QUANTITIES), help="what the values are")
+    group.add_argument(
+        "--box-size", default=None, metavar="LENGTH",
+        help="side length with its unit, e.g. '100 Mpc/h', '67.7 Mpc' (comoving unless 'physical' or 'pMpc')",
+    )
+    group.add_argument(
+        "--redshift", default=None, metavar="Z[,Z...]",
+        help="snapshot redshift: one for all boxes or one per box, comma-separated, in the order of the files",
+    )
+    group.add_argument("--hubble-h", type=float, default=None, metavar="H", help="the simulation's h (for '/h' units)")
+    group.add_argument(
+        "--ionised-fraction", default=None, metavar="X|DATASET",
+        help="gas quantities: electrons per hydrogen nucleus, a constant or a 3-D dataset in the same file",
+    )
+    group.add_argument(
+        "--blend", action="store_true",
+        help="blend the two bracketing snapshots (log-linear in density) instead of taking the nearest",
+    )
+
+
+def box_arguments(args, plasma):
+    """Keyword arguments for raytrace.boxes.load_boxes from the options of add_box_arguments."""
+    from ..errors import InputError
+
+    arguments = {"plasma": plasma}
+    if args.dataset is not None:
+        names = [name.strip() for name in args.dataset.split(",") if name.strip()]
+        arguments["dataset"] = names[0] if len(names) == 1 else names
+    for key in ("quantity", "box_size", "hubble_h"):
+        if getattr(args, key) is not None:
+            arguments[key] = getattr(args, key)
+    if args.redshift is not None:
+        try:
+            arguments["redshift"] = [float(text) for text in args.redshift.split(",")]
+        except ValueError:
+            raise InputError(f"--redshift: expected numbers separated by commas, got {args.redshift!r}") from None
+    if args.ionised_fraction is not None:
+        try:
+            arguments["ionised_fraction"] = float(args.ionised_fraction)
+        except ValueError:
+            arguments["ionised_fraction"] = args.ionised_fraction
+    return arguments
+
+
+def add_arguments(parser):
+    from .background import add_ionisation_arguments
+
+    parser.add_argument("files", nargs="+", metavar="FILE", help="HDF5 box files, or quoted glob patterns")
+    add_box_arguments(parser)
+    parser.add_argument(
+        "--z-max", type=float, default=None,
+        help="highest redshift of the coverage shown (default: the highest snapshot redshift)",
+    )
+    parser.add_argument("--plot", default=None, metavar="FILE", help="write a figure: density PDF and a slice per box")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing --plot file")
+    parser.add_argument("--json", action="store_true", help="print JSON instead of text")
+    add_ionisation_arguments(parser)
+
+
+def run(args):
+    from ..background import MeanPlasma
+    from ..boxes import BoxSeries, load_boxes
+    from ..errors import InputError
+    from ..provenance import check_writable
+    from .background import ionisation_from_args
+
+    if args.plot:
+        check_writable(args.plot, args.overwrite)
+        _image_format(args.plot)
+    plasma = MeanPlasma(None, ionisation_from_args(args))
+    boxes = load_boxes(args.files, **box_arguments(args, plasma))
+    statistics = [box.statistics(plasma) for box in boxes]
+
+    series, series_error = None, None
+    try:
+        series = BoxSeries(boxes, blend=args.blend)
+    except InputError as error:
+        series_error = error
+    z_stop = None
+    if series is not None:
+        z_stop = args.z_max if args.z_max is not None else (series.z_max if series.z_max > 0 else None)
+    coverage = _coverage(series, z_stop) if z_stop is not None else []
+
+    if args.json:
+        report = {
+            "ionisation": plasma.ionisation.description,
+            "boxes": [{**box.describe(), "statistics": stats} for box, stats in zip(boxes, statistics)],
+            "series": None if series is None else {
+                "redshifts": [float(z) for z in series.redshifts],
+                "blend": series.blend,
+                "coverage": coverage,
+            },
+        }
+        print(json.dumps(report, indent=2, default=_plain))
+    else:
+        print(f"# nbar_e(z) from {plasma.ionisation.description}")
+        for number, (box, stats) in enumerate(zip(boxes, statistics), 1):
+            print(_box_text(box, stats, number, len(boxes)))
+        if len(boxes) > 1 and series is not None:
+            print(_series_text(series, coverage))
+    if args.plot:
+        _plot(boxes, statistics, args.plot, args.overwrite)
+        print(f"# figure written to {args.plot}")
+    if series_error is not None:
+        raise series_error
+    return 0
+
+
+def _coverage(series, z_stop):
+    """Which box serves which redshifts up to z_stop, and the masses it can probe there."""
+    pieces = []
+    for z_start, z_end, index in series.intervals(z_stop):
+        box = series.boxes[index]
+        low, high = box.plasma_mass_range(z_start, z_end)
+        pieces.append({
+            "z_start": z_start, "z_end": z_end, "box": index,
+            "box_redshift": box.redshift, "mass_low_eV": low, "mass_high_eV": high,
+        })
+    return pieces
+
+
+def _box_text(box, stats, number, count):
+    info = box.describe()
+    where = f"{info['path']} : {info['dataset']}" if info["path"] else "in-memory box"
+    mapped = ", memory-mapped" if info["memory_mapped"] else ""
+    given = info["box_size_given"]
+    h = f", h = {info['hubble_h']:g}" if info["hubble_h"] is not None else ""
+    lines = [
+        f"box {number} of {count}: {where}",
+        f"  grid           {box.n_cells}^3 cells, stored as {info['stored_dtype']}{mapped}",
+        f"  box size       {box.box_size_cMpc:.6g} cMpc (given as '{given}'{h}); cell {box.cell_size_cMpc:.4g} cMpc",
+        f"  redshift       {box.redshift:g}",
+        f"  values         {info['meaning']}",
+    ]
+    if info["ionised_fraction"] is not None:
+        lines.append(f"  ionised frac.  {info['ionised_fraction']}")
+    masses = stats["plasma_mass_eV"]
+    used = stats["percentile_cells"]
+    sampled = "" if used == box.n_cells**3 else f" (from a random sample of {used} cells)"
+    percentiles = "  ".join(f"{p:g}%: {v:.4g}" for p, v in stats["percentiles"].items())
+    lines += [
+        f"  nbar_e(z)      {stats['mean_electron_density_cm3']:.4e} cm^-3 physical",
+        f"  n_e/nbar_e     mean {stats['mean_overdensity']:.4f}; "
+        f"lowest non-zero {stats['min_positive_overdensity']:.4g}; "
+        f"highest {stats['max_overdensity']:.4g}; zero cells {stats['zero_cells']}",
+        f"  percentiles    {percentiles}{sampled}",
+        f"  plasma mass    mean density {masses['mean_density']:.4e} eV; cells {masses['lowest_cell']:.4e} .. "
+        f"{masses['highest_cell']:.4e} eV; {masses['percentile_range'][0]:g}-{masses['percentile_range'][1]:g} %: "
+        f"{masses['percentile_low']:.4e} .. {masses['percentile_high']:.4e} eV",
+        f"  probes         dark-photon masses {masses['lowest_cell']:.4e} .. {masses['highest_cell']:.4e} eV "
+        f"at z = {box.redshift:g} (a resonance needs m between the lowest and highest cell's plasma mass)",
+        f"  checksum       {info['checksum']}",
+    ]
+    if info["provenance"]:
+        lines.append(f"  provenance     {info['provenance']}")
+    return "\n".join(lines)
+
+
+def _series_text(series, coverage):
+    rule = "blended log-linearly between bracketing snapshots" if series.blend else "nearest snapshot in redshift"
+    lines = [
+        f"series: {len(series)} boxes at z = {', '.join(f'{z:g}' for z in series.redshifts)} ({rule})",
+        f"  {'z from':>8} {'z to':>8}  {'box':>4} {'at z':>6}  masses probed (eV)",
+    ]
+    for piece in coverage:
+        lines.append(
+            f"  {piece['z_start']:8.4g} {piece['z_end']:8.4g}  {piece['box'] + 1:4d} {piece['box_redshift']:6g}  "
+            f"{piece['mass_low_eV']:.4e} .. {piece['mass_high_eV']:.4e}"
+        )
+    if coverage:
+        low = min(piece["mass_low_eV"] for piece in coverage)
+        high = max(piece["mass_high_eV"] for piece in coverage)
+        lines.append(
+            f"  over z = 0 .. {coverage[-1]['z_end']:g}: dark-photon masses {low:.4e} .. {high:.4e} eV"
+        )
+    return "\n".join(lines)
+
+
+def _plain(value):
+    if isinstance(value, np.generic):
+        return value.item()
+    return str(value)
+
+
+def _image_format(path):
+    from pathlib import Path
+
+    from matplotlib.figure import Figure
+
+    from ..errors import InputError
+
+    suffix = Path(path).suffix.lstrip(".").lower()
+    supported = Figure().canvas.get_supported_filetypes()
+    if suffix not in supported:
+        raise InputError(
+            f"--plot {path}: cannot tell the image format from {('.' + suffix) if suffix else 'no suffix'}; "
+            f"use one of {', '.join('.' + key for key in sorted(supported))}"
+        )
+    return suffix
+
+
+def _plot(boxes, statistics, path, overwrite):
+    from matplotlib.figure import Figure
+
+    from ..boxes import sample_cells
+    from ..provenance import atomic_output
+
+    figure = Figure(figsize=(10.0, 3.8 * len(boxes)), layout="constrained")
+    axes = figure.subplots(len(boxes), 2, squeeze=False)
+    for row, (box, stats) in enumerate(zip(boxes, statistics)):
+        to_overdensity = box.comoving_scale * (1.0 + box.redshift) ** 3 / stats["mean_electron_density_cm3"]
+        values, _ = sample_cells(box.data)
+        positive = values[values > 0].astype(np.float64) * to_overdensity
+        name = box.path.name if box.path is not None else "in-memory box"
+        pdf = axes[row, 0]
+        pdf.hist(np.log10(positive), bins=100, density=True, histtype="step", color="k")
+        for p in (16.0, 50.0, 84.0):
+            pdf.axvline(np.log10(stats["percentiles"][p]), ls=":", color="0.5")
+        pdf.set_xlabel(r"$\log_{10}(n_e / \bar n_e)$")
+        pdf.set_ylabel("probability density")
+        pdf.set_title(f"{name} {box.dataset or ''}, z = {box.redshift:g} (dotted: 16, 50, 84 %)", fontsize=9)
+        plane = np.asarray(box.data[box.n_cells // 2], dtype=np.float64) * to_overdensity
+        shown = np.ma.masked_less_equal(plane, 0.0)
+        image = axes[row, 1].imshow(
+            np.ma.log10(shown).T, origin="lower", cmap="viridis",
+            extent=(0.0, box.box_size_cMpc, 0.0, box.box_size_cMpc),
+        )
+        axes[row, 1].set_xlabel("axis 1 (cMpc)")
+        axes[row, 1].set_ylabel("axis 2 (cMpc)")
+        axes[row, 1].set_title(
+            f"slice through the middle plane of axis 0 ({box.cell_size_cMpc:.3g} cMpc thick)", fontsize=9
+        )
+        figure.colorbar(image, ax=axes[row, 1], label=r"$\log_{10}(n_e / \bar n_e)$")
+    with atomic_output(path, overwrite=overwrite) as temporary:
+        figure.savefig(temporary, format=_image_format(path), dpi=110)
