@@ -88,7 +88,7 @@ def main():
     del overdensity
     box_mb = box.data.nbytes / 2**20
     mass = np.geomspace(1e-15, 1e-12, 128)
-    tracer = RayTracer(BoxSeries([box]), mass, 1.0, 7, 0.5, False, plasma.cosmology)
+    tracer = RayTracer(BoxSeries([box]), mass, 1.0, 7, 0.5, plasma.cosmology)
     rays = range(args.rays)
     samples = args.rays * tracer.plan.n_samples
     print(f"box {args.cells}^3 float32 ({box_mb:.0f} MB), {args.box_size:g} cMpc, step 0.5 cells, "

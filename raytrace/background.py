@@ -48,6 +48,9 @@ class MeanPlasma:
     def __delattr__(self, name):
         raise AttributeError("MeanPlasma objects are immutable")
 
+    def __reduce__(self):
+        return (MeanPlasma, (self.cosmology, self.ionisation))
+
     def __repr__(self):
         return f"MeanPlasma({self.cosmology!r}, {self.ionisation!r})"
 

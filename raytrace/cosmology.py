@@ -52,6 +52,10 @@ class Cosmology:
     def __delattr__(self, name):
         raise AttributeError("Cosmology objects are immutable")
 
+    def __reduce__(self):
+        # Rebuilt from the astropy object (which pickles); the tables are recomputed lazily.
+        return (Cosmology, (self._astropy,))
+
     def __repr__(self):
         return f"Cosmology({self._astropy.name or self._astropy!r})"
 

@@ -19,22 +19,17 @@ import numpy as np
 
 from . import __version__
 from .background import MeanPlasma
+from .boxes import as_series
 from .constants import HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, require_positive_finite
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density
 from .rays import draw_ray, plan_samples
-from .results import MemoryBackend, SightlineResult
+from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 
 #: Interpolated densities are floored at this fraction of the box mean so that
 #: empty cells give a finite ln n_e; masses that low are never probed by a box.
 DENSITY_FLOOR = 1e-8
-
-
-def as_series(series):
-    from .boxes import as_series as _as_series
-
-    return _as_series(series)
 
 
 def check_masses(mass_eV):
@@ -45,6 +40,11 @@ def check_masses(mass_eV):
     return mass
 
 
+def box_mean(box):
+    """Mean of a box's stored values (the loader computed it while reading)."""
+    return box.describe()["mean_comoving_density_cm3"] / box.comoving_scale
+
+
 class RayTracer:
     """Everything one batch of rays needs: the plan, the boxes' arrays, the mass targets.
 
@@ -52,25 +52,17 @@ class RayTracer:
     boxes' files); :meth:`trace` is a pure function of the ray indices.
     """
 
-    def __init__(self, series, mass_eV, z_boxes, seed, step, blend, cosmology, density_floor=DENSITY_FLOOR):
+    def __init__(self, series, mass_eV, z_boxes, seed, step, cosmology, density_floor=DENSITY_FLOOR):
         self.boxes = series.boxes
         self.seed = int(seed)
         self.mass_eV = mass_eV
-        self.plan = plan_samples(
-            cosmology,
-            [box.redshift for box in self.boxes],
-            [box.box_size_cMpc for box in self.boxes],
-            [box.n_cells for box in self.boxes],
-            z_boxes,
-            step,
-            blend=blend,
-        )
+        self.plan = plan_samples(cosmology, series, z_boxes, step)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
         self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
         self.mass2 = mass_eV**2
         spacing = np.diff(self.targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
-        self.floors = [density_floor * float(np.mean(box.data, dtype=np.float64)) for box in self.boxes]
+        self.floors = [density_floor * box_mean(box) for box in self.boxes]
         self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
         self.dt = self.plan.proper_time_steps
 
@@ -180,7 +172,6 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         if z_max > Z_TABLE_MAX:
             raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
         z_boxes = z_max
-    blend = bool(getattr(series, "blend", False))
     run = {
         "raytrace": __version__,
         "n_rays": int(n_rays),
@@ -191,13 +182,13 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         "step_cells": float(step),
         "batch_size": int(batch_size),
         "density_floor": float(density_floor),
-        "blend": blend,
+        "blend": series.blend,
         "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes],
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    tracer = RayTracer(series, mass, z_boxes, seed, step, blend, plasma.cosmology, density_floor)
+    tracer = RayTracer(series, mass, z_boxes, seed, step, plasma.cosmology, density_floor)
     if include_background and z_max > z_boxes:
         kernel_background = plasma.kernel(mass, z_boxes, z_max)
         dm_background = background_dispersion_measure(plasma, z_boxes, z_max)
@@ -207,7 +198,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
 
     starts = list(range(0, n_rays, batch_size))
     backend = backend if backend is not None else MemoryBackend()
-    backend.open(mass, n_rays, run, len(starts))
+    backend.open(mass, n_rays, run, len(starts), SIGHTLINE_LAYOUT, FORMAT)
     done = backend.completed_batches()
     todo = [(b, s) for b, s in enumerate(starts) if not done[b]]
     from tqdm.auto import tqdm

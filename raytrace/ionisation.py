@@ -53,6 +53,9 @@ class IonisationHistory:
     def __delattr__(self, name):
         raise AttributeError("IonisationHistory objects are immutable")
 
+    def __reduce__(self):
+        return (IonisationHistory, (np.expm1(self._u), np.exp(self._ln_xe), self.helium_fraction, self.description))
+
     def __repr__(self):
         return f"IonisationHistory({self.description})"
 

@@ -1,7 +1,7 @@
 """Ray geometry: where each sightline goes and which copy of which box it sees.
 
-In: the boxes' redshifts, sizes and grids, the redshift range the boxes serve, the
-step in cells, and (seed, ray index). Out: a :class:`SamplingPlan` shared by all
+In: a box series (which box serves which redshift, their sizes and grids), the
+redshift range the boxes serve, the step in cells, and (seed, ray index). Out: a :class:`SamplingPlan` shared by all
 rays (sample distances chi and u = ln(1+z), segments, which box serves each
 sample with which blending weight) and, per ray, its direction and one random
 cube symmetry plus periodic shift per segment.
@@ -99,55 +99,46 @@ class SamplingPlan:
         return np.unique(owner)
 
 
-def plan_samples(cosmology, redshifts, box_sizes_cMpc, n_cells, z_stop, step_cells, blend=False):
-    """Build the :class:`SamplingPlan` for boxes at ``redshifts`` serving 0 <= z <= z_stop.
+def plan_samples(cosmology, series, z_stop, step_cells):
+    """Build the :class:`SamplingPlan` for a box series serving 0 <= z <= z_stop.
 
-    Without blending the nearest snapshot in redshift serves each sample (the
-    boundaries sit half-way between snapshot redshifts). With blending, between
-    two snapshots both serve, with weights linear in z (log-linear in density).
+    The series says which box serves each redshift (``intervals``: the box whose
+    size and grid set the segments) and with which weights (``serving``: the
+    nearest snapshot, or the two bracketing ones when blending).
     """
-    redshifts = np.asarray(redshifts, dtype=float)
-    sizes = np.asarray(box_sizes_cMpc, dtype=float)
-    cells = np.asarray(n_cells, dtype=float)
-    if not step_cells > 0:
+    if not (isinstance(step_cells, (int, float)) and step_cells > 0):
         raise InputError(f"step: expected a positive step in cells, got {step_cells!r}")
-    if not z_stop > 0:
+    if not (isinstance(z_stop, (int, float)) and z_stop > 0):
         raise InputError(f"z_max: expected a positive redshift, got {z_stop!r}")
-    n_boxes = redshifts.size
-    if blend and n_boxes > 1:
-        edges_z = redshifts.copy()
-    else:
-        edges_z = 0.5 * (redshifts[1:] + redshifts[:-1])
-    pieces_z = np.concatenate(([0.0], edges_z[(edges_z > 0) & (edges_z < z_stop)], [z_stop]))
-    pieces_chi = cosmology.comoving_distance_Mpc(pieces_z)
-
-    chis, owners, firsts, stops, seg_boxes, locals_ = [], [], [], [], [], []
+    pieces = series.intervals(z_stop)
+    chis, firsts, stops, seg_boxes, locals_ = [], [], [], [], []
     n = 0
-    for p in range(pieces_z.size - 1):
-        z_mid = 0.5 * (pieces_z[p] + pieces_z[p + 1])
-        box = _serving_box(redshifts, z_mid, blend)
-        cell = sizes[box] / cells[box]
-        chi_a, chi_b = pieces_chi[p], pieces_chi[p + 1]
-        last_piece = p == pieces_z.size - 2
+    for p, (z_start, z_end, box) in enumerate(pieces):
+        size, cell = series.boxes[box].box_size_cMpc, series.boxes[box].cell_size_cMpc
+        chi_a, chi_b = (float(c) for c in cosmology.comoving_distance_Mpc([z_start, z_end]))
+        if p == 0:
+            chi_a = 0.0
         count = int(np.floor((chi_b - chi_a) / (step_cells * cell) * (1 + 1e-12)))
         chi = chi_a + step_cells * cell * np.arange(count + 1)
         chi = chi[chi < chi_b]
-        if last_piece:
+        if p == len(pieces) - 1:
             chi = np.append(chi, chi_b)
-        segment = np.floor((chi - chi_a) / sizes[box]).astype(np.int64)
+        segment = np.floor((chi - chi_a) / size).astype(np.int64)
         for g in np.unique(segment):
             in_segment = np.flatnonzero(segment == g)
             firsts.append(n + in_segment[0])
             stops.append(n + in_segment[-1] + 1)
             seg_boxes.append(box)
-        locals_.append((chi - chi_a - segment * sizes[box]) / cell)
+        locals_.append((chi - chi_a - segment * size) / cell)
         chis.append(chi)
-        owners.append(np.full(chi.size, box))
         n += chi.size
     chi = np.concatenate(chis)
-    u = np.log1p(cosmology.redshift_at_distance(np.minimum(chi, pieces_chi[-1])))
+    u = np.log1p(cosmology.redshift_at_distance(np.minimum(chi, chi[-1])))
     u[0] = 0.0
-    weights = _weights(redshifts, np.expm1(u), np.concatenate(owners), blend)
+    low, high, weight_high = series.serving(np.expm1(u))
+    weights = np.zeros((len(series.boxes), chi.size))
+    np.add.at(weights, (low, np.arange(chi.size)), 1.0 - weight_high)
+    np.add.at(weights, (high, np.arange(chi.size)), weight_high)
     return SamplingPlan(
         chi=chi,
         u=u,
@@ -157,25 +148,6 @@ def plan_samples(cosmology, redshifts, box_sizes_cMpc, n_cells, z_stop, step_cel
         local_cells=np.concatenate(locals_),
         weights=weights,
     )
-
-
-def _serving_box(redshifts, z, blend):
-    if blend:
-        return int(min(np.searchsorted(redshifts, z), redshifts.size - 1))
-    return int(np.argmin(np.abs(redshifts - z)))
-
-
-def _weights(redshifts, z, owner, blend):
-    weights = np.zeros((redshifts.size, z.size))
-    if not blend or redshifts.size == 1:
-        weights[owner, np.arange(z.size)] = 1.0
-        return weights
-    high = np.clip(np.searchsorted(redshifts, z), 1, redshifts.size - 1)
-    low = high - 1
-    w = np.clip((z - redshifts[low]) / (redshifts[high] - redshifts[low]), 0.0, 1.0)
-    weights[low, np.arange(z.size)] += 1.0 - w
-    weights[high, np.arange(z.size)] += w
-    return weights
 
 
 def draw_ray(seed, index, plan, n_cells):

@@ -26,8 +26,8 @@ from .provenance import atomic_output, check_writable, provenance_json
 FORMAT = "raytrace-sightlines-1"
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
 
-# name -> (shape from (n_rays, n_masses), dtype): the per-ray arrays a run fills.
-_PER_RAY = {
+# name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
+SIGHTLINE_LAYOUT = {
     "kernel_boxes": (lambda r, m: (r, m), np.float64),
     "crossings": (lambda r, m: (r, m), np.int32),
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
@@ -122,32 +122,13 @@ class SightlineResult:
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
         """Write the result to HDF5 atomically, with its provenance."""
-        with atomic_output(path, overwrite=overwrite) as temporary:
-            with h5py.File(temporary, "w") as handle:
-                _write_header(handle, self.mass_eV, self.run)
-                for name in _PER_RAY:
-                    handle.create_dataset(name, data=getattr(self, name), compression="gzip", shuffle=True)
-                handle["kernel_background"] = self.kernel_background
-                handle.attrs["dispersion_measure_background"] = self.dispersion_measure_background
-                handle.attrs["complete"] = True
-                _check_finite(handle, path)
-        return Path(path)
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self, overwrite,
+                           {"dispersion_measure_background": self.dispersion_measure_background})
 
     @classmethod
     def load(cls, path):
-        """Read a result written by :meth:`save` (or a completed checkpoint)."""
-        path = Path(path)
-        if not path.exists():
-            raise InputError(f"{path}: result file not found")
-        try:
-            handle = h5py.File(path, "r")
-        except OSError as error:
-            raise InputError(f"{path}: not a readable HDF5 file ({error})") from None
-        with handle:
-            if handle.attrs.get("format") != FORMAT:
-                raise InputError(f"{path}: not a raytrace sightline result (attribute 'format' is not {FORMAT!r})")
-            if not handle.attrs.get("complete", False):
-                raise InputError(f"{path}: the run is not complete; finish it with --resume")
+        """Read a result written by :meth:`save`."""
+        with open_result(path, FORMAT, "sightline") as handle:
             return cls(
                 handle["mass_eV"][...],
                 handle["kernel_boxes"][...],
@@ -160,8 +141,51 @@ class SightlineResult:
             )
 
 
-def _write_header(handle, mass_eV, run):
-    handle.attrs["format"] = FORMAT
+def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes):
+    """Write ``layout``'s arrays of ``source`` plus the background kernel to HDF5, atomically.
+
+    NaN or inf in any array aborts the write: no result file ever holds them.
+    """
+    with atomic_output(path, overwrite=overwrite) as temporary:
+        with h5py.File(temporary, "w") as handle:
+            _write_header(handle, format_name, mass_eV, run)
+            for name in layout:
+                handle.create_dataset(name, data=getattr(source, name), compression="gzip", shuffle=True)
+            handle["kernel_background"] = source.kernel_background
+            handle.attrs.update(attributes)
+            handle.attrs["complete"] = True
+            _check_finite(handle, path)
+    return Path(path)
+
+
+class open_result:
+    """Context manager opening a complete result file of ``format_name``, with clear errors."""
+
+    def __init__(self, path, format_name, what):
+        self.path, self.format_name, self.what = Path(path), format_name, what
+
+    def __enter__(self):
+        if not self.path.exists():
+            raise InputError(f"{self.path}: result file not found")
+        try:
+            self.handle = h5py.File(self.path, "r")
+        except OSError as error:
+            raise InputError(f"{self.path}: not a readable HDF5 file ({error})") from None
+        if self.handle.attrs.get("format") != self.format_name:
+            self.handle.close()
+            raise InputError(f"{self.path}: not a raytrace {self.what} result "
+                             f"(attribute 'format' is not {self.format_name!r})")
+        if not self.handle.attrs.get("complete", False):
+            self.handle.close()
+            raise InputError(f"{self.path}: the run is not complete; finish it with --resume")
+        return self.handle
+
+    def __exit__(self, *exc):
+        self.handle.close()
+
+
+def _write_header(handle, format_name, mass_eV, run):
+    handle.attrs["format"] = format_name
     handle.attrs["run"] = json.dumps(run, sort_keys=True, default=str)
     handle.attrs["provenance"] = provenance_json(run=run)
     handle["mass_eV"] = mass_eV
@@ -175,10 +199,10 @@ def _check_finite(handle, path):
 
 
 class MemoryBackend:
-    """Holds a run's per-ray arrays in memory."""
+    """Holds a run's per-row arrays (rows: rays or pixels) in memory."""
 
-    def open(self, mass_eV, n_rays, run, n_batches):
-        self.arrays = {name: np.zeros(shape(n_rays, mass_eV.size), dtype) for name, (shape, dtype) in _PER_RAY.items()}
+    def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
+        self.arrays = {name: np.zeros(shape(n_rows, mass_eV.size), dtype) for name, (shape, dtype) in layout.items()}
         self.done = np.zeros(n_batches, dtype=bool)
 
     def completed_batches(self):
@@ -210,7 +234,8 @@ class HDF5Backend:
         self.resume = resume
         self.overwrite = overwrite
 
-    def open(self, mass_eV, n_rays, run, n_batches):
+    def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
+        self.layout = layout
         check_writable(self.path, self.overwrite)
         if self.checkpoint.exists() and self.resume:
             self.handle = self._reopen(run)
@@ -222,18 +247,26 @@ class HDF5Backend:
             )
         if self.resume and not self.checkpoint.exists():
             raise InputError(f"{self.checkpoint}: no checkpoint to resume")
-        handle = h5py.File(self.checkpoint, "w", libver="latest")
-        _write_header(handle, mass_eV, run)
-        for name, (shape, dtype) in _PER_RAY.items():
-            full = shape(n_rays, mass_eV.size)
-            handle.create_dataset(name, shape=full, dtype=dtype, chunks=(min(max(1, run["batch_size"]), full[0]),) + full[1:])
-        handle.create_dataset("batch_done", shape=(n_batches,), dtype=bool)
-        handle.flush()
-        self.handle = handle
+        # Crash safety (SIGKILL at any moment): the checkpoint appears whole, by rename,
+        # with every dataset contiguous and allocated at creation, so a batch only
+        # writes raw bytes at fixed offsets and never touches HDF5's metadata. The
+        # default (oldest) file format keeps no "open for write" flag that a killed
+        # writer would leave set (libver="latest" does, and then refuses to reopen).
+        allocate = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
+        allocate.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
+        allocate.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
+        with atomic_output(self.checkpoint, overwrite=True) as temporary:
+            with h5py.File(temporary, "w") as handle:
+                _write_header(handle, format_name, mass_eV, run)
+                for name, (shape, dtype) in layout.items():
+                    handle.create_dataset(name, shape=shape(n_rows, mass_eV.size), dtype=dtype, dcpl=allocate)
+                handle.create_dataset("batch_done", shape=(n_batches,), dtype=bool, dcpl=allocate)
+                handle["batch_done"][...] = False
+        self.handle = h5py.File(self.checkpoint, "r+")
 
     def _reopen(self, run):
         try:
-            handle = h5py.File(self.checkpoint, "r+", libver="latest")
+            handle = h5py.File(self.checkpoint, "r+")
         except OSError as error:
             raise InputError(f"{self.checkpoint}: the checkpoint cannot be read ({error}); start afresh with --overwrite") from None
         stored = json.loads(handle.attrs["run"])
@@ -258,7 +291,7 @@ class HDF5Backend:
         self.handle.flush()
 
     def read(self):
-        return {name: self.handle[name][...] for name in _PER_RAY}
+        return {name: self.handle[name][...] for name in self.layout}
 
     def finish(self, result):
         self.handle.close()

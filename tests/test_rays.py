@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 from astropy.cosmology import Planck18
 
+from raytrace.boxes import Box, BoxSeries
 from raytrace.cosmology import Cosmology
 from raytrace.errors import InputError
 from raytrace.rays import CUBE_SYMMETRIES, draw_ray, plan_samples
@@ -33,13 +34,18 @@ def test_the_48_transforms_are_the_symmetries_of_the_cube():
         assert {tuple(v) for v in (vertices @ matrix.T).astype(int)} == {tuple(v) for v in vertices}
 
 
+def series_of(redshifts, sizes, cells, blend=False):
+    return BoxSeries([Box.from_array(np.ones((n,) * 3, np.float32), f"{size} cMpc", z) for z, size, n
+                      in zip(redshifts, sizes, cells)], blend=blend)
+
+
 @pytest.mark.parametrize("blend", [False, True])
 def test_samples_cover_the_whole_ray_without_gaps(blend):
     cosmology = Cosmology()
     redshifts, sizes, cells = [0.0, 0.5, 1.0, 2.0], [100.0, 150.0, 150.0, 80.0], [32, 48, 48, 16]
     if blend:
         sizes, cells = [100.0] * 4, [32] * 4
-    plan = plan_samples(cosmology, redshifts, sizes, cells, z_stop=2.5, step_cells=0.5, blend=blend)
+    plan = plan_samples(cosmology, series_of(redshifts, sizes, cells, blend), z_stop=2.5, step_cells=0.5)
     chi_end = Planck18.comoving_distance(2.5).to_value("Mpc")
     assert plan.chi[0] == 0.0
     assert plan.chi[-1] == pytest.approx(chi_end, rel=1e-9)  # astropy
@@ -62,7 +68,7 @@ def test_samples_cover_the_whole_ray_without_gaps(blend):
 
 def test_each_ray_has_its_own_fixed_stream():
     cosmology = Cosmology()
-    plan = plan_samples(cosmology, [0.0], [100.0], [32], z_stop=1.0, step_cells=0.5)
+    plan = plan_samples(cosmology, series_of([0.0], [100.0], [32]), z_stop=1.0, step_cells=0.5)
     a = draw_ray(4, 17, plan, [32])
     b = draw_ray(4, 17, plan, [32])
     c = draw_ray(4, 18, plan, [32])
@@ -78,7 +84,8 @@ def test_each_ray_has_its_own_fixed_stream():
 
 def test_bad_plan_input():
     cosmology = Cosmology()
+    series = series_of([0.0], [100.0], [32])
     with pytest.raises(InputError, match="step"):
-        plan_samples(cosmology, [0.0], [100.0], [32], z_stop=1.0, step_cells=0.0)
+        plan_samples(cosmology, series, z_stop=1.0, step_cells=0.0)
     with pytest.raises(InputError, match="z_max"):
-        plan_samples(cosmology, [0.0], [100.0], [32], z_stop=-1.0, step_cells=0.5)
+        plan_samples(cosmology, series, z_stop=-1.0, step_cells=0.5)

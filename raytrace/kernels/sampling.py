@@ -70,3 +70,74 @@ def gather_nearest(cube, points):
             _wrap(int(math.floor(points[p, 2])), n2),
         ]
     return out
+
+
+@numba.njit(cache=True, inline="always")
+def _mix(state):
+    """splitmix64 finaliser (Steele, Lea & Flood 2014): a well-spread 64-bit hash."""
+    state = (state ^ (state >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    state = (state ^ (state >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return state ^ (state >> np.uint64(31))
+
+
+@numba.njit(cache=True)
+def copy_transform(seed, box_index, c0, c1, c2):
+    """(symmetry index 0-47, three shifts in [0, 1)) of lattice copy (c0, c1, c2) of box ``box_index``.
+
+    A pure function of its arguments, so every ray through a copy sees the same copy.
+    """
+    golden = np.uint64(0x9E3779B97F4A7C15)
+    state = _mix(np.uint64(seed) + golden)
+    state = _mix(state ^ (np.uint64(box_index) + golden))
+    state = _mix(state ^ (np.uint64(c0 & 0xFFFFFFFF) + golden))
+    state = _mix(state ^ (np.uint64(c1 & 0xFFFFFFFF) + golden))
+    state = _mix(state ^ (np.uint64(c2 & 0xFFFFFFFF) + golden))
+    symmetry = int(state % np.uint64(48))
+    unit = 1.0 / 9007199254740992.0  # 2^-53
+    s0 = float(_mix(state + np.uint64(1)) >> np.uint64(11)) * unit
+    s1 = float(_mix(state + np.uint64(2)) >> np.uint64(11)) * unit
+    s2 = float(_mix(state + np.uint64(3)) >> np.uint64(11)) * unit
+    return symmetry, s0, s1, s2
+
+
+@numba.njit(cache=True, parallel=True)
+def add_log_density_lattice(cube, log_scale, floor, first, stop, chi, weights, directions, observer,
+                            box_size, seed, box_index, symmetries, randomise, out):
+    """Light-cone sampling: ray r's sample j sits at observer + chi[j] * directions[r] (Mpc) in a
+    lattice of copies of the box; each copy has the transform ``copy_transform`` gives
+    (a symmetry about the copy's centre, then a periodic shift), or none if not ``randomise``.
+
+    out[r, j] += weights[j] * (log_scale + ln(max(interp, floor))) for first <= j < stop.
+    """
+    n = cube.shape[0]
+    cells_per_mpc = n / box_size
+    half = 0.5 * n
+    for r in numba.prange(out.shape[0]):
+        last0, last1, last2 = -(2**40), 0, 0
+        m = np.zeros((3, 3))
+        shift = np.zeros(3)
+        for j in range(first, stop):
+            px = observer[0] + chi[j] * directions[r, 0]
+            py = observer[1] + chi[j] * directions[r, 1]
+            pz = observer[2] + chi[j] * directions[r, 2]
+            c0 = int(math.floor(px / box_size))
+            c1 = int(math.floor(py / box_size))
+            c2 = int(math.floor(pz / box_size))
+            if c0 != last0 or c1 != last1 or c2 != last2:
+                last0, last1, last2 = c0, c1, c2
+                if randomise:
+                    s, s0, s1, s2 = copy_transform(seed, box_index, c0, c1, c2)
+                    m[:, :] = symmetries[s]
+                    shift[0], shift[1], shift[2] = s0 * n, s1 * n, s2 * n
+                else:
+                    m[:, :] = 0.0
+                    m[0, 0], m[1, 1], m[2, 2] = 1.0, 1.0, 1.0
+                    shift[:] = 0.0
+            lx = (px - c0 * box_size) * cells_per_mpc - half
+            ly = (py - c1 * box_size) * cells_per_mpc - half
+            lz = (pz - c2 * box_size) * cells_per_mpc - half
+            x = m[0, 0] * lx + m[0, 1] * ly + m[0, 2] * lz + half + shift[0]
+            y = m[1, 0] * lx + m[1, 1] * ly + m[1, 2] * lz + half + shift[1]
+            z = m[2, 0] * lx + m[2, 1] * ly + m[2, 2] * lz + half + shift[2]
+            value = trilinear_periodic(cube, x, y, z)
+            out[r, j] += weights[j] * (log_scale + math.log(max(value, floor)))

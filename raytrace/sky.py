@@ -1,0 +1,417 @@
+"""Sky maps: one observer, rays along HEALPix pixels through a consistent light cone.
+
+In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
+conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
+its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
+angular power spectra (healpy.anafast), FITS maps, Mollweide plots, and the
+anisotropy limit on epsilon.
+
+The observer sits at a seeded random point of the lattice of box copies around
+it. Each copy, indexed by its integer position and by the snapshot serving its
+shell, gets one random cube symmetry (about its centre) and periodic shift,
+derived from (seed, snapshot, copy index) alone, so every ray through a copy
+sees the same structures and neighbouring directions are correlated as in a
+real sky. The random transforms break the exact repetition a plain periodic
+lattice would print on the sky; the box still sets the largest correlated
+angle at each distance (about box size / chi), so beyond chi ~ box size / theta
+the map of one copy is no longer a fair sample of larger structures.
+"""
+
+import math
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .background import MeanPlasma
+from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
+from .engine import DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, check_masses, numba_threads
+from .errors import InputError
+from .kernels.crossings import add_crossings
+from .kernels.sampling import add_log_density_lattice
+from .rays import CUBE_SYMMETRIES, plan_samples
+from .results import MemoryBackend, open_result, save_arrays
+from .units import CMB_TEMPERATURE_K
+
+FORMAT = "raytrace-sky-1"
+ORDERINGS = ("RING", "NESTED")
+#: The CMB is isotropic to about 1e-5 in dT/T (a fact of the trade, no source).
+ISOTROPY_LEVEL = 1e-5
+
+SKY_LAYOUT = {
+    "kernel_boxes": (lambda r, m: (r, m), np.float64),
+    "crossings": (lambda r, m: (r, m), np.float64),
+    "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
+}
+
+
+def _healpy():
+    import healpy
+
+    return healpy
+
+
+def _check_nside(nside):
+    if isinstance(nside, bool) or not isinstance(nside, (int, np.integer)) or nside < 1 or nside & (nside - 1):
+        raise InputError(f"nside: expected a power of 2 (1, 2, 4, ..., 8192), got {nside!r}")
+    return int(nside)
+
+
+def _sub_pixel_level(rays_per_pixel):
+    """rays_per_pixel = 4^k: the rays follow the centres of the pixels at nside * 2^k inside each pixel."""
+    if isinstance(rays_per_pixel, bool) or not isinstance(rays_per_pixel, (int, np.integer)) or rays_per_pixel < 1:
+        raise InputError(f"rays_per_pixel: expected 1, 4, 16, 64 ..., got {rays_per_pixel!r}")
+    level = round(math.log(rays_per_pixel, 4))
+    if 4**level != rays_per_pixel:
+        raise InputError(f"rays_per_pixel: expected a power of 4 (1, 4, 16, 64 ...) so the rays sit at the "
+                         f"centres of sub-pixels, got {rays_per_pixel}")
+    return level
+
+
+def observer_position(seed, box_size_cMpc):
+    """The observer's seeded random point in copy (0, 0, 0) of the first box, in Mpc."""
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x0B5E]))
+    return rng.random(3) * box_size_cMpc
+
+
+class SkyTracer:
+    """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
+
+    def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, step, cosmology,
+                 randomise_copies=True, density_floor=DENSITY_FLOOR):
+        self.boxes = series.boxes
+        self.nside = nside
+        self.level = _sub_pixel_level(rays_per_pixel)
+        self.seed = int(seed)
+        self.randomise = bool(randomise_copies)
+        self.plan = plan_samples(cosmology, series, z_boxes, step)
+        self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
+        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
+        self.mass2 = mass_eV**2
+        spacing = np.diff(self.targets)
+        self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
+        self.floors = [density_floor * box_mean(box) for box in self.boxes]
+        self.ranges = []
+        for b in range(len(self.boxes)):
+            used = np.flatnonzero(self.plan.weights[b] != 0)
+            self.ranges.append((int(used[0]), int(used[-1]) + 1) if used.size else (0, 0))
+        self.dt = self.plan.proper_time_steps
+
+    def ray_directions(self, pixels):
+        """Unit vectors of the sub-pixel centres of NESTED ``pixels``, (n_pixels * 4^level, 3)."""
+        healpy = _healpy()
+        children = (np.asarray(pixels, dtype=np.int64)[:, None] * 4**self.level
+                    + np.arange(4**self.level)[None, :]).ravel()
+        return np.ascontiguousarray(np.array(healpy.pix2vec(self.nside * 2**self.level, children, nest=True)).T)
+
+    def trace(self, pixels):
+        plan = self.plan
+        directions = self.ray_directions(pixels)
+        n = directions.shape[0]
+        ln_density = np.zeros((n, plan.n_samples))
+        for b, box in enumerate(self.boxes):
+            first, stop = self.ranges[b]
+            if stop > first:
+                add_log_density_lattice(box.data, math.log(box.comoving_scale), self.floors[b], first, stop,
+                                        plan.chi, plan.weights[b], directions, self.observer, box.box_size_cMpc,
+                                        self.seed, b, CUBE_SYMMETRIES, self.randomise, ln_density)
+        ln_density += 3.0 * plan.u[None, :]
+        kernel = np.zeros((n, self.mass2.size))
+        count = np.zeros((n, self.mass2.size), dtype=np.int32)
+        dispersion = np.zeros(n)
+        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
+                      HBAR_EV_S, kernel, count, dispersion)
+        per_pixel = 4**self.level
+        return {
+            "kernel_boxes": kernel.reshape(len(pixels), per_pixel, -1).mean(axis=1),
+            "crossings": count.reshape(len(pixels), per_pixel, -1).mean(axis=1),
+            "dispersion_measure_boxes": dispersion.reshape(len(pixels), per_pixel).mean(axis=1),
+        }
+
+
+def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+             z_boxes=None, ordering="RING", step=0.5, plasma=None, randomise_copies=True, batch_pixels=1024,
+             backend=None, progress=False, density_floor=DENSITY_FLOOR):
+    """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
+
+    ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
+    are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
+    result's pixel order. ``randomise_copies=False`` leaves every copy of the
+    lattice untransformed: a diagnostic that shows the replication pattern.
+    Other arguments as in :func:`raytrace.cast_sightlines`; results are
+    bit-identical for any ``n_jobs`` and ``batch_pixels``.
+    """
+    series = as_series(series)
+    mass = check_masses(mass_eV)
+    nside = _check_nside(nside)
+    level = _sub_pixel_level(rays_per_pixel)
+    if ordering not in ORDERINGS:
+        raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
+    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
+        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
+    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
+        raise InputError(f"step: expected a positive step in cells, got {step!r}")
+    if isinstance(batch_pixels, bool) or not isinstance(batch_pixels, (int, np.integer)) or batch_pixels < 1:
+        raise InputError(f"batch_pixels: expected a whole number >= 1, got {batch_pixels!r}")
+    plasma = plasma if plasma is not None else MeanPlasma()
+    z_boxes = _boxes_range(series, plasma, z_max, z_boxes, include_background)
+    npix = 12 * nside * nside
+    run = {
+        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
+        "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
+        "seed": int(seed), "step_cells": float(step), "batch_pixels": int(batch_pixels),
+        "randomise_copies": bool(randomise_copies), "density_floor": float(density_floor),
+        "blend": series.blend, "mass_eV": mass.tolist(),
+        "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
+        "cosmology": plasma.cosmology.name,
+    }
+    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, step, plasma.cosmology,
+                       randomise_copies, density_floor)
+    if include_background and z_max > z_boxes:
+        kernel_background = plasma.kernel(mass, z_boxes, z_max)
+        dm_background = background_dispersion_measure(plasma, z_boxes, z_max)
+    else:
+        kernel_background, dm_background = np.zeros(mass.size), 0.0
+    starts = list(range(0, npix, batch_pixels))
+    backend = backend if backend is not None else MemoryBackend()
+    backend.open(mass, npix, run, len(starts), SKY_LAYOUT, FORMAT)
+    done = backend.completed_batches()
+    from tqdm.auto import tqdm
+
+    todo = [(b, s) for b, s in enumerate(starts) if not done[b]]
+    with tqdm(total=npix, initial=npix - sum(min(batch_pixels, npix - s) for _, s in todo), unit="pixel",
+              desc="sky", disable=not progress) as bar, numba_threads(n_jobs):
+        for b, s in todo:
+            # Pixels are traced in NESTED order (sub-pixels are then contiguous children)
+            # and stored in that order; the result reorders to RING on request.
+            backend.write_batch(b, s, tracer.trace(np.arange(s, min(s + batch_pixels, npix))))
+            bar.update(min(batch_pixels, npix - s))
+    arrays = backend.read()
+    if ordering == "RING":
+        ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
+        arrays = {name: values[ring_to_nest] for name, values in arrays.items()}
+    result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
+                       arrays["dispersion_measure_boxes"], dm_background, run)
+    return backend.finish(result)
+
+
+def _boxes_range(series, plasma, z_max, z_boxes, include_background):
+    from .cosmology import Z_TABLE_MAX
+
+    if include_background:
+        if z_max > plasma.ionisation.z_max:
+            raise InputError(f"z_max = {z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
+                             f"which ends at z = {plasma.ionisation.z_max:g}")
+        z_boxes = series.z_max if z_boxes is None else float(z_boxes)
+        if not z_boxes > 0:
+            raise InputError(f"z_boxes: expected a positive redshift, got {z_boxes!r}")
+        return min(z_boxes, z_max)
+    if z_boxes is not None and float(z_boxes) != z_max:
+        raise InputError("z_boxes: only meaningful with include_background=True")
+    if z_max > Z_TABLE_MAX:
+        raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
+    return z_max
+
+
+def pixel_window(nside, lmax):
+    """healpy.pixwin(nside)[:lmax+1], or None where healpy's window files are not installed
+    (healpy fetches them over the network on first use)."""
+    import urllib.error
+
+    try:
+        return _healpy().pixwin(nside)[: lmax + 1]
+    except (OSError, urllib.error.URLError):
+        return None
+
+
+def photon_x(omega0_eV):
+    """x = h nu / (k T_0) for an observed photon energy h nu in eV (T_0 = 2.72548 K, Fixsen 2009)."""
+    return omega0_eV / (K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K)
+
+
+class SkyResult:
+    """Kernel maps of one observer's sky.
+
+    ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
+    """
+
+    def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
+                 dispersion_measure_background, run):
+        self.mass_eV = np.asarray(mass_eV, dtype=float)
+        self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
+        self.kernel_background = np.asarray(kernel_background, dtype=float)
+        self.crossings = np.asarray(crossings, dtype=float)
+        self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
+        self.dispersion_measure_background = float(dispersion_measure_background)
+        self.run = dict(run)
+        self.nside = int(self.run["nside"])
+        self.ordering = self.run["ordering"]
+
+    def __repr__(self):
+        return (f"SkyResult(nside {self.nside} {self.ordering}, {self.mass_eV.size} masses "
+                f"{self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, z_max = {self.run['z_max']})")
+
+    @property
+    def npix(self):
+        return self.kernel_boxes.shape[0]
+
+    @property
+    def kernel(self):
+        return self.kernel_boxes + self.kernel_background[None, :]
+
+    @property
+    def dispersion_measure(self):
+        return self.dispersion_measure_boxes + self.dispersion_measure_background
+
+    def mass_index(self, mass_eV):
+        """Index of the grid mass nearest (in log) to ``mass_eV``."""
+        if not (np.isfinite(mass_eV) and mass_eV > 0):
+            raise InputError(f"mass: expected a positive mass in eV, got {mass_eV!r}")
+        return int(np.argmin(np.abs(np.log(self.mass_eV) - np.log(mass_eV))))
+
+    def kernel_map(self, mass_eV):
+        return self.kernel[:, self.mass_index(mass_eV)]
+
+    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
+        from .conversion import probability_from_kernel
+
+        return probability_from_kernel(self.kernel_map(mass_eV), epsilon, omega0_eV, saturate=saturate)
+
+    def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
+        """dT/T = -P (1 - e^-x)/x with x = h nu/(k T_0) (PHYSICS.md section 6), mean included."""
+        x = photon_x(omega0_eV)
+        return -self.probability_map(mass_eV, epsilon, omega0_eV) * (-np.expm1(-x)) / x
+
+    def angular_power(self, sky_map, lmax=None):
+        """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
+
+        The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
+        are not deconvolved. :func:`pixel_window` gives healpy's window where its data
+        files are installed.
+        """
+        healpy = _healpy()
+        ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
+        lmax = 3 * self.nside - 1 if lmax is None else int(lmax)
+        return healpy.anafast(ring - ring.mean(), lmax=lmax)
+
+    # -- files ------------------------------------------------------------------------
+    def save(self, path, overwrite=False):
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
+                           {"dispersion_measure_background": self.dispersion_measure_background})
+
+    @classmethod
+    def load(cls, path):
+        with open_result(path, FORMAT, "sky") as handle:
+            import json
+
+            return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
+                       handle["crossings"][...], handle["dispersion_measure_boxes"][...],
+                       handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]))
+
+    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False):
+        """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
+
+        The header carries nside, ordering, units, each map's mass, the run's seed,
+        z range and the input checksums.
+        """
+        from .provenance import atomic_output
+
+        healpy = _healpy()
+        maps, names, units, cards = [], [], [], []
+        for i, mass in enumerate(np.atleast_1d(masses_eV)):
+            k = self.mass_index(float(mass))
+            cards.append((f"MASS{i + 1}", float(self.mass_eV[k]), "dark-photon mass of map, eV"))
+            maps.append(self.kernel[:, k])
+            names.append(f"KERNEL{i + 1}")
+            units.append("eV")
+            if epsilon is not None:
+                if omega0_eV is None:
+                    raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
+                maps.append(self.probability_map(self.mass_eV[k], epsilon, omega0_eV))
+                names.append(f"PROB{i + 1}")
+                units.append("")
+        cards += [("EPSILON", float(epsilon) if epsilon is not None else 0.0, "kinetic mixing of PROB maps"),
+                  ("OMEGA0", float(omega0_eV) if omega0_eV is not None else 0.0, "observed photon energy, eV"),
+                  ("ZMAX", self.run["z_max"], "rays reach this redshift"),
+                  ("ZBOXES", self.run["z_boxes"], "boxes serve up to this redshift"),
+                  ("SEED", self.run["seed"], "random seed of the light cone"),
+                  ("RAYSPIX", self.run["rays_per_pixel"], "rays averaged per pixel"),
+                  ("RTVERS", __version__, "raytrace version"),
+                  ("SKYFRAME", "box axes", "sky frame: the simulation box's axes")]
+        for i, box in enumerate(self.run["boxes"]):
+            checksum = str(box.get("checksum", "")).replace("sha256:", "")
+            cards.append((f"BOXSUM{i + 1}", checksum[:64], f"sha256 of box {i + 1} (z={box.get('redshift')})"))
+        path = Path(path)
+        with atomic_output(path, overwrite=overwrite) as temporary:
+            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord="C",
+                             column_names=names, column_units=units, extra_header=cards, overwrite=True,
+                             dtype=np.float64)
+        return path
+
+    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False):
+        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given."""
+        from .plots import _pyplot, save_figure
+
+        healpy = _healpy()
+        plt = _pyplot()
+        if epsilon is None:
+            values, label = self.kernel_map(mass_eV), "K [eV]"
+        else:
+            values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
+        figure = plt.figure(figsize=(8, 5))
+        healpy.mollview(values, nest=self.ordering == "NESTED", fig=figure.number, unit=label,
+                        title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        if path is not None:
+            save_figure(figure, path, overwrite=overwrite)
+            plt.close(figure)
+        return figure
+
+
+def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
+    """Largest epsilon per mass whose dT/T map passes the isotropy test.
+
+    dT/T scales as epsilon^2: from the map's rms (monopole removed) against
+    ``threshold``, epsilon_max = sqrt(threshold / rms_1); from an upper-limit table
+    of C_l (``cl_limits``: array of (l, limit) rows, dT/T units squared),
+    C_l scales as epsilon^4 and epsilon_max = min over l of (limit_l / C_l,1)^(1/4).
+    Returns a dict with "mass_eV", "epsilon_max_rms" and, with a table, "epsilon_max_cl".
+    """
+    if not (np.isfinite(threshold) and threshold > 0):
+        raise InputError(f"threshold: expected a positive dT/T level, got {threshold!r}")
+    x = photon_x(omega0_eV)
+    shape_factor = -np.expm1(-x) / x
+    dtt = -sky.kernel / omega0_eV * shape_factor  # dT/T at epsilon = 1, (npix, n_masses)
+    rms = dtt.std(axis=0)
+    with np.errstate(divide="ignore"):
+        out = {"mass_eV": sky.mass_eV, "epsilon_max_rms": np.where(rms > 0, np.sqrt(threshold / np.where(rms > 0, rms, 1)), np.inf)}
+    if cl_limits is not None:
+        table = np.asarray(cl_limits, dtype=float)
+        if table.ndim != 2 or table.shape[1] != 2 or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
+            raise InputError("cl_limits: expected rows of (l >= 1, positive C_l limit)")
+        ells = table[:, 0].astype(int)
+        lmax = min(int(ells.max()), 3 * sky.nside - 1)
+        keep = ells <= lmax
+        best = np.full(sky.mass_eV.size, np.inf)
+        for k in range(sky.mass_eV.size):
+            cl = sky.angular_power(dtt[:, k], lmax=lmax)
+            ratio = table[keep, 1] / np.where(cl[ells[keep]] > 0, cl[ells[keep]], np.nan)
+            if np.any(np.isfinite(ratio)):
+                best[k] = np.nanmin(ratio) ** 0.25
+        out["epsilon_max_cl"] = best
+    return out
+
+
+def read_cl_limits(path):
+    """A two-column text table (l, C_l upper limit in (dT/T)^2), '#' comments."""
+    path = Path(path)
+    try:
+        table = np.loadtxt(path, comments="#", ndmin=2)
+    except FileNotFoundError:
+        raise InputError(f"{path}: C_l limit table not found") from None
+    except ValueError as error:
+        raise InputError(f"{path}: cannot read as two columns l, C_l limit ({error})") from None
+    if table.shape[1] != 2:
+        raise InputError(f"{path}: expected two columns (l, C_l limit), found {table.shape[1]}")
+    if not np.all(np.isfinite(table)) or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
+        raise InputError(f"{path}: expected l >= 1 and positive finite limits")
+    return table
