@@ -12,6 +12,7 @@ bit-identical for any ``n_jobs`` and ``batch_size``.
 """
 
 import math
+import warnings
 from contextlib import contextmanager
 
 import numba
@@ -21,7 +22,7 @@ from . import __version__
 from .background import MeanPlasma
 from .boxes import as_series
 from .constants import HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
-from .errors import InputError, require_positive_finite
+from .errors import InputError, ProbedRangeWarning, require_positive_finite
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density
 from .rays import draw_ray, plan_samples
@@ -43,6 +44,19 @@ def check_masses(mass_eV):
 def box_mean(box):
     """Mean of a box's stored values (the loader computed it while reading)."""
     return box.describe()["mean_comoving_density_cm3"] / box.comoving_scale
+
+
+def warn_outside_probed_range(series, mass, z_boxes):
+    """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes."""
+    ranges = [series.boxes[i].plasma_mass_range(z_start, z_end) for z_start, z_end, i in series.intervals(z_boxes)]
+    low, high = min(r[0] for r in ranges), max(r[1] for r in ranges)
+    outside = (mass < low) | (mass > high)
+    if outside.any():
+        warnings.warn(ProbedRangeWarning(
+            f"{int(outside.sum())} of {mass.size} masses lie outside the plasma masses the boxes span "
+            f"({low:.3g} to {high:.3g} eV for z = 0 to {z_boxes:g}); they get no resonance from the "
+            "boxes (kernel 0 there, plus the homogeneous background beyond the boxes if included)"
+        ), stacklevel=3)
 
 
 class RayTracer:
@@ -188,6 +202,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    warn_outside_probed_range(series, mass, z_boxes)
     tracer = RayTracer(series, mass, z_boxes, seed, step, plasma.cosmology, density_floor)
     if include_background and z_max > z_boxes:
         kernel_background = plasma.kernel(mass, z_boxes, z_max)

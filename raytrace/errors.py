@@ -17,6 +17,14 @@ class InputError(RaytraceError, ValueError):
     """
 
 
+class RaytraceWarning(UserWarning):
+    """Something in a run the user should know about; the run's results are still valid."""
+
+
+class ProbedRangeWarning(RaytraceWarning):
+    """Some masses of the grid resonate nowhere in the boxes."""
+
+
 def require_positive_finite(values, name):
     """Return ``values`` as a float array, or raise InputError naming ``name``."""
     import numpy as np

@@ -25,7 +25,8 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
-from .engine import DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, check_masses, numba_threads
+from .engine import (DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, check_masses, numba_threads,
+                     warn_outside_probed_range)
 from .errors import InputError
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
@@ -165,6 +166,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    warn_outside_probed_range(series, mass, z_boxes)
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, step, plasma.cosmology,
                        randomise_copies, density_floor)
     if include_background and z_max > z_boxes:

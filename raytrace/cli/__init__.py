@@ -8,6 +8,7 @@ pointer to report it.
 
 import argparse
 import sys
+import warnings
 from importlib import import_module
 
 from .. import __version__
@@ -41,6 +42,11 @@ def main(argv=None):
     if not getattr(args, "_run", None):
         parser.print_help()
         return 2
+
+    def show_warning(message, category, filename, lineno, file=None, line=None):
+        print(f"raytrace {args.command}: warning: {message}", file=sys.stderr)
+
+    warnings.showwarning = show_warning
     try:
         return int(args._run(args) or 0)
     except InputError as error:

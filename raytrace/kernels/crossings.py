@@ -23,13 +23,12 @@ import numpy as np
 
 
 @numba.njit(cache=True, inline="always")
-def _first_at_or_above(targets, value, uniform, first_target, spacing):
-    """Index of the first target >= value (targets sorted increasing)."""
+def _count_below(targets, value, uniform, first_target, inverse_spacing):
+    """Number of targets < value (targets sorted increasing)."""
     n = targets.shape[0]
     if uniform:
-        k = int(math.ceil((value - first_target) / spacing))
-        k = min(max(k, 0), n)
-        # Rounding in the division can be one off either way; settle it exactly.
+        k = int(min(max(math.ceil((value - first_target) * inverse_spacing), 0.0), float(n)))
+        # Rounding in the product can be one off either way; settle it exactly.
         while k > 0 and targets[k - 1] >= value:
             k -= 1
         while k < n and targets[k] < value:
@@ -44,34 +43,31 @@ def add_crossings(chi, u, dt, ln_density, targets, mass2, uniform, hbar_eV_s, ke
 
     ``dt`` (n_samples - 1,) is the proper time (s) between consecutive samples;
     ``kernel`` and ``count`` are (n_rays, n_masses), ``dispersion`` (n_rays,).
-    A target t crosses between samples j and j+1 when min <= t < max of their ln n_e.
+    A target t crosses between samples j and j+1 when min <= t < max of their
+    ln n_e, i.e. when the number of targets below each sample differs.
     """
     n_rays, n_samples = ln_density.shape
     n_targets = targets.shape[0]
     uniform_grid = uniform and n_targets > 1
     first_target = targets[0]
-    spacing = (targets[-1] - targets[0]) / (n_targets - 1) if n_targets > 1 else 1.0
+    inverse_spacing = (n_targets - 1) / (targets[-1] - targets[0]) if n_targets > 1 else 1.0
     for r in numba.prange(n_rays):
         dm = 0.0
+        y0 = ln_density[r, 0]
         # n_e,physical dl / (1+z) with dl = a dchi: n_e (1+z)^-2 dchi, trapezoid.
-        g0 = math.exp(ln_density[r, 0] - 2.0 * u[0])
+        g0 = math.exp(y0 - 2.0 * u[0])
+        below0 = _count_below(targets, y0, uniform_grid, first_target, inverse_spacing)
         for j in range(n_samples - 1):
-            y0 = ln_density[r, j]
             y1 = ln_density[r, j + 1]
             g1 = math.exp(y1 - 2.0 * u[j + 1])
             dm += 0.5 * (g0 + g1) * (chi[j + 1] - chi[j])
-            g0 = g1
-            if y0 == y1:
-                continue
-            low, high = min(y0, y1), max(y0, y1)
-            k = _first_at_or_above(targets, low, uniform_grid, first_target, spacing)
-            if k >= n_targets or targets[k] >= high:
-                continue
-            rate_eV = abs(y1 - y0) / dt[j] * hbar_eV_s
-            while k < n_targets and targets[k] < high:
-                fraction = (targets[k] - y0) / (y1 - y0)
-                one_plus_z = math.exp(u[j] + fraction * (u[j + 1] - u[j]))
-                kernel[r, k] += math.pi * mass2[k] / (one_plus_z * rate_eV)
-                count[r, k] += 1
-                k += 1
+            below1 = _count_below(targets, y1, uniform_grid, first_target, inverse_spacing)
+            if below1 != below0:
+                rate_eV = abs(y1 - y0) / dt[j] * hbar_eV_s
+                for k in range(min(below0, below1), max(below0, below1)):
+                    fraction = (targets[k] - y0) / (y1 - y0)
+                    one_plus_z = math.exp(u[j] + fraction * (u[j + 1] - u[j]))
+                    kernel[r, k] += math.pi * mass2[k] / (one_plus_z * rate_eV)
+                    count[r, k] += 1
+            y0, g0, below0 = y1, g1, below1
         dispersion[r] += dm * 1.0e6  # Mpc -> pc
