@@ -46,12 +46,25 @@ def provenance_json(**fields):
 
 
 def check_writable(path, overwrite):
-    """Refuse to replace an existing output unless ``overwrite`` is set."""
+    """Refuse to replace an existing output unless ``overwrite`` is set.
+
+    A missing folder is fine: the writers create it (see :func:`output_folder`).
+    """
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(f"{path}: output exists; pass --overwrite (overwrite=True) to replace it")
-    if not path.parent.exists():
-        raise InputError(f"{path}: the folder {path.parent} does not exist")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; expected a file name for the output")
+
+
+def output_folder(path):
+    """Create the folder an output goes into, with a clear error if that is impossible."""
+    folder = Path(path).parent
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise InputError(f"{path}: cannot create the output folder {folder} ({error.strerror})") from None
+    return folder
 
 
 @contextmanager
@@ -62,7 +75,7 @@ def atomic_output(path, overwrite=False):
     """
     path = Path(path)
     check_writable(path, overwrite)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=output_folder(path))
     os.close(handle)
     try:
         yield Path(temporary)

@@ -21,7 +21,7 @@ import numpy as np
 
 from .conversion import probability_from_kernel
 from .errors import InputError
-from .provenance import atomic_output, check_writable, provenance_json
+from .provenance import atomic_output, check_writable, output_folder, provenance_json
 
 FORMAT = "raytrace-sightlines-1"
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
@@ -198,6 +198,16 @@ def _check_finite(handle, path):
             raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
 
 
+def _differences(stored, current, where=""):
+    """'key[i].name: checkpoint X, now Y' for each leaf where two run dicts differ."""
+    if isinstance(stored, dict) and isinstance(current, dict):
+        return [line for key in sorted(set(stored) | set(current))
+                for line in _differences(stored.get(key), current.get(key), f"{where}.{key}" if where else key)]
+    if isinstance(stored, list) and isinstance(current, list) and len(stored) == len(current):
+        return [line for i, (a, b) in enumerate(zip(stored, current)) for line in _differences(a, b, f"{where}[{i}]")]
+    return [] if stored == current else [f"{where}: checkpoint {stored!r}, now {current!r}"]
+
+
 class MemoryBackend:
     """Holds a run's per-row arrays (rows: rays or pixels) in memory."""
 
@@ -237,6 +247,7 @@ class HDF5Backend:
     def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
         self.layout = layout
         check_writable(self.path, self.overwrite)
+        output_folder(self.path)
         if self.checkpoint.exists() and self.resume:
             self.handle = self._reopen(run)
             return
@@ -271,8 +282,7 @@ class HDF5Backend:
             raise InputError(f"{self.checkpoint}: the checkpoint cannot be read ({error}); start afresh with --overwrite") from None
         stored = json.loads(handle.attrs["run"])
         current = json.loads(json.dumps(run, sort_keys=True, default=str))
-        differences = [f"{key}: checkpoint {stored.get(key)!r}, now {current.get(key)!r}"
-                       for key in sorted(set(stored) | set(current)) if stored.get(key) != current.get(key)]
+        differences = _differences(stored, current)
         if differences:
             handle.close()
             raise InputError(f"{self.checkpoint}: cannot resume, the run differs: " + "; ".join(differences))

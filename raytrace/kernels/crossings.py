@@ -7,7 +7,7 @@ Out: added into per-ray arrays: the conversion kernel K (eV) and the number of
 crossings for each mass, and the dispersion measure (pc cm^-3).
 
 Between two samples every target between their ln n_e values is a crossing
-(PHYSICS.md sections 2-3): its redshift is interpolated linearly in ln n_e, and
+(PHYSICS.md sections 2-3): its 1/(1+z) is interpolated linearly in ln n_e, and
 its rate d ln n_e/dt is the finite difference over the proper time between the
 samples (dt = a dchi / c, computed once per plan), so the (1+z)^3 dilution
 enters by itself. The kernel
@@ -51,6 +51,10 @@ def add_crossings(chi, u, dt, ln_density, targets, mass2, uniform, hbar_eV_s, ke
     uniform_grid = uniform and n_targets > 1
     first_target = targets[0]
     inverse_spacing = (n_targets - 1) / (targets[-1] - targets[0]) if n_targets > 1 else 1.0
+    # 1/(1+z) is interpolated linearly between samples: with steps of ~1e-4 in ln(1+z) this
+    # differs from interpolating ln(1+z) by ~1e-9 and saves an exponential per crossing.
+    scale = np.exp(-u)
+    pi_mass2 = math.pi * mass2
     for r in numba.prange(n_rays):
         dm = 0.0
         y0 = ln_density[r, 0]
@@ -63,11 +67,12 @@ def add_crossings(chi, u, dt, ln_density, targets, mass2, uniform, hbar_eV_s, ke
             dm += 0.5 * (g0 + g1) * (chi[j + 1] - chi[j])
             below1 = _count_below(targets, y1, uniform_grid, first_target, inverse_spacing)
             if below1 != below0:
-                rate_eV = abs(y1 - y0) / dt[j] * hbar_eV_s
+                inverse_dy = 1.0 / (y1 - y0)
+                per_scale = dt[j] / (abs(y1 - y0) * hbar_eV_s)  # 1 / |d ln n/dt| in 1/eV
+                a0, da = scale[j], scale[j + 1] - scale[j]
                 for k in range(min(below0, below1), max(below0, below1)):
-                    fraction = (targets[k] - y0) / (y1 - y0)
-                    one_plus_z = math.exp(u[j] + fraction * (u[j + 1] - u[j]))
-                    kernel[r, k] += math.pi * mass2[k] / (one_plus_z * rate_eV)
+                    a_crossing = a0 + (targets[k] - y0) * inverse_dy * da
+                    kernel[r, k] += pi_mass2[k] * a_crossing * per_scale
                     count[r, k] += 1
             y0, g0, below0 = y1, g1, below1
         dispersion[r] += dm * 1.0e6  # Mpc -> pc

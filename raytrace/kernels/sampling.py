@@ -16,8 +16,12 @@ import numpy as np
 
 @numba.njit(cache=True, inline="always")
 def _wrap(index, n):
-    index = index % n
-    return index + n if index < 0 else index
+    # Positions are at most a few boxes away from [0, n): subtracting beats an integer division.
+    while index < 0:
+        index += n
+    while index >= n:
+        index -= n
+    return index
 
 
 @numba.njit(cache=True)
@@ -28,7 +32,9 @@ def trilinear_periodic(cube, x, y, z):
     fx, fy, fz = math.floor(xc), math.floor(yc), math.floor(zc)
     tx, ty, tz = xc - fx, yc - fy, zc - fz
     i0, j0, k0 = _wrap(int(fx), n0), _wrap(int(fy), n1), _wrap(int(fz), n2)
-    i1, j1, k1 = (i0 + 1) % n0, (j0 + 1) % n1, (k0 + 1) % n2
+    i1 = i0 + 1 if i0 + 1 < n0 else 0
+    j1 = j0 + 1 if j0 + 1 < n1 else 0
+    k1 = k0 + 1 if k0 + 1 < n2 else 0
     c00 = cube[i0, j0, k0] * (1.0 - tz) + cube[i0, j0, k1] * tz
     c01 = cube[i0, j1, k0] * (1.0 - tz) + cube[i0, j1, k1] * tz
     c10 = cube[i1, j0, k0] * (1.0 - tz) + cube[i1, j0, k1] * tz
@@ -110,34 +116,35 @@ def add_log_density_lattice(cube, log_scale, floor, first, stop, chi, weights, d
     out[r, j] += weights[j] * (log_scale + ln(max(interp, floor))) for first <= j < stop.
     """
     n = cube.shape[0]
+    inverse_size = 1.0 / box_size
     cells_per_mpc = n / box_size
     half = 0.5 * n
     for r in numba.prange(out.shape[0]):
         last0, last1, last2 = -(2**40), 0, 0
-        m = np.zeros((3, 3))
-        shift = np.zeros(3)
+        # The copy's transform as scalars: x' = M (x - half) + half + shift.
+        m00 = m11 = m22 = 1.0
+        m01 = m02 = m10 = m12 = m20 = m21 = 0.0
+        t0 = t1 = t2 = half
+        d0, d1, d2 = directions[r, 0], directions[r, 1], directions[r, 2]
         for j in range(first, stop):
-            px = observer[0] + chi[j] * directions[r, 0]
-            py = observer[1] + chi[j] * directions[r, 1]
-            pz = observer[2] + chi[j] * directions[r, 2]
-            c0 = int(math.floor(px / box_size))
-            c1 = int(math.floor(py / box_size))
-            c2 = int(math.floor(pz / box_size))
+            px = observer[0] + chi[j] * d0
+            py = observer[1] + chi[j] * d1
+            pz = observer[2] + chi[j] * d2
+            c0 = int(math.floor(px * inverse_size))
+            c1 = int(math.floor(py * inverse_size))
+            c2 = int(math.floor(pz * inverse_size))
             if c0 != last0 or c1 != last1 or c2 != last2:
                 last0, last1, last2 = c0, c1, c2
                 if randomise:
                     s, s0, s1, s2 = copy_transform(seed, box_index, c0, c1, c2)
-                    m[:, :] = symmetries[s]
-                    shift[0], shift[1], shift[2] = s0 * n, s1 * n, s2 * n
-                else:
-                    m[:, :] = 0.0
-                    m[0, 0], m[1, 1], m[2, 2] = 1.0, 1.0, 1.0
-                    shift[:] = 0.0
+                    m00, m01, m02 = symmetries[s, 0, 0], symmetries[s, 0, 1], symmetries[s, 0, 2]
+                    m10, m11, m12 = symmetries[s, 1, 0], symmetries[s, 1, 1], symmetries[s, 1, 2]
+                    m20, m21, m22 = symmetries[s, 2, 0], symmetries[s, 2, 1], symmetries[s, 2, 2]
+                    t0, t1, t2 = half + s0 * n, half + s1 * n, half + s2 * n
             lx = (px - c0 * box_size) * cells_per_mpc - half
             ly = (py - c1 * box_size) * cells_per_mpc - half
             lz = (pz - c2 * box_size) * cells_per_mpc - half
-            x = m[0, 0] * lx + m[0, 1] * ly + m[0, 2] * lz + half + shift[0]
-            y = m[1, 0] * lx + m[1, 1] * ly + m[1, 2] * lz + half + shift[1]
-            z = m[2, 0] * lx + m[2, 1] * ly + m[2, 2] * lz + half + shift[2]
-            value = trilinear_periodic(cube, x, y, z)
+            value = trilinear_periodic(cube, m00 * lx + m01 * ly + m02 * lz + t0,
+                                       m10 * lx + m11 * ly + m12 * lz + t1,
+                                       m20 * lx + m21 * ly + m22 * lz + t2)
             out[r, j] += weights[j] * (log_scale + math.log(max(value, floor)))
