@@ -6,7 +6,8 @@ measured spectrum (:mod:`raytrace.spectrum`; default the FIRAS monopole of
 Fixsen et al. 1996). Out: immutable :class:`SpectralLimit` curves epsilon_max(m)
 with the fit behind them, gathered in a :class:`LimitSet` (lines plus bands),
 written as a CSV or HDF5 table (:func:`limit_table`) and drawn log-log
-(:func:`plot_limits`).
+(:func:`plot_limits`). From a sky result (:mod:`raytrace.sky`),
+:func:`anisotropy_curve` gives the :class:`AnisotropyLimit` of the isotropy test.
 
 Curves are duck-typed so that other limits (the anisotropy limit of the sky
 maps) can sit beside the spectral ones in one LimitSet, table and plot: a
@@ -25,7 +26,7 @@ from scipy import stats
 from .errors import InputError, require_positive_finite
 from .provenance import atomic_output, provenance_json
 from .spectrum import planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
-from .units import CMB_TEMPERATURE_K
+from .units import CMB_PHOTON_ENERGY_EV, CMB_TEMPERATURE_K
 
 _TEMPERATURE_TOLERANCE = 1e-12  # relative step in T at which the blackbody fit has converged
 _MAX_ITERATIONS = 50
@@ -244,6 +245,115 @@ def sightline_limits(mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, sprea
         bands.append(LimitBand(edges[1], edges[0],
                                f"sightline spread (K at the {low:g}-{high:g} % quantiles over sightlines)"))
     return LimitSet(tuple(curves), tuple(bands))
+
+
+def result_kernels(result, plasma=None):
+    """The kernels :func:`sightline_limits` takes, from a :class:`~raytrace.results.SightlineResult`.
+
+    Mean and 16 % / 84 % quantiles of K over the rays, and the homogeneous
+    universe's K over the same z = 0 to z_max as the rays (``plasma``: a
+    :class:`~raytrace.background.MeanPlasma`, default CAMB with Planck 2018), so
+    that the two differ only by the inhomogeneity. A dict of keyword arguments.
+    """
+    from .background import MeanPlasma
+    from .errors import RaytraceWarning
+
+    plasma = MeanPlasma() if plasma is None else plasma
+    used = result.run.get("ionisation")
+    if used is not None and used != plasma.ionisation.description:
+        warnings.warn(RaytraceWarning(
+            f"the sightlines were run with the ionisation history {used!r}; the homogeneous comparison "
+            f"uses {plasma.ionisation.description!r}"
+        ), stacklevel=2)
+    return {
+        "mass_eV": result.mass_eV,
+        "mean_kernel_eV": result.mean(),
+        "spread_kernels_eV": tuple(result.percentiles((16.0, 84.0))),
+        "background_kernel_eV": plasma.kernel(result.mass_eV, 0.0, float(result.run["z_max"])),
+    }
+
+
+@dataclass(frozen=True, eq=False)
+class AnisotropyLimit:
+    """epsilon_max(m) from the isotropy of a sky's dT/T map (:func:`raytrace.sky.anisotropy_limit`).
+
+    ``test`` is "rms" (map rms against ``threshold``) or "C_l" (angular power
+    against the table ``cl_source``); ``omega0_eV`` the photon energy of dT/T.
+    """
+
+    name: str
+    label: str
+    mass_eV: np.ndarray
+    epsilon_max: np.ndarray
+    test: str
+    threshold: float | None
+    cl_source: str | None
+    omega0_eV: float
+    nside: int
+    sky_seed: int
+    sky_z_max: float
+
+    def __post_init__(self):
+        for field in ("mass_eV", "epsilon_max"):
+            array = np.array(getattr(self, field), dtype=float)
+            array.setflags(write=False)
+            object.__setattr__(self, field, array)
+
+    def __repr__(self):
+        return f"AnisotropyLimit({self.name!r}, {self.mass_eV.size} masses, {self.label!r})"
+
+    def columns(self):
+        """Per-mass arrays for a table."""
+        return {"epsilon_max": self.epsilon_max}
+
+    def metadata(self):
+        """Scalars describing the test, for a table's header."""
+        return {"label": self.label, "kind": "CMB anisotropy", "test": self.test, "threshold": self.threshold,
+                "cl_limits": self.cl_source, "omega0_eV": self.omega0_eV, "nside": self.nside,
+                "sky_seed": self.sky_seed, "sky_z_max": self.sky_z_max}
+
+
+def anisotropy_curve(sky, omega0_eV=CMB_PHOTON_ENERGY_EV, threshold=None, cl_limits=None, name="anisotropy"):
+    """The anisotropy limit of a :class:`~raytrace.sky.SkyResult` as a curve for a LimitSet.
+
+    Without ``cl_limits``: the map's rms of dT/T below ``threshold`` (default
+    :data:`raytrace.sky.ISOTROPY_LEVEL`, 1e-5), epsilon_max = sqrt(threshold / rms
+    at epsilon = 1). With ``cl_limits`` (a file for :func:`raytrace.sky.read_cl_limits`
+    or an array of (l, C_l limit) rows): the C_l test, epsilon_max = min_l (limit_l /
+    C_l at epsilon = 1)^(1/4). ``omega0_eV``: the photon energy of dT/T (default k T_0).
+    """
+    from .constants import HBAR_EV_S
+    from .sky import ISOTROPY_LEVEL, anisotropy_limit, read_cl_limits
+
+    omega0 = float(require_positive_finite(omega0_eV, "omega0_eV"))
+    frequency = f"{omega0 / (2.0 * np.pi * HBAR_EV_S) / 1e9:.3g} GHz"
+    if cl_limits is None:
+        threshold = ISOTROPY_LEVEL if threshold is None else threshold
+        limit = anisotropy_limit(sky, omega0, threshold)
+        return AnisotropyLimit(name, f"sky rms < {_short(threshold)} in dT/T at {frequency}", sky.mass_eV,
+                               limit["epsilon_max_rms"], "rms", float(threshold), None, omega0, sky.nside,
+                               int(sky.run["seed"]), float(sky.run["z_max"]))
+    if threshold is not None:
+        raise InputError("threshold: belongs to the rms test; the C_l test takes its levels from cl_limits")
+    if isinstance(cl_limits, (str, Path)):
+        source, cl_limits = Path(cl_limits).name, read_cl_limits(cl_limits)
+    else:
+        source = "a given table"
+    limit = anisotropy_limit(sky, omega0, cl_limits=cl_limits)
+    return AnisotropyLimit(name, f"C_l limits from {source} at {frequency}", sky.mass_eV,
+                           limit["epsilon_max_cl"], "C_l", None, source, omega0, sky.nside,
+                           int(sky.run["seed"]), float(sky.run["z_max"]))
+
+
+def same_mass_grid(mass_a, mass_b):
+    """Whether two mass grids are the same (to rounding), as one table needs."""
+    a, b = np.asarray(mass_a, dtype=float), np.asarray(mass_b, dtype=float)
+    return a.shape == b.shape and bool(np.allclose(a, b, rtol=1e-12, atol=0))
+
+
+def _short(value):
+    """1e-05 -> 1e-5: numbers as people write them in a legend."""
+    return f"{value:.3g}".replace("e-0", "e-").replace("e+0", "e+")
 
 
 def limit_table(path, limits, overwrite=False):

@@ -15,7 +15,7 @@ from .. import __version__
 from ..errors import InputError
 
 # Subcommand modules, in the order of the data flow.
-_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "limits")
+_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "limits", "report")
 
 
 def build_parser():
@@ -51,6 +51,10 @@ def main(argv=None):
         return int(args._run(args) or 0)
     except InputError as error:
         print(f"raytrace {args.command}: error: {error}", file=sys.stderr)
+        return 2
+    except MemoryError as error:  # sizes the user asked for (cells, rays, step), not a bug
+        print(f"raytrace {args.command}: error: not enough memory for what the options ask ({error}); "
+              "ask for less: fewer cells or rays, a larger step", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"raytrace {args.command}: interrupted", file=sys.stderr)

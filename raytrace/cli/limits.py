@@ -1,14 +1,18 @@
 """``raytrace limits``: upper limits epsilon_max(m) from the measured CMB spectrum.
 
-In: a mass grid, the confidence level, optionally a spectrum table and an
-ionisation history. Out: a table on stdout, and on request a CSV and/or HDF5
-table and a log-log plot.
+In: a sightline result file (--result: the mean and the 16 % / 84 % quantiles
+of K over its rays, beside the homogeneous universe to the same z_max) or a
+mass grid (--mass, --mass-range: the homogeneous universe alone), optionally a
+sky result (--sky: the anisotropy limit beside them), the confidence level, a
+spectrum table and an ionisation history. Out: a table on stdout, and on
+request a CSV and/or HDF5 table and a log-log plot.
 
-For now the kernel is that of the homogeneous universe. :func:`report` is the
-hook for a sightline result: it takes the mass grid and kernel arrays (mean
-over sightlines, a pair of sightline quantiles, the homogeneous background),
-computes the limits and writes what the options ask for.
+:func:`report` takes the mass grid and kernel arrays (mean over sightlines, a
+pair of sightline quantiles, the homogeneous background) and any further
+curves, computes the limits and writes what the options ask for.
 """
+
+from contextlib import contextmanager
 
 import numpy as np
 
@@ -19,12 +23,30 @@ HELP = "Upper limits on the kinetic mixing epsilon versus mass from the CMB spec
 
 
 def add_arguments(parser):
-    masses = parser.add_mutually_exclusive_group(required=True)
+    masses = parser.add_mutually_exclusive_group()
+    masses.add_argument(
+        "--result", default=None, metavar="RESULT.h5",
+        help="sightline result (raytrace sightlines): limits from its mean kernel and 16-84 %% sightline band, "
+        "beside the homogeneous universe to the same z_max; its masses are the grid",
+    )
     masses.add_argument("--mass", nargs="+", type=float, metavar="EV", help="dark-photon masses in eV")
     masses.add_argument(
         "--mass-range", nargs=3, metavar=("MIN", "MAX", "COUNT"),
         help="log-spaced masses: lowest and highest in eV, and how many",
     )
+    add_spectrum_arguments(parser)
+    add_sky_arguments(parser)
+    parser.add_argument(
+        "--output", nargs="+", default=(), metavar="FILE",
+        help="write the limits as a table: .csv and/or .h5 (both may be given)",
+    )
+    parser.add_argument("--plot", default=None, metavar="FILE", help="write a log-log plot (.png, .pdf)")
+    parser.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    add_ionisation_arguments(parser)
+
+
+def add_spectrum_arguments(parser):
+    """Options of the spectral fit; shared with ``raytrace report``."""
     parser.add_argument(
         "--confidence", type=float, default=0.95,
         help="confidence level of the one-sided upper limit (default 0.95, Delta chi^2 = 2.71)",
@@ -39,41 +61,104 @@ def add_arguments(parser):
         "--fit-galaxy", action="store_true",
         help="fit the amplitude of the spectrum's Galaxy template as well as T",
     )
-    parser.add_argument(
-        "--output", nargs="+", default=(), metavar="FILE",
-        help="write the limits as a table: .csv and/or .h5 (both may be given)",
+
+
+def add_sky_arguments(parser):
+    """Options of the sky's anisotropy limit; shared with ``raytrace report``."""
+    group = parser.add_argument_group("anisotropy limit from a sky result")
+    group.add_argument("--sky", default=None, metavar="SKY.h5", help="sky result (raytrace.cast_sky): "
+                       "adds the limit from the isotropy of its dT/T map")
+    group.add_argument(
+        "--frequency", default=None,
+        help="observed photon frequency or energy with a unit for dT/T (and for P in the report), "
+        "e.g. '160 GHz' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)",
     )
-    parser.add_argument("--plot", default=None, metavar="FILE", help="write a log-log plot (.png, .pdf)")
-    parser.add_argument("--overwrite", action="store_true", help="replace existing output files")
-    add_ionisation_arguments(parser)
+    test = group.add_mutually_exclusive_group()
+    test.add_argument("--isotropy-threshold", type=float, default=None, metavar="DT_T",
+                      help="the dT/T rms the map must stay below (default 1e-5)")
+    test.add_argument("--cl-limits", default=None, metavar="FILE",
+                      help="two-column table (l, C_l upper limit in (dT/T)^2): the C_l test instead of the rms")
 
 
-def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, background_kernel_eV=None):
-    """Compute the limits from kernel arrays and print / write them as ``args`` asks.
+# Parameter names in the library's messages and the flags a user typed.
+_FLAG_OF_PARAMETER = {
+    "confidence": "--confidence",
+    "threshold": "--isotropy-threshold",
+    "epsilon": "--epsilon",
+}
 
-    The hook for sightline results: ``mass_eV`` the mass grid, ``mean_kernel_eV``
-    <K>(m) over sightlines, ``spread_kernels_eV`` a pair (K at the 16 % and at
-    the 84 % sightline quantile), ``background_kernel_eV`` K of the homogeneous
-    universe (None: CAMB with Planck 2018). ``args`` supplies --confidence,
-    --spectrum, --fit-galaxy, --output, --plot and --overwrite. Returns the
-    :class:`~raytrace.limits.LimitSet`.
-    """
+
+@contextmanager
+def flags_named():
+    """An InputError inside that names a library parameter names the flag the user typed instead."""
     from ..errors import InputError
-    from ..limits import delta_chi2, limit_table, plot_limits, sightline_limits
-    from ..provenance import check_writable
-    from ..spectrum import read_spectrum
 
     try:
+        yield
+    except InputError as error:
+        message = str(error)
+        for parameter, flag in _FLAG_OF_PARAMETER.items():
+            if message.startswith(parameter + ":"):
+                raise InputError(flag + message[len(parameter):]) from None
+        raise
+
+
+def photon_energy_from_args(args):
+    """--frequency as a photon energy in eV (default k T_0)."""
+    from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
+
+    return CMB_PHOTON_ENERGY_EV if args.frequency is None else photon_energy_eV(args.frequency, "--frequency")
+
+
+def anisotropy_from_args(args, sky):
+    """The anisotropy curve of ``sky`` that --frequency, --isotropy-threshold and --cl-limits ask for."""
+    from ..limits import anisotropy_curve
+
+    with flags_named():
+        return anisotropy_curve(sky, photon_energy_from_args(args), threshold=args.isotropy_threshold,
+                                cl_limits=args.cl_limits)
+
+
+def refuse_unused_sky_options(args, flags=("--frequency", "--isotropy-threshold", "--cl-limits")):
+    """Options of the sky test given without --sky would be silently ignored: refuse them."""
+    from ..errors import InputError
+
+    if args.sky is None:
+        given = [flag for flag in flags if getattr(args, flag.lstrip("-").replace("-", "_")) is not None]
+        if given:
+            raise InputError(f"{', '.join(given)}: only meaningful with --sky SKY.h5 (the anisotropy limit)")
+
+
+def check_confidence(args):
+    """--confidence as the library checks it, the message naming the flag."""
+    from ..limits import delta_chi2
+
+    with flags_named():
         delta_chi2(args.confidence)
-    except InputError as error:  # the library names the parameter; the user typed the flag
-        raise InputError(f"--{error}") from None
-    # Refuse existing outputs before any work is done.
-    for path in (*args.output, *([args.plot] if args.plot else [])):
-        check_writable(path, args.overwrite)
+
+
+def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, background_kernel_eV=None, extra_curves=()):
+    """Compute the limits from kernel arrays and print / write them as ``args`` asks.
+
+    ``mass_eV`` the mass grid, ``mean_kernel_eV`` <K>(m) over sightlines,
+    ``spread_kernels_eV`` a pair (K at the 16 % and at the 84 % sightline
+    quantile), ``background_kernel_eV`` K of the homogeneous universe (None:
+    CAMB with Planck 2018); ``extra_curves`` (e.g. an anisotropy limit on the
+    same masses) join the set. ``args`` supplies --confidence, --spectrum,
+    --fit-galaxy, --output, --plot and --overwrite. Returns the
+    :class:`~raytrace.limits.LimitSet`.
+    """
+    from ..limits import limit_table, plot_limits, sightline_limits
+    from ..spectrum import read_spectrum
+
+    check_confidence(args)
+    _check_outputs(args)
     limits = sightline_limits(
         mass_eV, mean_kernel_eV, spread_kernels_eV, background_kernel_eV=background_kernel_eV,
         spectrum=read_spectrum(args.spectrum), confidence=args.confidence, fit_galaxy=args.fit_galaxy,
     )
+    for curve in extra_curves:
+        limits = limits.with_curve(curve)
     _print(limits)
     for path in args.output:
         limit_table(path, limits, overwrite=args.overwrite)
@@ -84,12 +169,47 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
 
 def run(args):
     from ..background import MeanPlasma
-    from ..errors import require_positive_finite
+    from ..errors import InputError, require_positive_finite
+    from ..limits import result_kernels, same_mass_grid
+    from ..results import SightlineResult
+    from ..sky import SkyResult
 
-    masses = require_positive_finite(masses_from_args(args), "--mass-range" if args.mass is None else "--mass")
-    kernel = MeanPlasma(None, ionisation_from_args(args)).kernel(masses)
-    report(args, masses, background_kernel_eV=kernel)
+    check_confidence(args)
+    refuse_unused_sky_options(args)
+    _check_outputs(args)
+    if args.result is None and args.mass is None and args.mass_range is None and args.sky is None:
+        raise InputError("give the masses: --result RESULT.h5, --mass, --mass-range, or --sky SKY.h5 for its grid")
+    sky = SkyResult.load(args.sky) if args.sky else None
+    plasma = MeanPlasma(None, ionisation_from_args(args))
+    if args.result is not None:
+        kernels = result_kernels(SightlineResult.load(args.result), plasma)
+        grid = f"--result {args.result}"
+    else:
+        if args.mass is None and args.mass_range is None:
+            masses, grid = sky.mass_eV, None
+        else:
+            masses = require_positive_finite(masses_from_args(args), "--mass-range" if args.mass is None else "--mass")
+            grid = "--mass-range" if args.mass is None else "--mass"
+        kernels = {"mass_eV": masses, "background_kernel_eV": plasma.kernel(masses)}
+    extra = ()
+    if sky is not None:
+        if grid is not None and not same_mass_grid(sky.mass_eV, kernels["mass_eV"]):
+            raise InputError(
+                f"--sky {args.sky}: its {sky.mass_eV.size} masses ({sky.mass_eV[0]:.4g} to {sky.mass_eV[-1]:.4g} eV) "
+                f"are not those of {grid} ({len(kernels['mass_eV'])} masses); the table needs one grid: "
+                "cast the sky on the same masses, or leave out the other mass option to use the sky's"
+            )
+        extra = (anisotropy_from_args(args, sky),)
+    report(args, **kernels, extra_curves=extra)
     return 0
+
+
+def _check_outputs(args):
+    """Refuse existing outputs before any work is done."""
+    from ..provenance import check_writable
+
+    for path in (*args.output, *([args.plot] if args.plot else [])):
+        check_writable(path, args.overwrite)
 
 
 def _print(limits):
@@ -104,6 +224,9 @@ def _print(limits):
         f"chi^2 = {first.chi2:.2f} for {first.dof} dof"
     )
     print(f"# one-sided {100 * first.confidence:g} % upper limit, Delta chi^2 = {first.delta_chi2:.3f}: {first.method}")
+    for curve in curves:
+        if not hasattr(curve, "kernel_eV"):  # a limit of another kind (the sky's): say what it is
+            print(f"# {curve.name}: {curve.label}")
     columns = {"mass_eV": first.mass_eV}
     for curve in curves:
         if hasattr(curve, "kernel_eV"):
