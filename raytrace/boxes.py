@@ -598,6 +598,15 @@ def _attribute(node, handle, key):
     return None
 
 
+def _node(handle, name, where):
+    """``handle.get(name)``; a name that is not text HDF5 can store (from argv bytes that
+    are not UTF-8, which Python keeps as lone surrogates) is an InputError."""
+    try:
+        return handle.get(name)
+    except UnicodeEncodeError:
+        raise InputError(f"{where}: {name!r} is not a valid dataset path (HDF5 names are UTF-8 text)") from None
+
+
 def _fraction_dataset_names(handle, datasets, argument):
     names = set()
     if isinstance(argument, str):
@@ -625,7 +634,7 @@ def _find_dataset(handle, path, dataset, ionised_fraction):
     if dataset is not None:
         if not isinstance(dataset, str):
             raise InputError(f"{path}: dataset: expected the path of a dataset as text, got {dataset!r}")
-        node = handle.get(dataset)
+        node = _node(handle, dataset, path)
         if node is None:
             raise InputError(
                 f"{path}: no dataset {dataset!r}; 3-D datasets in the file: "
@@ -834,7 +843,7 @@ def _resolve_fraction(quantity, argument, attribute, handle, where):
                 "'ionised_fraction' or 'ionised_fraction_dataset' attribute"
             )
     if isinstance(argument, str):
-        node = handle.get(argument)
+        node = _node(handle, argument, handle.filename)
         if not isinstance(node, h5py.Dataset):
             raise InputError(
                 f"{handle.filename}: no ionised-fraction dataset {argument!r}; 3-D datasets in the file: "

@@ -46,9 +46,25 @@ def box_mean(box):
     return box.describe()["mean_comoving_density_cm3"] / box.comoving_scale
 
 
-def warn_outside_probed_range(series, mass, z_boxes):
+def probed_mass_range(box, z_start, z_end, density_floor=DENSITY_FLOOR):
+    """(lowest, highest) mass in eV that can resonate in ``box`` while it serves z_start..z_end.
+
+    The engine samples the trilinear interpolant of the cells, which spans the
+    lowest to the highest cell (zero where a box has empty cells), floored at
+    ``density_floor`` times the box mean: so the floor, not the lowest cell, bounds
+    the range from below where it is higher. Densities scale by (1+z)^3 (PHYSICS.md section 3).
+    """
+    lowest_cell, high = box.plasma_mass_range(z_start, z_end)
+    floor = density_floor * box_mean(box) * box.comoving_scale * (1.0 + z_start) ** 3
+    floor_mass = math.sqrt(PLASMA_MASS2_PER_DENSITY * floor)
+    low = floor_mass if box.describe()["zero_cells"] else max(lowest_cell, floor_mass)
+    return low, high
+
+
+def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR):
     """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes."""
-    ranges = [series.boxes[i].plasma_mass_range(z_start, z_end) for z_start, z_end, i in series.intervals(z_boxes)]
+    ranges = [probed_mass_range(series.boxes[i], z_start, z_end, density_floor)
+              for z_start, z_end, i in series.intervals(z_boxes)]
     low, high = min(r[0] for r in ranges), max(r[1] for r in ranges)
     outside = (mass < low) | (mass > high)
     if outside.any():
@@ -202,7 +218,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    warn_outside_probed_range(series, mass, z_boxes)
+    warn_outside_probed_range(series, mass, z_boxes, density_floor)
     tracer = RayTracer(series, mass, z_boxes, seed, step, plasma.cosmology, density_floor)
     if include_background and z_max > z_boxes:
         kernel_background = plasma.kernel(mass, z_boxes, z_max)

@@ -88,10 +88,13 @@ def add_arguments(parser):
 def run(args):
     from ..background import MeanPlasma
     from ..boxes import BoxSeries, load_boxes
+    from ..cosmology import Z_TABLE_MAX
     from ..errors import InputError
     from ..provenance import check_writable
     from .background import ionisation_from_args
 
+    if args.z_max is not None and not (np.isfinite(args.z_max) and 0 < args.z_max <= Z_TABLE_MAX):
+        raise InputError(f"--z-max: expected a redshift in (0, {Z_TABLE_MAX:g}], got {args.z_max!r}")
     if args.plot:
         check_writable(args.plot, args.overwrite)
         _image_format(args.plot)
