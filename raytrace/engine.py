@@ -61,6 +61,38 @@ def probed_mass_range(box, z_start, z_end, density_floor=DENSITY_FLOOR):
     return low, high
 
 
+def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
+    """The highest redshift the boxes serve, checked against what the tables cover.
+
+    With the background included, the boxes serve up to ``z_boxes`` (default: the
+    highest snapshot's redshift) and the homogeneous universe the rest to z_max;
+    without it, the boxes serve all of 0..z_max.
+    """
+    from .cosmology import Z_TABLE_MAX
+
+    if not include_background:
+        if z_boxes is not None and float(z_boxes) != z_max:
+            raise InputError("z_boxes (--z-boxes): only meaningful with the background included")
+        if z_max > Z_TABLE_MAX:
+            raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
+        return float(z_max)
+    if z_max > plasma.ionisation.z_max:
+        raise InputError(f"z_max = {z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
+                         f"which ends at z = {plasma.ionisation.z_max:g}")
+    if z_boxes is None:
+        if not series.z_max > 0:
+            raise InputError(
+                "z_boxes (--z-boxes): the highest snapshot is at z = 0, so by default the boxes would serve no "
+                "redshift at all; say how far they serve with z_boxes, or let them serve everything with "
+                "include_background=False (--no-include-background)"
+            )
+        z_boxes = series.z_max
+    z_boxes = float(z_boxes)
+    if not (math.isfinite(z_boxes) and z_boxes > 0):
+        raise InputError(f"z_boxes (--z-boxes): expected a positive redshift, got {z_boxes!r}")
+    return min(z_boxes, float(z_max))
+
+
 def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR):
     """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes."""
     ranges = [probed_mass_range(series.boxes[i], z_start, z_end, density_floor)
@@ -184,24 +216,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
         raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
     plasma = plasma if plasma is not None else MeanPlasma()
-    if include_background:
-        if z_max > plasma.ionisation.z_max:
-            raise InputError(
-                f"z_max = {z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
-                f"which ends at z = {plasma.ionisation.z_max:g}"
-            )
-        z_boxes = series.z_max if z_boxes is None else float(z_boxes)
-        if not z_boxes > 0:
-            raise InputError(f"z_boxes: expected a positive redshift, got {z_boxes!r}")
-        z_boxes = min(z_boxes, z_max)
-    else:
-        if z_boxes is not None and float(z_boxes) != z_max:
-            raise InputError("z_boxes: only meaningful with include_background=True")
-        from .cosmology import Z_TABLE_MAX
-
-        if z_max > Z_TABLE_MAX:
-            raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
-        z_boxes = z_max
+    z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {
         "raytrace": __version__,
         "n_rays": int(n_rays),

@@ -25,8 +25,8 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
-from .engine import (DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, check_masses, numba_threads,
-                     warn_outside_probed_range)
+from .engine import (DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, boxes_redshift_range,
+                     check_masses, numba_threads, warn_outside_probed_range)
 from .errors import InputError
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
@@ -155,7 +155,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     if isinstance(batch_pixels, bool) or not isinstance(batch_pixels, (int, np.integer)) or batch_pixels < 1:
         raise InputError(f"batch_pixels: expected a whole number >= 1, got {batch_pixels!r}")
     plasma = plasma if plasma is not None else MeanPlasma()
-    z_boxes = _boxes_range(series, plasma, z_max, z_boxes, include_background)
+    z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
@@ -166,7 +166,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    warn_outside_probed_range(series, mass, z_boxes)
+    warn_outside_probed_range(series, mass, z_boxes, density_floor)
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, step, plasma.cosmology,
                        randomise_copies, density_floor)
     if include_background and z_max > z_boxes:
@@ -195,24 +195,6 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run)
     return backend.finish(result)
-
-
-def _boxes_range(series, plasma, z_max, z_boxes, include_background):
-    from .cosmology import Z_TABLE_MAX
-
-    if include_background:
-        if z_max > plasma.ionisation.z_max:
-            raise InputError(f"z_max = {z_max:g} is beyond the ionisation history ({plasma.ionisation.description}), "
-                             f"which ends at z = {plasma.ionisation.z_max:g}")
-        z_boxes = series.z_max if z_boxes is None else float(z_boxes)
-        if not z_boxes > 0:
-            raise InputError(f"z_boxes: expected a positive redshift, got {z_boxes!r}")
-        return min(z_boxes, z_max)
-    if z_boxes is not None and float(z_boxes) != z_max:
-        raise InputError("z_boxes: only meaningful with include_background=True")
-    if z_max > Z_TABLE_MAX:
-        raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
-    return z_max
 
 
 def pixel_window(nside, lmax):
@@ -342,7 +324,8 @@ class SkyResult:
                   ("SKYFRAME", "box axes", "sky frame: the simulation box's axes")]
         for i, box in enumerate(self.run["boxes"]):
             checksum = str(box.get("checksum", "")).replace("sha256:", "")
-            cards.append((f"BOXSUM{i + 1}", checksum[:64], f"sha256 of box {i + 1} (z={box.get('redshift')})"))
+            # 64 hex digits fill the card: no room for a comment.
+            cards.append((f"BOXSUM{i + 1}", checksum[:64]))
         path = Path(path)
         with atomic_output(path, overwrite=overwrite) as temporary:
             healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord="C",
@@ -360,9 +343,9 @@ class SkyResult:
             values, label = self.kernel_map(mass_eV), "K [eV]"
         else:
             values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        figure = plt.figure(figsize=(8, 5))
-        healpy.mollview(values, nest=self.ordering == "NESTED", fig=figure.number, unit=label,
+        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label,
                         title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        figure = plt.gcf()
         if path is not None:
             save_figure(figure, path, overwrite=overwrite)
             plt.close(figure)
@@ -383,7 +366,9 @@ def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
     x = photon_x(omega0_eV)
     shape_factor = -np.expm1(-x) / x
     dtt = -sky.kernel / omega0_eV * shape_factor  # dT/T at epsilon = 1, (npix, n_masses)
-    rms = dtt.std(axis=0)
+    # A map whose pixels are all equal has no anisotropy; np.std's rounding would give it a tiny rms.
+    flat = np.ptp(dtt, axis=0) == 0
+    rms = np.where(flat, 0.0, dtt.std(axis=0))
     with np.errstate(divide="ignore"):
         out = {"mass_eV": sky.mass_eV, "epsilon_max_rms": np.where(rms > 0, np.sqrt(threshold / np.where(rms > 0, rms, 1)), np.inf)}
     if cl_limits is not None:
@@ -394,7 +379,7 @@ def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
         lmax = min(int(ells.max()), 3 * sky.nside - 1)
         keep = ells <= lmax
         best = np.full(sky.mass_eV.size, np.inf)
-        for k in range(sky.mass_eV.size):
+        for k in np.flatnonzero(~flat):
             cl = sky.angular_power(dtt[:, k], lmax=lmax)
             ratio = table[keep, 1] / np.where(cl[ells[keep]] > 0, cl[ells[keep]], np.nan)
             if np.any(np.isfinite(ratio)):
