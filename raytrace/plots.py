@@ -55,6 +55,21 @@ def result_probability(kernel, epsilon, omega0_eV):
     return probability_from_kernel(kernel, epsilon, omega0_eV)
 
 
+def check_figure_path(path, what="--plot"):
+    """Refuse, before any work, a figure name whose format matplotlib cannot write."""
+    from pathlib import Path
+
+    from .errors import InputError
+
+    suffix = Path(path).suffix.lstrip(".").lower()
+    formats = _pyplot().figure().canvas.get_supported_filetypes()
+    _pyplot().close("all")
+    if suffix not in formats:
+        raise InputError(f"{what}: {path}: expected a figure file ending in one of "
+                         f"{', '.join('.' + f for f in sorted(formats))}")
+    return path
+
+
 def save_figure(figure, path, overwrite=False):
     """Save a figure atomically (the format from the file's suffix)."""
     from pathlib import Path

@@ -11,6 +11,7 @@ their help and their checks cannot drift apart.
 
 import argparse
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -31,6 +32,8 @@ class Option:
     at_least: float = None   # inclusive lower bound
     above: float = None      # exclusive lower bound
     flag_name: str = None    # when the key's own name would be ambiguous as a flag
+    path: bool = False       # a file path: in a run file, relative to the run file's folder
+    forbidden: tuple = ()    # values refused although within the bounds
 
     @property
     def flag(self):
@@ -42,7 +45,8 @@ class Option:
 
 
 BOX_OPTIONS = (
-    Option("boxes.files", list, None, "box files or glob patterns (HDF5); a series when several", flag_name="boxes"),
+    Option("boxes.files", list, None, "box files or glob patterns (HDF5); a series when several", flag_name="boxes",
+           path=True),
     Option("boxes.dataset", str, None, "path of the 3-D density dataset in each file (default: the only 3-D dataset)"),
     Option("boxes.quantity", str, None, "what the values are (overrides the file's 'quantity' attribute)"),
     Option("boxes.box_size", str, None, "box side with its unit, e.g. '100 Mpc/h' (overrides the 'box_size' attribute)"),
@@ -63,13 +67,16 @@ TRACE_OPTIONS = (
     Option("rays.include_background", bool, True, "add the homogeneous universe from z_boxes to z_max"),
     Option("rays.step_cells", float, 0.5, "sampling step along the ray, in cells", above=0.0),
     Option("rays.seed", int, 0, "random seed; ray i's stream is fixed by (seed, i)", at_least=0),
-    Option("rays.jobs", int, 1, "parallel threads (-1: all cores)", at_least=-1),
+    Option("rays.jobs", int, 1, "parallel threads (-1: all cores)", at_least=-1, forbidden=(0,)),
     Option("rays.batch_size", int, 256, "rays per batch (checkpoint granularity)", at_least=1),
+    Option("rays.scheduler", str, None, "dask.distributed scheduler address, or 'local' for a local cluster of processes"),
+    Option("rays.workers", int, None, "worker processes of the local cluster (--scheduler local; default: one per core)",
+           at_least=1),
 )
 
 OUTPUT_OPTIONS = (
-    Option("output.path", str, None, "result file (HDF5)", flag_name="output"),
-    Option("output.plot", str, None, "figure of the kernel versus mass (PNG or PDF)"),
+    Option("output.path", str, None, "result file (HDF5)", flag_name="output", path=True),
+    Option("output.plot", str, None, "figure of the kernel versus mass (PNG or PDF)", path=True),
     Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel", above=0.0),
     Option("output.frequency", str, None, "observed photon frequency for P, with a unit (default: k T_0)"),
     Option("output.overwrite", bool, False, "replace existing outputs"),
@@ -77,6 +84,29 @@ OUTPUT_OPTIONS = (
 )
 
 SIGHTLINE_OPTIONS = BOX_OPTIONS + MASS_OPTIONS + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),) + TRACE_OPTIONS + OUTPUT_OPTIONS
+
+_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.step_cells", "rays.seed", "rays.jobs")
+
+SKY_OPTIONS = (
+    BOX_OPTIONS + MASS_OPTIONS
+    + tuple(option for option in TRACE_OPTIONS if option.key in _SKY_TRACE_KEYS)
+    + (
+        Option("sky.nside", int, 32, "HEALPix nside of the map (a power of 2)", at_least=1),
+        Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
+        Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
+        Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
+        Option("sky.batch_pixels", int, 1024, "pixels per batch (checkpoint granularity)", at_least=1),
+        Option("anisotropy.threshold", float, 1e-5, "dT/T rms the map must stay below (CMB isotropy ~1e-5)", above=0.0),
+        Option("anisotropy.cl_limits", str, None, "two-column text table of l and C_l upper limits in (dT/T)^2",
+               path=True),
+    )
+    + OUTPUT_OPTIONS[:1]
+    + (
+        Option("output.fits", str, None, "HEALPix FITS file of the kernel maps (and P with epsilon)", path=True),
+        Option("output.plot", str, None, "Mollweide view of the map that varies most (PNG or PDF)", path=True),
+    )
+    + OUTPUT_OPTIONS[2:]
+)
 
 
 def add_flags(parser, options):
@@ -138,9 +168,12 @@ def read_run_file(path, options):
                 names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
                 raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")
             found[key] = _convert(known[key], value, f"{path}: key {key}")
-    if "boxes.files" in found:
-        # Relative box paths in a run file are relative to the run file, so it can be run from anywhere.
-        found["boxes.files"] = [str(p) if Path(p).is_absolute() else str(path.parent / p) for p in found["boxes.files"]]
+    # Relative paths in a run file are relative to the run file, so it runs from anywhere.
+    for key, value in found.items():
+        if known[key].path:
+            anchored = [v if Path(v).is_absolute() else os.path.normpath(path.parent / v)
+                        for v in ([value] if isinstance(value, str) else value)]
+            found[key] = anchored[0] if isinstance(value, str) else anchored
     return found
 
 
@@ -182,6 +215,8 @@ def _convert(option, value, where):
 def _check_range(option, value):
     if value is None or option.kind not in (int, float):
         return
+    if value in option.forbidden:
+        raise InputError(f"{option.key} ({option.flag}): {value!r} is not allowed ({option.help})")
     if option.at_least is not None and value < option.at_least:
         raise InputError(f"{option.key} ({option.flag}): expected a value >= {option.at_least:g}, got {value!r}")
     if option.above is not None and value <= option.above:

@@ -15,7 +15,7 @@ from .. import __version__
 from ..errors import InputError
 
 # Subcommand modules, in the order of the data flow.
-_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "limits", "report")
+_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "sky", "limits", "report")
 
 
 def build_parser():

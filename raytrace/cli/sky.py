@@ -1,0 +1,82 @@
+"""``raytrace sky``: a HEALPix sky map of conversion seen by one observer, from a TOML run file or flags."""
+
+import numpy as np
+
+from ..runfile import SKY_OPTIONS, add_flags, settings
+from .sightlines import load_boxes, masses, observed_energy
+
+NAME = "sky"
+HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
+        "maps (HDF5, FITS), a Mollweide view and the anisotropy limit on epsilon.")
+
+
+def add_arguments(parser):
+    add_flags(parser, SKY_OPTIONS)
+
+
+def run(args):
+    from ..plots import check_figure_path
+    from ..provenance import check_writable
+    from ..results import HDF5Backend, MemoryBackend
+    from ..sky import anisotropy_limit, cast_sky, read_cl_limits
+
+    values = settings(args, SKY_OPTIONS)
+    overwrite = values["output.overwrite"]
+    for key in ("output.fits", "output.plot"):
+        if values[key]:
+            check_writable(values[key], overwrite)
+    if values["output.plot"]:
+        check_figure_path(values["output.plot"], "--plot (TOML output.plot)")
+    cl_limits = read_cl_limits(values["anisotropy.cl_limits"]) if values["anisotropy.cl_limits"] else None
+    series = load_boxes(values)
+    mass = masses(values)
+    omega0 = observed_energy(values)
+    output = values["output.path"]
+    backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
+    sky = cast_sky(
+        series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
+        rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
+        include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+        ordering=values["sky.ordering"], step=values["rays.step_cells"],
+        randomise_copies=values["sky.randomise_copies"], batch_pixels=values["sky.batch_pixels"],
+        backend=backend, progress=True,
+    )
+    limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
+    print_summary(sky, limit, values["anisotropy.threshold"], omega0)
+    if output:
+        print(f"result: {output}")
+    if values["output.fits"]:
+        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"],
+                       omega0_eV=omega0, overwrite=overwrite)
+        print(f"maps: {values['output.fits']}")
+    if values["output.plot"]:
+        sky.plot_mollweide(most_varied_mass(sky), values["output.plot"], epsilon=values["output.epsilon"],
+                           omega0_eV=omega0, overwrite=overwrite)
+        print(f"plot: {values['output.plot']}")
+    return 0
+
+
+def most_varied_mass(sky):
+    """The grid mass whose map varies most from pixel to pixel (relative rms)."""
+    mean = sky.kernel.mean(axis=0)
+    spread = np.where(mean > 0, sky.kernel.std(axis=0) / np.where(mean > 0, mean, 1.0), 0.0)
+    return float(sky.mass_eV[int(np.argmax(spread))])
+
+
+def print_summary(sky, limit, threshold, omega0):
+    mean = sky.kernel.mean(axis=0)
+    rms = sky.kernel.std(axis=0)
+    print(f"# sky of nside {sky.nside} ({sky.npix} pixels, {sky.run['rays_per_pixel']} rays each), z = 0 to "
+          f"{sky.run['z_max']:g}, boxes to z = {sky.run['z_boxes']:g}, seed {sky.run['seed']}")
+    print(f"# anisotropy test: rms of dT/T below {threshold:g} at omega_0 = {omega0:.4g} eV")
+    header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'rms/mean':>9} {'eps_max_rms':>12}"
+    if "epsilon_max_cl" in limit:
+        header += f" {'eps_max_Cl':>11}"
+    print(header)
+    step = max(1, sky.mass_eV.size // 16)
+    for k in range(0, sky.mass_eV.size, step):
+        relative = rms[k] / mean[k] if mean[k] > 0 else 0.0
+        line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {limit['epsilon_max_rms'][k]:12.3e}"
+        if "epsilon_max_cl" in limit:
+            line += f" {limit['epsilon_max_cl'][k]:11.3e}"
+        print(line)
