@@ -45,6 +45,7 @@ _PUBLIC = {
     "load_series": "boxes",
     "grid_particles": "gridding",
     "cast_sightlines": "engine",
+    "DaskExecutor": "cluster",
     "SightlineResult": "results",
     "cast_sky": "sky",
     "SkyResult": "sky",

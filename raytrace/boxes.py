@@ -796,7 +796,7 @@ def load_box(
         "memory_map": memory_map,
     }
     return Box(
-        values, scale, z, size, quantity, path, dataset_name, file_checksum(path), _load=reopen, _info=info
+        values, scale, z, size, quantity, path.resolve(), dataset_name, file_checksum(path), _load=reopen, _info=info
     )
 
 

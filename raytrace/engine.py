@@ -128,6 +128,22 @@ class RayTracer:
         self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
         self.dt = self.plan.proper_time_steps
 
+    def state(self):
+        """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
+        return {name: value for name, value in vars(self).items() if name != "boxes"}
+
+    @classmethod
+    def from_state(cls, state, boxes):
+        """The tracer whose :meth:`state` is ``state``, sampling ``boxes`` (reopened by the caller).
+
+        The state's own arrays (plan, floors, targets) are used, not recomputed, so
+        the rebuilt tracer gives the same bits as the original.
+        """
+        tracer = object.__new__(cls)
+        vars(tracer).update(state)
+        tracer.boxes = tuple(boxes)
+        return tracer
+
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
         plan = self.plan
@@ -202,8 +218,11 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     batch_size : rays per batch (results do not depend on it)
     plasma : MeanPlasma for the background part (default: CAMB, Planck 2018)
     backend : MemoryBackend (default) or HDF5Backend (checkpointed, resumable)
-    executor : optional callable ``executor(tracer_arguments, batches) -> iterator
-        of (batch, start, arrays)`` that runs batches elsewhere (a cluster)
+    executor : optional callable ``executor(tracer, batches)`` that runs the
+        batches ``(batch, start, stop)`` elsewhere (a cluster) and yields
+        ``(batch, start, arrays)`` as they complete; if it has a ``prepare(tracer)``
+        method, that is called before anything is written, to refuse early
+        (e.g. :class:`raytrace.cluster.DaskExecutor`)
     """
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -242,6 +261,8 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         kernel_background = np.zeros(mass.size)
         dm_background = 0.0
 
+    if executor is not None and hasattr(executor, "prepare"):
+        executor.prepare(tracer)
     starts = list(range(0, n_rays, batch_size))
     backend = backend if backend is not None else MemoryBackend()
     backend.open(mass, n_rays, run, len(starts), SIGHTLINE_LAYOUT, FORMAT)

@@ -196,6 +196,10 @@ def _check_finite(handle, path):
     for name, item in handle.items():
         if item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
             raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
+    # Numbers stored as attributes (the background's dispersion measure) are results too.
+    for name, value in handle.attrs.items():
+        if np.asarray(value).dtype.kind == "f" and not np.all(np.isfinite(value)):
+            raise InputError(f"{path}: attribute {name} would hold NaN or inf; nothing was written")
 
 
 def _differences(stored, current, where=""):
@@ -261,8 +265,8 @@ class HDF5Backend:
         # Crash safety (SIGKILL at any moment): the checkpoint appears whole, by rename,
         # with every dataset contiguous and allocated at creation, so a batch only
         # writes raw bytes at fixed offsets and never touches HDF5's metadata. The
-        # default (oldest) file format keeps no "open for write" flag that a killed
-        # writer would leave set (libver="latest" does, and then refuses to reopen).
+        # default (oldest) file format reopens a file whose writer was killed (with
+        # libver="latest" HDF5 finds it marked open-for-write and refuses).
         allocate = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
         allocate.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
         allocate.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
@@ -276,17 +280,17 @@ class HDF5Backend:
         self.handle = h5py.File(self.checkpoint, "r+")
 
     def _reopen(self, run):
+        # Compared read-only first: a refused resume leaves the checkpoint's bytes as they were.
         try:
-            handle = h5py.File(self.checkpoint, "r+")
-        except OSError as error:
+            with h5py.File(self.checkpoint, "r") as handle:
+                stored = json.loads(handle.attrs["run"])
+        except (OSError, KeyError, ValueError) as error:
             raise InputError(f"{self.checkpoint}: the checkpoint cannot be read ({error}); start afresh with --overwrite") from None
-        stored = json.loads(handle.attrs["run"])
         current = json.loads(json.dumps(run, sort_keys=True, default=str))
         differences = _differences(stored, current)
         if differences:
-            handle.close()
             raise InputError(f"{self.checkpoint}: cannot resume, the run differs: " + "; ".join(differences))
-        return handle
+        return h5py.File(self.checkpoint, "r+")
 
     def completed_batches(self):
         return self.handle["batch_done"][...]

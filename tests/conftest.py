@@ -3,7 +3,9 @@
 import os
 from pathlib import Path
 
+import h5py
 import matplotlib
+import numpy as np
 import pytest
 
 matplotlib.use("Agg")
@@ -30,3 +32,13 @@ def shared_data():
 @pytest.fixture(scope="session")
 def demo_dir():
     return REPOSITORY / "cubes_demo"
+
+
+def write_lognormal_box(path, redshift, rng, cells=16, mean_comoving_cm3=2.5e-7):
+    """A small log-normal comoving electron-density box file (contiguous float32, so it is
+    memory-mapped) with every attribute the loader reads; about the cosmic mean density."""
+    values = (mean_comoving_cm3 * np.exp(rng.normal(-0.125, 0.5, (cells,) * 3))).astype(np.float32)
+    with h5py.File(path, "w") as handle:
+        dataset = handle.create_dataset("electron_density", data=values)
+        dataset.attrs.update(quantity="n_e_comoving", box_size=50.0, box_size_unit="cMpc", redshift=redshift)
+    return path

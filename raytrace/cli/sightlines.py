@@ -46,6 +46,23 @@ def observed_energy(values):
     return photon_energy_eV(values["output.frequency"], "output.frequency (--frequency)")
 
 
+def cluster_executor(values):
+    """The dask executor of --scheduler, connected for the run (None, in a null context, without one)."""
+    from contextlib import nullcontext
+
+    from ..errors import InputError
+
+    scheduler = values["rays.scheduler"]
+    if scheduler is None:
+        if values["rays.workers"] is not None:
+            raise InputError("--workers (TOML rays.workers): sizes a local cluster; add --scheduler local")
+        return nullcontext()
+    from ..cluster import DaskExecutor
+
+    # On the workers, --jobs is the numba threads of each task.
+    return DaskExecutor(scheduler, workers=values["rays.workers"], numba_threads=values["rays.jobs"])
+
+
 def run(args):
     from ..engine import cast_sightlines
     from ..provenance import check_writable
@@ -55,18 +72,22 @@ def run(args):
     output = values["output.path"]
     plot = values["output.plot"]
     if plot:
+        from ..plots import check_figure_path
+
         check_writable(plot, values["output.overwrite"])
+        check_figure_path(plot, "--plot (TOML output.plot)")
     series = load_boxes(values)
     mass = masses(values)
     omega0 = observed_energy(values)
     backend = (HDF5Backend(output, resume=values["output.resume"], overwrite=values["output.overwrite"])
                if output else MemoryBackend())
-    result = cast_sightlines(
-        series, mass, values["rays.count"], values["rays.z_max"], seed=values["rays.seed"],
-        step=values["rays.step_cells"], n_jobs=values["rays.jobs"],
-        include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
-        batch_size=values["rays.batch_size"], backend=backend, progress=True,
-    )
+    with cluster_executor(values) as executor:
+        result = cast_sightlines(
+            series, mass, values["rays.count"], values["rays.z_max"], seed=values["rays.seed"],
+            step=values["rays.step_cells"], n_jobs=values["rays.jobs"],
+            include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+            batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
+        )
     print_summary(result, values["output.epsilon"], omega0)
     if output:
         print(f"result: {output}")
