@@ -7,12 +7,12 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.modeling.models import BlackBody
+from conftest import shared_data_dir
 
 from raytrace.errors import InputError
 from raytrace.spectrum import Spectrum, planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
 
 SHIPPED = Path(__file__).resolve().parents[1] / "raytrace" / "data" / "cmb_monopole_fixsen1996.txt"
-SHARED = Path(__file__).resolve().parents[2] / "shared" / "data" / "cmb_monopole_fixsen1996.txt"
 C_CM_S = const.c.to_value(u.cm / u.s)
 
 
@@ -21,7 +21,8 @@ def data_tokens(path):
 
 
 def published_table():
-    return np.loadtxt(SHARED if SHARED.exists() else SHIPPED)
+    """The published figures (Fixsen et al. 1996, Table 4) from ../shared/data."""
+    return np.loadtxt(shared_data_dir() / "cmb_monopole_fixsen1996.txt")
 
 
 def astropy_planck(frequency_hz, temperature_K):
@@ -33,11 +34,9 @@ def astropy_planck(frequency_hz, temperature_K):
 # -- the shipped copy ---------------------------------------------------------
 
 
-def test_shipped_copy_equals_the_shared_published_figures():
-    # Source: /work/shared/data/cmb_monopole_fixsen1996.txt, Fixsen et al. 1996, ApJ 473, 576, Table 4.
-    if not SHARED.exists():
-        pytest.skip(f"{SHARED} is not on this machine")
-    shipped, shared = data_tokens(SHIPPED), data_tokens(SHARED)
+def test_shipped_copy_equals_the_shared_published_figures(shared_data):
+    # Source: ../shared/data/cmb_monopole_fixsen1996.txt, Fixsen et al. 1996, ApJ 473, 576, Table 4.
+    shipped, shared = data_tokens(SHIPPED), data_tokens(shared_data / "cmb_monopole_fixsen1996.txt")
     assert len(shipped) == 43
     assert shipped == shared  # figure by figure, as printed
 
