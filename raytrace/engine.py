@@ -25,7 +25,7 @@ from .constants import HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, ProbedRangeWarning, require_positive_finite
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density
-from .rays import draw_ray, plan_samples
+from .rays import draw_rays, plan_samples
 from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 
 #: Interpolated densities are floored at this fraction of the box mean so that
@@ -148,11 +148,7 @@ class RayTracer:
         """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
         plan = self.plan
         n = len(ray_indices)
-        starts = np.empty((n, plan.n_segments, 3))
-        directions = np.empty((n, plan.n_segments, 3))
-        ray_direction = np.empty((n, 3))
-        for row, index in enumerate(ray_indices):
-            ray_direction[row], starts[row], directions[row], _ = draw_ray(self.seed, index, plan, self.n_cells)
+        ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
         ln_density = np.zeros((n, plan.n_samples))
         for b, box in enumerate(self.boxes):
             used = self.segments[b]

@@ -38,20 +38,6 @@ def _cube_symmetries():
 CUBE_SYMMETRIES = _cube_symmetries()
 
 
-def ray_generator(seed, index):
-    """The random stream of ray ``index``: fixed by (seed, index) alone."""
-    return np.random.default_rng(np.random.SeedSequence([int(seed), int(index)]))
-
-
-def isotropic_direction(rng):
-    """A unit vector uniform on the sphere (normalised Gaussian triple)."""
-    while True:
-        vector = rng.standard_normal(3)
-        norm = np.sqrt(vector @ vector)
-        if norm > 1e-12:
-            return vector / norm
-
-
 @dataclass(frozen=True)
 class SamplingPlan:
     """Sample positions and segments along a ray, identical for every ray.
@@ -150,19 +136,23 @@ def plan_samples(cosmology, series, z_stop, step_cells):
     )
 
 
-def draw_ray(seed, index, plan, n_cells):
-    """Direction and per-segment geometry of ray ``index``.
+def draw_rays(seed, ray_indices, plan, n_cells):
+    """Direction and per-segment geometry of the rays ``ray_indices``.
 
-    Returns ``(direction, starts, directions, symmetries)``: the unit direction
-    (3,), the start point of each segment in cells of that segment's box
-    (n_segments, 3), the segment's direction after its cube symmetry
-    (n_segments, 3), and the symmetry index (0-47) of each segment.
+    Returns ``(direction, starts, directions, symmetries)``: unit directions
+    (n_rays, 3), each segment's start point in cells of that segment's box
+    (n_rays, n_segments, 3), the segment's direction after its cube symmetry
+    (n_rays, n_segments, 3), and the symmetry indices (n_rays, n_segments).
+    Ray i's numbers come from a stream fixed by (seed, i) alone.
     """
-    rng = ray_generator(seed, index)
-    direction = isotropic_direction(rng)
-    symmetries = rng.integers(0, 48, size=plan.n_segments)
-    shifts = rng.random((plan.n_segments, 3))
-    cells = np.asarray(n_cells, dtype=float)[plan.segment_box]
-    starts = shifts * cells[:, None]
-    directions = CUBE_SYMMETRIES[symmetries] @ direction
+    from .kernels.geometry import ray_geometry
+
+    indices = np.ascontiguousarray(ray_indices, dtype=np.int64)
+    n = indices.size
+    direction = np.empty((n, 3))
+    starts = np.empty((n, plan.n_segments, 3))
+    directions = np.empty((n, plan.n_segments, 3))
+    symmetries = np.empty((n, plan.n_segments), dtype=np.int64)
+    segment_cells = np.asarray(n_cells, dtype=float)[plan.segment_box]
+    ray_geometry(int(seed), indices, segment_cells, CUBE_SYMMETRIES, direction, starts, directions, symmetries)
     return direction, starts, directions, symmetries

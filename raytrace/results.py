@@ -35,7 +35,25 @@ SIGHTLINE_LAYOUT = {
 }
 
 
-class SightlineResult:
+class KernelRows:
+    """What sightline and sky results share: per-row (ray or pixel) kernels from the boxes
+    plus the homogeneous background beyond them, and the same for the dispersion measure."""
+
+    @property
+    def kernel(self):
+        """K in eV per row and mass, boxes plus background; P = epsilon^2 K / omega_0."""
+        return self.kernel_boxes + self.kernel_background[None, :]
+
+    @property
+    def dispersion_measure(self):
+        """DM to z_max in pc cm^-3 per row, boxes plus background."""
+        return self.dispersion_measure_boxes + self.dispersion_measure_background
+
+    def _mass_range(self):
+        return f"{self.mass_eV.size} masses {self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, z_max = {self.run.get('z_max')}"
+
+
+class SightlineResult(KernelRows):
     """Conversion kernels of many independent sightlines.
 
     Attributes
@@ -65,20 +83,11 @@ class SightlineResult:
             array.flags.writeable = False
 
     def __repr__(self):
-        return (f"SightlineResult({self.n_rays} rays, {self.mass_eV.size} masses "
-                f"{self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, z_max = {self.run.get('z_max')})")
+        return f"SightlineResult({self.n_rays} rays, {self._mass_range()})"
 
     @property
     def n_rays(self):
         return self.kernel_boxes.shape[0]
-
-    @property
-    def kernel(self):
-        return self.kernel_boxes + self.kernel_background[None, :]
-
-    @property
-    def dispersion_measure(self):
-        return self.dispersion_measure_boxes + self.dispersion_measure_background
 
     # -- statistics ---------------------------------------------------------------
     def mean(self):

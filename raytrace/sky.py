@@ -31,7 +31,7 @@ from .errors import InputError
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
 from .rays import CUBE_SYMMETRIES, plan_samples
-from .results import MemoryBackend, open_result, save_arrays
+from .results import KernelRows, MemoryBackend, open_result, save_arrays
 from .units import CMB_TEMPERATURE_K
 
 FORMAT = "raytrace-sky-1"
@@ -213,7 +213,7 @@ def photon_x(omega0_eV):
     return omega0_eV / (K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K)
 
 
-class SkyResult:
+class SkyResult(KernelRows):
     """Kernel maps of one observer's sky.
 
     ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
@@ -232,20 +232,11 @@ class SkyResult:
         self.ordering = self.run["ordering"]
 
     def __repr__(self):
-        return (f"SkyResult(nside {self.nside} {self.ordering}, {self.mass_eV.size} masses "
-                f"{self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, z_max = {self.run['z_max']})")
+        return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
 
     @property
     def npix(self):
         return self.kernel_boxes.shape[0]
-
-    @property
-    def kernel(self):
-        return self.kernel_boxes + self.kernel_background[None, :]
-
-    @property
-    def dispersion_measure(self):
-        return self.dispersion_measure_boxes + self.dispersion_measure_background
 
     def mass_index(self, mass_eV):
         """Index of the grid mass nearest (in log) to ``mass_eV``."""

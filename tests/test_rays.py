@@ -12,7 +12,7 @@ from astropy.cosmology import Planck18
 from raytrace.boxes import Box, BoxSeries
 from raytrace.cosmology import Cosmology
 from raytrace.errors import InputError
-from raytrace.rays import CUBE_SYMMETRIES, draw_ray, plan_samples
+from raytrace.rays import CUBE_SYMMETRIES, draw_rays, plan_samples
 
 
 def test_the_48_transforms_are_the_symmetries_of_the_cube():
@@ -69,17 +69,32 @@ def test_samples_cover_the_whole_ray_without_gaps(blend):
 def test_each_ray_has_its_own_fixed_stream():
     cosmology = Cosmology()
     plan = plan_samples(cosmology, series_of([0.0], [100.0], [32]), z_stop=1.0, step_cells=0.5)
-    a = draw_ray(4, 17, plan, [32])
-    b = draw_ray(4, 17, plan, [32])
-    c = draw_ray(4, 18, plan, [32])
-    for x, y in zip(a, b):
-        np.testing.assert_array_equal(x, y)
-    assert not np.array_equal(a[0], c[0])
-    direction, starts, directions, symmetries = a
-    np.testing.assert_allclose(directions, CUBE_SYMMETRIES[symmetries] @ direction)
+    together = draw_rays(4, [16, 17, 18], plan, [32])
+    alone = draw_rays(4, [17], plan, [32])
+    # Ray 17's geometry does not depend on which other rays share its batch.
+    for batch, single in zip(together, alone):
+        np.testing.assert_array_equal(batch[1], single[0])
+    assert not np.array_equal(together[0][0], together[0][1])
+    assert not np.array_equal(draw_rays(5, [17], plan, [32])[0], alone[0])
+    direction, starts, directions, symmetries = alone
+    np.testing.assert_allclose(directions[0], CUBE_SYMMETRIES[symmetries[0]] @ direction[0])
     assert np.all((starts >= 0) & (starts < 32))
     # with ~ (chi(1)=3396 Mpc)/(100 Mpc) = 34 segments, the symmetries are not all the same
-    assert plan.n_segments >= 34 and len(set(symmetries)) > 5
+    assert plan.n_segments >= 34 and len(set(symmetries[0])) > 5
+
+
+def test_copy_symmetries_and_shifts_are_uniform():
+    # Over many rays and segments each of the 48 symmetries is equally likely (chi^2 test,
+    # scipy.stats.chisquare) and each start coordinate is uniform in the box (Kolmogorov-Smirnov,
+    # scipy.stats.kstest); p > 1e-3 (common practice, no source).
+    from scipy import stats
+
+    plan = plan_samples(Cosmology(), series_of([0.0], [100.0], [32]), z_stop=1.0, step_cells=0.5)
+    _, starts, _, symmetries = draw_rays(11, np.arange(400), plan, [32])
+    counts = np.bincount(symmetries.ravel(), minlength=48)
+    assert stats.chisquare(counts).pvalue > 1e-3
+    for axis in range(3):
+        assert stats.kstest(starts[..., axis].ravel() / 32, "uniform").pvalue > 1e-3
 
 
 def test_bad_plan_input():

@@ -23,7 +23,8 @@ from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError, ProbedRangeWarning
 from raytrace.ionisation import IonisationHistory
-from raytrace.kernels.sampling import add_log_density_lattice, copy_transform
+from raytrace.kernels.geometry import copy_transform
+from raytrace.kernels.sampling import add_log_density_lattice
 from raytrace.rays import CUBE_SYMMETRIES, plan_samples
 from raytrace.sky import SkyResult, anisotropy_limit, observer_position, photon_x, read_cl_limits
 

@@ -1,5 +1,7 @@
 """``raytrace background``: K(m) and P(m) of the homogeneous universe."""
 
+from contextlib import contextmanager
+
 import numpy as np
 
 NAME = "background"
@@ -35,18 +37,32 @@ def add_ionisation_arguments(parser):
 
 
 # Parameter names in the library's messages and the flags a user typed.
-_FLAG_OF_PARAMETER = {
+_IONISATION_FLAGS = {
     "optical_depth": "--optical-depth",
     "reionisation_redshift": "--reionisation-redshift",
     "helium_fraction": "--helium-fraction",
 }
 
 
-def ionisation_from_args(args, cosmology=None):
+@contextmanager
+def flags_named(flag_of_parameter):
+    """An InputError inside that names a library parameter names the flag the user typed instead."""
     from ..errors import InputError
-    from ..ionisation import DEFAULT_HELIUM_FRACTION, IonisationHistory
 
     try:
+        yield
+    except InputError as error:
+        message = str(error)
+        for parameter, flag in flag_of_parameter.items():
+            if message.startswith(parameter + ":"):
+                raise InputError(flag + message[len(parameter):]) from None
+        raise
+
+
+def ionisation_from_args(args, cosmology=None):
+    from ..ionisation import DEFAULT_HELIUM_FRACTION, IonisationHistory
+
+    with flags_named(_IONISATION_FLAGS):
         if args.ionisation_table:
             helium = DEFAULT_HELIUM_FRACTION if args.helium_fraction is None else args.helium_fraction
             return IonisationHistory.from_table(args.ionisation_table, helium_fraction=helium)
@@ -56,12 +72,6 @@ def ionisation_from_args(args, cosmology=None):
             reionisation_redshift=args.reionisation_redshift,
             helium_fraction=args.helium_fraction,
         )
-    except InputError as error:
-        message = str(error)
-        for parameter, flag in _FLAG_OF_PARAMETER.items():
-            if message.startswith(parameter + ":"):
-                raise InputError(flag + message[len(parameter):]) from None
-        raise
 
 
 def masses_from_args(args):

@@ -12,11 +12,11 @@ pair of sightline quantiles, the homogeneous background) and any further
 curves, computes the limits and writes what the options ask for.
 """
 
-from contextlib import contextmanager
 
 import numpy as np
 
 from .background import add_ionisation_arguments, ionisation_from_args, masses_from_args
+from .background import flags_named as background_flags_named
 
 NAME = "limits"
 HELP = "Upper limits on the kinetic mixing epsilon versus mass from the CMB spectrum (FIRAS by default)."
@@ -81,26 +81,16 @@ def add_sky_arguments(parser):
 
 
 # Parameter names in the library's messages and the flags a user typed.
-_FLAG_OF_PARAMETER = {
+_LIMIT_FLAGS = {
     "confidence": "--confidence",
     "threshold": "--isotropy-threshold",
     "epsilon": "--epsilon",
 }
 
 
-@contextmanager
 def flags_named():
-    """An InputError inside that names a library parameter names the flag the user typed instead."""
-    from ..errors import InputError
-
-    try:
-        yield
-    except InputError as error:
-        message = str(error)
-        for parameter, flag in _FLAG_OF_PARAMETER.items():
-            if message.startswith(parameter + ":"):
-                raise InputError(flag + message[len(parameter):]) from None
-        raise
+    """An InputError inside that names a limit parameter names its flag instead."""
+    return background_flags_named(_LIMIT_FLAGS)
 
 
 def photon_energy_from_args(args):

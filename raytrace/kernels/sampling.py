@@ -13,6 +13,8 @@ import math
 import numba
 import numpy as np
 
+from .geometry import copy_transform
+
 
 @numba.njit(cache=True, inline="always")
 def _wrap(index, n):
@@ -76,34 +78,6 @@ def gather_nearest(cube, points):
             _wrap(int(math.floor(points[p, 2])), n2),
         ]
     return out
-
-
-@numba.njit(cache=True, inline="always")
-def _mix(state):
-    """splitmix64 finaliser (Steele, Lea & Flood 2014): a well-spread 64-bit hash."""
-    state = (state ^ (state >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-    state = (state ^ (state >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-    return state ^ (state >> np.uint64(31))
-
-
-@numba.njit(cache=True)
-def copy_transform(seed, box_index, c0, c1, c2):
-    """(symmetry index 0-47, three shifts in [0, 1)) of lattice copy (c0, c1, c2) of box ``box_index``.
-
-    A pure function of its arguments, so every ray through a copy sees the same copy.
-    """
-    golden = np.uint64(0x9E3779B97F4A7C15)
-    state = _mix(np.uint64(seed) + golden)
-    state = _mix(state ^ (np.uint64(box_index) + golden))
-    state = _mix(state ^ (np.uint64(c0 & 0xFFFFFFFF) + golden))
-    state = _mix(state ^ (np.uint64(c1 & 0xFFFFFFFF) + golden))
-    state = _mix(state ^ (np.uint64(c2 & 0xFFFFFFFF) + golden))
-    symmetry = int(state % np.uint64(48))
-    unit = 1.0 / 9007199254740992.0  # 2^-53
-    s0 = float(_mix(state + np.uint64(1)) >> np.uint64(11)) * unit
-    s1 = float(_mix(state + np.uint64(2)) >> np.uint64(11)) * unit
-    s2 = float(_mix(state + np.uint64(3)) >> np.uint64(11)) * unit
-    return symmetry, s0, s1, s2
 
 
 @numba.njit(cache=True, parallel=True)
