@@ -197,17 +197,6 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     return backend.finish(result)
 
 
-def pixel_window(nside, lmax):
-    """healpy.pixwin(nside)[:lmax+1], or None where healpy's window files are not installed
-    (healpy fetches them over the network on first use)."""
-    import urllib.error
-
-    try:
-        return _healpy().pixwin(nside)[: lmax + 1]
-    except (OSError, urllib.error.URLError):
-        return None
-
-
 def photon_x(omega0_eV):
     """x = h nu / (k T_0) for an observed photon energy h nu in eV (T_0 = 2.72548 K, Fixsen 2009)."""
     return omega0_eV / (K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K)
@@ -261,8 +250,8 @@ class SkyResult(KernelRows):
         """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
 
         The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
-        are not deconvolved. :func:`pixel_window` gives healpy's window where its data
-        files are installed.
+        are not deconvolved: divide by healpy.pixwin(nside)**2 where healpy's window
+        files are installed (healpy fetches them over the network on first use).
         """
         healpy = _healpy()
         ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
