@@ -42,3 +42,24 @@ def write_lognormal_box(path, redshift, rng, cells=16, mean_comoving_cm3=2.5e-7)
         dataset = handle.create_dataset("electron_density", data=values)
         dataset.attrs.update(quantity="n_e_comoving", box_size=50.0, box_size_unit="cMpc", redshift=redshift)
     return path
+
+
+def camb_background_for_planck18(tau=0.0561):
+    """CAMB run by hand for astropy's Planck18 (H0, Omega_b h^2, Omega_dm h^2, m_nu, Neff,
+    Tcmb0) with tau = 0.0561 (Planck 2018 VI, TT,TE,EE+lowE+lensing+BAO): the reference
+    for the project's default ionisation history."""
+    import camb
+    from astropy.cosmology import Planck18
+
+    h = Planck18.h
+    params = camb.CAMBparams()
+    params.set_cosmology(
+        H0=Planck18.H0.value,
+        ombh2=Planck18.Ob0 * h**2,
+        omch2=Planck18.Odm0 * h**2,
+        mnu=float(np.sum(Planck18.m_nu.value)),
+        nnu=Planck18.Neff,
+        TCMB=Planck18.Tcmb0.value,
+        tau=tau,
+    )
+    return camb.get_background(params)

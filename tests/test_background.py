@@ -8,10 +8,10 @@ x_e for the rate d ln m_gamma^2/dt at each resonance.
 
 import astropy.constants as const
 import astropy.units as u
-import camb
 import numpy as np
 import pytest
 from astropy.cosmology import FlatLambdaCDM, Planck18
+from conftest import camb_background_for_planck18
 from scipy.optimize import brentq
 
 from raytrace.background import MeanPlasma, background_kernel
@@ -97,18 +97,7 @@ def test_physics_md_example_today():
 @pytest.fixture(scope="module")
 def camb_reference():
     """CAMB by hand for astropy's Planck18 (the project's default) with tau = 0.0561."""
-    h = Planck18.h
-    params = camb.CAMBparams()
-    params.set_cosmology(
-        H0=Planck18.H0.value,
-        ombh2=Planck18.Ob0 * h**2,
-        omch2=Planck18.Odm0 * h**2,
-        mnu=float(np.sum(Planck18.m_nu.value)),
-        nnu=Planck18.Neff,
-        TCMB=Planck18.Tcmb0.value,
-        tau=0.0561,
-    )
-    results = camb.get_background(params)
+    results = camb_background_for_planck18()
     n_H0 = _hydrogen_density0(Planck18, results.Params.YHe)
 
     def x_e(z):

@@ -11,6 +11,7 @@ import camb
 import numpy as np
 import pytest
 from astropy.cosmology import FlatLambdaCDM, Planck18
+from conftest import camb_background_for_planck18
 from scipy.optimize import brentq
 
 from raytrace.errors import InputError
@@ -96,16 +97,7 @@ def test_xe_physics_md_figures(camb_planck2018, history, z, printed):
 def test_default_history_is_camb_with_planck18(history):
     # Default: astropy's Planck18 handed to CAMB (H0, Omega_b h^2, Omega_dm h^2, m_nu, Neff, Tcmb0 of
     # astropy's Planck18), tau = 0.0561 (Planck 2018 VI, TT,TE,EE+lowE+lensing+BAO).
-    h = Planck18.h
-    results = _camb_results(
-        H0=Planck18.H0.value,
-        ombh2=Planck18.Ob0 * h**2,
-        omch2=Planck18.Odm0 * h**2,
-        mnu=float(np.sum(Planck18.m_nu.value)),
-        nnu=Planck18.Neff,
-        TCMB=Planck18.Tcmb0.value,
-        tau=0.0561,
-    )
+    results = camb_background_for_planck18()
     default = IonisationHistory.from_camb()
     z = np.concatenate((CHECK_REDSHIFTS, np.linspace(0.0, 1500.0, 3001)))
     np.testing.assert_allclose(default.x_e(z), _camb_xe(results, z), rtol=1e-3)
