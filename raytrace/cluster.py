@@ -2,7 +2,8 @@
 
 In: a scheduler address (``'local'`` for a cluster of processes on this
 machine, or a ready ``distributed.Client``), then, from
-``cast_sightlines(executor=...)``, the run's RayTracer and its batches
+``cast_sightlines(executor=...)`` or ``cast_sky(executor=...)``, the run's
+tracer and its batches
 (batch index, first ray, stop). Out: ``(batch, start, arrays)`` for each batch
 as soon as it completes, in any order, so the backend checkpoints each one.
 
@@ -53,6 +54,7 @@ def tracer_recipe(tracer):
                 "with raytrace.load_box, or run without a scheduler"
             )
     return {
+        "kind": type(tracer),
         "state": tracer.state(),
         "boxes": [box.load_arguments for box in tracer.boxes],
         "checksums": [box.checksum for box in tracer.boxes],
@@ -60,9 +62,8 @@ def tracer_recipe(tracer):
 
 
 def rebuild_tracer(recipe):
-    """The RayTracer of ``recipe`` with its boxes reopened from their files (on a worker)."""
+    """The tracer of ``recipe`` with its boxes reopened from their files (on a worker)."""
     from .boxes import load_box
-    from .engine import RayTracer
 
     boxes = [load_box(**arguments) for arguments in recipe["boxes"]]
     for box, checksum in zip(boxes, recipe["checksums"]):
@@ -72,7 +73,7 @@ def rebuild_tracer(recipe):
                 f"(checksum {box.checksum}, expected {checksum}); the boxes must not change during a run "
                 "and every worker must see the same files (a shared file system)"
             )
-    return RayTracer.from_state(recipe["state"], boxes)
+    return recipe["kind"].from_state(recipe["state"], boxes)
 
 
 def trace_batch(token, recipe, start, stop, numba_threads):
@@ -90,7 +91,7 @@ def trace_batch(token, recipe, start, stop, numba_threads):
 
 
 class DaskExecutor:
-    """Runs the batches of ``cast_sightlines`` on dask.distributed workers.
+    """Runs the batches of ``cast_sightlines`` or ``cast_sky`` on dask.distributed workers.
 
     Parameters
     ----------

@@ -107,7 +107,27 @@ def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR
         ), stacklevel=3)
 
 
-class RayTracer:
+class Tracer:
+    """What a cluster needs of a tracer: its state without the boxes, and a way back."""
+
+    def state(self):
+        """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
+        return {name: value for name, value in vars(self).items() if name != "boxes"}
+
+    @classmethod
+    def from_state(cls, state, boxes):
+        """The tracer whose :meth:`state` is ``state``, sampling ``boxes`` (reopened by the caller).
+
+        The state's own arrays (plan, floors, targets) are used, not recomputed, so
+        the rebuilt tracer gives the same bits as the original.
+        """
+        tracer = object.__new__(cls)
+        vars(tracer).update(state)
+        tracer.boxes = tuple(boxes)
+        return tracer
+
+
+class RayTracer(Tracer):
     """Everything one batch of rays needs: the plan, the boxes' arrays, the mass targets.
 
     Built once per run (and once per worker process in a cluster run, from the
@@ -127,22 +147,6 @@ class RayTracer:
         self.floors = [density_floor * box_mean(box) for box in self.boxes]
         self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
         self.dt = self.plan.proper_time_steps
-
-    def state(self):
-        """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
-        return {name: value for name, value in vars(self).items() if name != "boxes"}
-
-    @classmethod
-    def from_state(cls, state, boxes):
-        """The tracer whose :meth:`state` is ``state``, sampling ``boxes`` (reopened by the caller).
-
-        The state's own arrays (plan, floors, targets) are used, not recomputed, so
-        the rebuilt tracer gives the same bits as the original.
-        """
-        tracer = object.__new__(cls)
-        vars(tracer).update(state)
-        tracer.boxes = tuple(boxes)
-        return tracer
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
@@ -192,6 +196,44 @@ def background_dispersion_measure(plasma, z_from, z_to, points=4001):
     chi = plasma.cosmology.comoving_distance_Mpc(z)
     integrand = plasma.mean_comoving_electron_density_cm3(z) * (1.0 + z)
     return float(np.trapezoid(integrand, chi) * 1.0e6)
+
+
+def background_part(plasma, mass, z_boxes, z_max, include_background):
+    """(K per mass, DM) of the homogeneous universe beyond the boxes, the same for every ray."""
+    if include_background and z_max > z_boxes:
+        return plasma.kernel(mass, z_boxes, z_max), background_dispersion_measure(plasma, z_boxes, z_max)
+    return np.zeros(mass.size), 0.0
+
+
+def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
+                unit, description):
+    """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` and return its arrays.
+
+    Batches the backend already holds (a resumed checkpoint) are skipped; the rest
+    run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
+    written to the backend as it completes.
+    """
+    from tqdm.auto import tqdm
+
+    if executor is not None and hasattr(executor, "prepare"):
+        executor.prepare(tracer)
+    starts = list(range(0, n_rows, batch_size))
+    backend.open(mass, n_rows, run, len(starts), layout, format_name)
+    done = backend.completed_batches()
+    todo = [(b, s, min(s + batch_size, n_rows)) for b, s in enumerate(starts) if not done[b]]
+    with tqdm(total=n_rows, initial=n_rows - sum(stop - start for _, start, stop in todo), unit=unit,
+              desc=description, disable=not progress) as bar:
+        if executor is None:
+            with numba_threads(n_jobs):
+                for b, start, stop in todo:
+                    backend.write_batch(b, start, tracer.trace(range(start, stop)))
+                    bar.update(stop - start)
+        else:
+            finished = dict((b, stop - start) for b, start, stop in todo)
+            for b, start, arrays in executor(tracer, todo):
+                backend.write_batch(b, start, arrays)
+                bar.update(finished[b])
+    return backend.read()
 
 
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, include_background=True,
@@ -250,34 +292,10 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     }
     warn_outside_probed_range(series, mass, z_boxes, density_floor)
     tracer = RayTracer(series, mass, z_boxes, seed, step, plasma.cosmology, density_floor)
-    if include_background and z_max > z_boxes:
-        kernel_background = plasma.kernel(mass, z_boxes, z_max)
-        dm_background = background_dispersion_measure(plasma, z_boxes, z_max)
-    else:
-        kernel_background = np.zeros(mass.size)
-        dm_background = 0.0
-
-    if executor is not None and hasattr(executor, "prepare"):
-        executor.prepare(tracer)
-    starts = list(range(0, n_rays, batch_size))
+    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
-    backend.open(mass, n_rays, run, len(starts), SIGHTLINE_LAYOUT, FORMAT)
-    done = backend.completed_batches()
-    todo = [(b, s) for b, s in enumerate(starts) if not done[b]]
-    from tqdm.auto import tqdm
-
-    with tqdm(total=n_rays, initial=n_rays - sum(min(batch_size, n_rays - s) for _, s in todo),
-              unit="ray", desc="sightlines", disable=not progress) as bar:
-        if executor is None:
-            with numba_threads(n_jobs):
-                for b, s in todo:
-                    backend.write_batch(b, s, tracer.trace(range(s, min(s + batch_size, n_rays))))
-                    bar.update(min(batch_size, n_rays - s))
-        else:
-            for b, s, arrays in executor(tracer, [(b, s, min(s + batch_size, n_rays)) for b, s in todo]):
-                backend.write_batch(b, s, arrays)
-                bar.update(min(batch_size, n_rays - s))
-    arrays = backend.read()
+    arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
+                         executor, progress, unit="ray", description="sightlines")
     result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                              arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run)
     return backend.finish(result)

@@ -86,7 +86,8 @@ OUTPUT_OPTIONS = (
 
 SIGHTLINE_OPTIONS = BOX_OPTIONS + MASS_OPTIONS + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),) + TRACE_OPTIONS + OUTPUT_OPTIONS
 
-_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.step_cells", "rays.seed", "rays.jobs")
+_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.step_cells", "rays.seed", "rays.jobs",
+                   "rays.scheduler", "rays.workers")
 
 SKY_OPTIONS = (
     BOX_OPTIONS + MASS_OPTIONS

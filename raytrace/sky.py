@@ -25,8 +25,8 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
-from .engine import (DENSITY_FLOOR, as_series, background_dispersion_measure, box_mean, boxes_redshift_range,
-                     check_masses, numba_threads, warn_outside_probed_range)
+from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, box_mean, boxes_redshift_range,
+                     check_masses, run_batches, warn_outside_probed_range)
 from .errors import InputError
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
@@ -75,7 +75,7 @@ def observer_position(seed, box_size_cMpc):
     return rng.random(3) * box_size_cMpc
 
 
-class SkyTracer:
+class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, step, cosmology,
@@ -132,15 +132,16 @@ class SkyTracer:
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", step=0.5, plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, density_floor=DENSITY_FLOOR):
+             backend=None, progress=False, density_floor=DENSITY_FLOOR, executor=None):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
     are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
     result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
-    Other arguments as in :func:`raytrace.cast_sightlines`; results are
-    bit-identical for any ``n_jobs`` and ``batch_pixels``.
+    Other arguments (``backend``, ``executor`` for a cluster) as in
+    :func:`raytrace.cast_sightlines`; results are bit-identical for any
+    ``n_jobs``, ``batch_pixels`` or cluster.
     """
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -169,26 +170,12 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     warn_outside_probed_range(series, mass, z_boxes, density_floor)
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, step, plasma.cosmology,
                        randomise_copies, density_floor)
-    if include_background and z_max > z_boxes:
-        kernel_background = plasma.kernel(mass, z_boxes, z_max)
-        dm_background = background_dispersion_measure(plasma, z_boxes, z_max)
-    else:
-        kernel_background, dm_background = np.zeros(mass.size), 0.0
-    starts = list(range(0, npix, batch_pixels))
+    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
-    backend.open(mass, npix, run, len(starts), SKY_LAYOUT, FORMAT)
-    done = backend.completed_batches()
-    from tqdm.auto import tqdm
-
-    todo = [(b, s) for b, s in enumerate(starts) if not done[b]]
-    with tqdm(total=npix, initial=npix - sum(min(batch_pixels, npix - s) for _, s in todo), unit="pixel",
-              desc="sky", disable=not progress) as bar, numba_threads(n_jobs):
-        for b, s in todo:
-            # Pixels are traced in NESTED order (sub-pixels are then contiguous children)
-            # and stored in that order; the result reorders to RING on request.
-            backend.write_batch(b, s, tracer.trace(np.arange(s, min(s + batch_pixels, npix))))
-            bar.update(min(batch_pixels, npix - s))
-    arrays = backend.read()
+    # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
+    # stored in that order; the result reorders to RING on request.
+    arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,
+                         progress, unit="pixel", description="sky")
     if ordering == "RING":
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
         arrays = {name: values[ring_to_nest] for name, values in arrays.items()}

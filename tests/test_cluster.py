@@ -81,6 +81,17 @@ def test_local_cluster_run_equals_serial_run_bit_for_bit(cluster, box_files, pla
     assert max(held) <= 3 + 2
 
 
+def test_local_cluster_sky_equals_serial_sky_bit_for_bit(cluster, box_files, plasma):
+    # The reference is the same sky traced here on one thread.
+    series = raytrace.load_series([str(p) for p in box_files])
+    options = dict(nside=4, z_max=1.0, seed=2, batch_pixels=40, include_background=False, plasma=plasma)
+    serial_sky = raytrace.cast_sky(series, MASS, **options)
+    with DaskExecutor(cluster.scheduler_address) as executor:
+        cluster_sky = raytrace.cast_sky(series, MASS, executor=executor, **options)
+    for name in ("kernel_boxes", "crossings", "dispersion_measure_boxes"):
+        assert np.array_equal(getattr(cluster_sky, name), getattr(serial_sky, name)), name
+
+
 def test_workers_read_the_box_files_themselves(cluster, tmp_path, plasma):
     # The client loads the boxes, then a file is replaced by different bytes (a new
     # inode: the client's memory map still shows the old ones). Only workers that

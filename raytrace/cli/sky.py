@@ -3,7 +3,7 @@
 import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import load_boxes, masses, observed_energy
+from .sightlines import cluster_executor, load_boxes, masses, observed_energy
 
 NAME = "sky"
 HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
@@ -33,14 +33,15 @@ def run(args):
     omega0 = observed_energy(values)
     output = values["output.path"]
     backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
-    sky = cast_sky(
-        series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
-        rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
-        include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
-        ordering=values["sky.ordering"], step=values["rays.step_cells"],
-        randomise_copies=values["sky.randomise_copies"], batch_pixels=values["sky.batch_pixels"],
-        backend=backend, progress=True,
-    )
+    with cluster_executor(values) as executor:
+        sky = cast_sky(
+            series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
+            rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
+            include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+            ordering=values["sky.ordering"], step=values["rays.step_cells"],
+            randomise_copies=values["sky.randomise_copies"], batch_pixels=values["sky.batch_pixels"],
+            backend=backend, progress=True, executor=executor,
+        )
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
     print_summary(sky, limit, values["anisotropy.threshold"], omega0)
     if output:
