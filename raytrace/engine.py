@@ -33,6 +33,13 @@ from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 DENSITY_FLOOR = 1e-8
 
 
+def check_seed(seed):
+    """A seed the counter-based streams take: a whole number in [0, 2^63)."""
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= int(seed) < 2**63:
+        raise InputError(f"seed (--seed): expected a whole number from 0 to 2^63 - 1, got {seed!r}")
+    return int(seed)
+
+
 def check_masses(mass_eV):
     """Positive, finite, strictly increasing masses as a float array."""
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
@@ -264,6 +271,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     """
     series = as_series(series)
     mass = check_masses(mass_eV)
+    seed = check_seed(seed)
     if isinstance(n_rays, bool) or not isinstance(n_rays, (int, np.integer)) or n_rays < 1:
         raise InputError(f"n_rays: expected a whole number >= 1, got {n_rays!r}")
     if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 1:

@@ -31,6 +31,7 @@ class Option:
     help: str
     at_least: float = None   # inclusive lower bound
     above: float = None      # exclusive lower bound
+    at_most: float = None    # inclusive upper bound
     flag_name: str = None    # when the key's own name would be ambiguous as a flag
     path: bool = False       # a file path: in a run file, relative to the run file's folder
     forbidden: tuple = ()    # values refused although within the bounds
@@ -66,7 +67,8 @@ TRACE_OPTIONS = (
     Option("rays.z_boxes", float, None, "highest redshift the boxes serve (default: the highest snapshot's)", above=0.0),
     Option("rays.include_background", bool, True, "add the homogeneous universe from z_boxes to z_max"),
     Option("rays.step_cells", float, 0.5, "sampling step along the ray, in cells", above=0.0),
-    Option("rays.seed", int, 0, "random seed; ray i's stream is fixed by (seed, i)", at_least=0),
+    Option("rays.seed", int, 0, "random seed (0 to 2^63 - 1); ray i's stream is fixed by (seed, i)", at_least=0,
+           at_most=2**63 - 1),
     Option("rays.jobs", int, 1, "parallel threads (-1: all cores); with --scheduler, threads per worker task",
            at_least=-1, forbidden=(0,)),
     Option("rays.batch_size", int, 256, "rays per batch (checkpoint granularity)", at_least=1),
@@ -221,6 +223,8 @@ def _check_range(option, value):
         raise InputError(f"{option.key} ({option.flag}): {value!r} is not allowed ({option.help})")
     if option.at_least is not None and value < option.at_least:
         raise InputError(f"{option.key} ({option.flag}): expected a value >= {option.at_least:g}, got {value!r}")
+    if option.at_most is not None and value > option.at_most:
+        raise InputError(f"{option.key} ({option.flag}): expected a value <= {option.at_most:g}, got {value!r}")
     if option.above is not None and value <= option.above:
         raise InputError(f"{option.key} ({option.flag}): expected a value > {option.above:g}, got {value!r}")
 

@@ -9,7 +9,8 @@ anisotropy limit on epsilon.
 The observer sits at a seeded random point of the lattice of box copies around
 it. Each copy, indexed by its integer position and by the snapshot serving its
 shell, gets one random cube symmetry (about its centre) and periodic shift,
-derived from (seed, snapshot, copy index) alone, so every ray through a copy
+derived from (seed, snapshot, copy index) alone (blended snapshots share one
+transform per copy, since they are mixed sample by sample), so every ray through a copy
 sees the same structures and neighbouring directions are correlated as in a
 real sky. The random transforms break the exact repetition a plain periodic
 lattice would print on the sky; the box still sets the largest correlated
@@ -26,7 +27,7 @@ from . import __version__
 from .background import MeanPlasma
 from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
 from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, box_mean, boxes_redshift_range,
-                     check_masses, run_batches, warn_outside_probed_range)
+                     check_masses, check_seed, run_batches, warn_outside_probed_range)
 from .errors import InputError
 from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
@@ -97,6 +98,9 @@ class SkyTracer(Tracer):
             used = np.flatnonzero(self.plan.weights[b] != 0)
             self.ranges.append((int(used[0]), int(used[-1]) + 1) if used.size else (0, 0))
         self.dt = self.plan.proper_time_steps
+        # Blended snapshots share a grid and are mixed sample by sample: they must see the
+        # same transform in each copy, or the blend would average two unrelated fields.
+        self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
 
     def ray_directions(self, pixels):
         """Unit vectors of the sub-pixel centres of NESTED ``pixels``, (n_pixels * 4^level, 3)."""
@@ -115,7 +119,7 @@ class SkyTracer(Tracer):
             if stop > first:
                 add_log_density_lattice(box.data, math.log(box.comoving_scale), self.floors[b], first, stop,
                                         plan.chi, plan.weights[b], directions, self.observer, box.box_size_cMpc,
-                                        self.seed, b, CUBE_SYMMETRIES, self.randomise, ln_density)
+                                        self.seed, self.copy_keys[b], CUBE_SYMMETRIES, self.randomise, ln_density)
         ln_density += 3.0 * plan.u[None, :]
         kernel = np.zeros((n, self.mass2.size))
         count = np.zeros((n, self.mass2.size), dtype=np.int32)
@@ -145,6 +149,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     """
     series = as_series(series)
     mass = check_masses(mass_eV)
+    seed = check_seed(seed)
     nside = _check_nside(nside)
     level = _sub_pixel_level(rays_per_pixel)
     if ordering not in ORDERINGS:
