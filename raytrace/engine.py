@@ -115,7 +115,31 @@ def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR
 
 
 class Tracer:
-    """What a cluster needs of a tracer: its state without the boxes, and a way back."""
+    """What sightline and sky tracers share: the sampling plan, the mass targets, the
+    crossing integration, and (for a cluster) their state without the boxes."""
+
+    def _set_up(self, series, mass_eV, z_boxes, seed, step, cosmology, density_floor):
+        self.boxes = series.boxes
+        self.seed = int(seed)
+        self.plan = plan_samples(cosmology, series, z_boxes, step)
+        self.dt = self.plan.proper_time_steps
+        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
+        self.mass2 = mass_eV**2
+        spacing = np.diff(self.targets)
+        self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
+        self.floors = [density_floor * box_mean(box) for box in self.boxes]
+
+    def _crossings(self, ln_density):
+        """(kernel, crossing counts, DM) per ray from sampled comoving ln n_e, (n_rays, n_samples)."""
+        plan = self.plan
+        ln_density += 3.0 * plan.u[None, :]  # comoving -> physical at each sample's redshift
+        n = ln_density.shape[0]
+        kernel = np.zeros((n, self.mass2.size))
+        count = np.zeros((n, self.mass2.size), dtype=np.int32)
+        dispersion = np.zeros(n)
+        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
+                      HBAR_EV_S, kernel, count, dispersion)
+        return kernel, count, dispersion
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -142,18 +166,9 @@ class RayTracer(Tracer):
     """
 
     def __init__(self, series, mass_eV, z_boxes, seed, step, cosmology, density_floor=DENSITY_FLOOR):
-        self.boxes = series.boxes
-        self.seed = int(seed)
-        self.mass_eV = mass_eV
-        self.plan = plan_samples(cosmology, series, z_boxes, step)
+        self._set_up(series, mass_eV, z_boxes, seed, step, cosmology, density_floor)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
-        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
-        self.mass2 = mass_eV**2
-        spacing = np.diff(self.targets)
-        self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
-        self.floors = [density_floor * box_mean(box) for box in self.boxes]
         self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
-        self.dt = self.plan.proper_time_steps
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
@@ -171,12 +186,7 @@ class RayTracer(Tracer):
                 np.ascontiguousarray(starts[:, used]), np.ascontiguousarray(directions[:, used]),
                 plan.weights[b], ln_density,
             )
-        ln_density += 3.0 * plan.u[None, :]  # comoving -> physical at each sample's redshift
-        kernel = np.zeros((n, self.mass_eV.size))
-        count = np.zeros((n, self.mass_eV.size), dtype=np.int32)
-        dispersion = np.zeros(n)
-        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
-                      HBAR_EV_S, kernel, count, dispersion)
+        kernel, count, dispersion = self._crossings(ln_density)
         return {"kernel_boxes": kernel, "crossings": count, "dispersion_measure_boxes": dispersion,
                 "direction": ray_direction}
 

@@ -25,13 +25,12 @@ import numpy as np
 
 from . import __version__
 from .background import MeanPlasma
-from .constants import HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
-from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, box_mean, boxes_redshift_range,
+from .constants import K_BOLTZMANN_EV_K
+from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, boxes_redshift_range,
                      check_masses, check_seed, run_batches, warn_outside_probed_range)
 from .errors import InputError
-from .kernels.crossings import add_crossings
 from .kernels.sampling import add_log_density_lattice
-from .rays import CUBE_SYMMETRIES, plan_samples
+from .rays import CUBE_SYMMETRIES
 from .results import KernelRows, MemoryBackend, open_result, save_arrays
 from .units import CMB_TEMPERATURE_K
 
@@ -81,23 +80,15 @@ class SkyTracer(Tracer):
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, step, cosmology,
                  randomise_copies=True, density_floor=DENSITY_FLOOR):
-        self.boxes = series.boxes
+        self._set_up(series, mass_eV, z_boxes, seed, step, cosmology, density_floor)
         self.nside = nside
         self.level = _sub_pixel_level(rays_per_pixel)
-        self.seed = int(seed)
         self.randomise = bool(randomise_copies)
-        self.plan = plan_samples(cosmology, series, z_boxes, step)
         self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
-        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
-        self.mass2 = mass_eV**2
-        spacing = np.diff(self.targets)
-        self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
-        self.floors = [density_floor * box_mean(box) for box in self.boxes]
         self.ranges = []
         for b in range(len(self.boxes)):
             used = np.flatnonzero(self.plan.weights[b] != 0)
             self.ranges.append((int(used[0]), int(used[-1]) + 1) if used.size else (0, 0))
-        self.dt = self.plan.proper_time_steps
         # Blended snapshots share a grid and are mixed sample by sample: they must see the
         # same transform in each copy, or the blend would average two unrelated fields.
         self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
@@ -120,12 +111,7 @@ class SkyTracer(Tracer):
                 add_log_density_lattice(box.data, math.log(box.comoving_scale), self.floors[b], first, stop,
                                         plan.chi, plan.weights[b], directions, self.observer, box.box_size_cMpc,
                                         self.seed, self.copy_keys[b], CUBE_SYMMETRIES, self.randomise, ln_density)
-        ln_density += 3.0 * plan.u[None, :]
-        kernel = np.zeros((n, self.mass2.size))
-        count = np.zeros((n, self.mass2.size), dtype=np.int32)
-        dispersion = np.zeros(n)
-        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
-                      HBAR_EV_S, kernel, count, dispersion)
+        kernel, count, dispersion = self._crossings(ln_density)
         per_pixel = 4**self.level
         return {
             "kernel_boxes": kernel.reshape(len(pixels), per_pixel, -1).mean(axis=1),
@@ -194,6 +180,12 @@ def photon_x(omega0_eV):
     return omega0_eV / (K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K)
 
 
+def anisotropy_per_probability(omega0_eV):
+    """|dT/T| per unit P at observed energy omega_0: (1 - e^-x)/x, x = h nu/(k T_0) (PHYSICS.md section 6)."""
+    x = photon_x(omega0_eV)
+    return -np.expm1(-x) / x
+
+
 class SkyResult(KernelRows):
     """Kernel maps of one observer's sky.
 
@@ -235,8 +227,7 @@ class SkyResult(KernelRows):
 
     def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
         """dT/T = -P (1 - e^-x)/x with x = h nu/(k T_0) (PHYSICS.md section 6), mean included."""
-        x = photon_x(omega0_eV)
-        return -self.probability_map(mass_eV, epsilon, omega0_eV) * (-np.expm1(-x)) / x
+        return -self.probability_map(mass_eV, epsilon, omega0_eV) * anisotropy_per_probability(omega0_eV)
 
     def angular_power(self, sky_map, lmax=None):
         """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
@@ -335,8 +326,7 @@ def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
     """
     if not (np.isfinite(threshold) and threshold > 0):
         raise InputError(f"threshold: expected a positive dT/T level, got {threshold!r}")
-    x = photon_x(omega0_eV)
-    shape_factor = -np.expm1(-x) / x
+    shape_factor = anisotropy_per_probability(omega0_eV)
     dtt = -sky.kernel / omega0_eV * shape_factor  # dT/T at epsilon = 1, (npix, n_masses)
     # A map whose pixels are all equal has no anisotropy; np.std's rounding would give it a tiny rms.
     flat = np.ptp(dtt, axis=0) == 0
