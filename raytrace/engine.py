@@ -40,6 +40,16 @@ def check_seed(seed):
     return int(seed)
 
 
+def check_trace_options(z_max, step, batch, batch_name):
+    """The options every trace takes: z_max > 0, step > 0 cells, a batch of >= 1 rows."""
+    if isinstance(batch, bool) or not isinstance(batch, (int, np.integer)) or batch < 1:
+        raise InputError(f"{batch_name}: expected a whole number >= 1, got {batch!r}")
+    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
+        raise InputError(f"step: expected a positive step in cells, got {step!r}")
+    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
+        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
+
+
 def check_masses(mass_eV):
     """Positive, finite, strictly increasing masses as a float array."""
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
@@ -284,12 +294,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     seed = check_seed(seed)
     if isinstance(n_rays, bool) or not isinstance(n_rays, (int, np.integer)) or n_rays < 1:
         raise InputError(f"n_rays: expected a whole number >= 1, got {n_rays!r}")
-    if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 1:
-        raise InputError(f"batch_size: expected a whole number >= 1, got {batch_size!r}")
-    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
-        raise InputError(f"step: expected a positive step in cells, got {step!r}")
-    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
-        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
+    check_trace_options(z_max, step, batch_size, "batch_size")
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {

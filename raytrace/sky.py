@@ -27,7 +27,7 @@ from . import __version__
 from .background import MeanPlasma
 from .constants import K_BOLTZMANN_EV_K
 from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, boxes_redshift_range,
-                     check_masses, check_seed, run_batches, warn_outside_probed_range)
+                     check_masses, check_seed, check_trace_options, run_batches, warn_outside_probed_range)
 from .errors import InputError
 from .kernels.sampling import add_log_density_lattice
 from .rays import CUBE_SYMMETRIES
@@ -140,12 +140,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     level = _sub_pixel_level(rays_per_pixel)
     if ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
-    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
-        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
-    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
-        raise InputError(f"step: expected a positive step in cells, got {step!r}")
-    if isinstance(batch_pixels, bool) or not isinstance(batch_pixels, (int, np.integer)) or batch_pixels < 1:
-        raise InputError(f"batch_pixels: expected a whole number >= 1, got {batch_pixels!r}")
+    check_trace_options(z_max, step, batch_pixels, "batch_pixels")
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
