@@ -2,7 +2,7 @@
 
 In: any ``astropy.cosmology`` object (default Planck18). Out: H(z), comoving
 distance chi(z) in Mpc and its inverse z(chi), proper time between redshifts,
-and the tables the numba kernels interpolate.
+and the mean hydrogen density.
 
 The tables are computed once, on a fine grid in ln(1+z), by integrating
 astropy's own E(z) with a cubic spline; they agree with astropy's comoving
@@ -105,9 +105,7 @@ class Cosmology:
         chi[0] = 0.0
         lookback[0] = 0.0
         return {
-            "u": u,
             "chi": chi,
-            "lookback": lookback,
             "chi_of_u": CubicSpline(u, chi),
             "u_of_chi": CubicSpline(chi, u),
             "lookback_of_u": CubicSpline(u, lookback),
@@ -136,20 +134,6 @@ class Cosmology:
     def proper_time_s(self, z_from, z_to):
         """Proper time in s elapsed for a photon travelling from ``z_from`` to ``z_to``."""
         return self.lookback_time_s(z_from) - self.lookback_time_s(z_to)
-
-    def distance_table(self, z_max, n_points=32769):
-        """Uniform table in chi for the numba kernels, from 0 to chi(z_max) plus margin.
-
-        Returns ``(chi0, dchi, ln1pz, lookback_s)``: the table's first distance and
-        spacing in Mpc, and ln(1+z) and lookback time (s) at each node.
-        """
-        chi_end = float(self.comoving_distance_Mpc(z_max)) * 1.001 + 1.0
-        chi_end = min(chi_end, float(self._tables["chi"][-1]))
-        chi = np.linspace(0.0, chi_end, n_points)
-        u = self._tables["u_of_chi"](chi)
-        u[0] = 0.0
-        lookback = self._tables["lookback_of_u"](u)
-        return 0.0, chi[1] - chi[0], np.ascontiguousarray(u), np.ascontiguousarray(lookback)
 
     # -- densities --------------------------------------------------------------
     def hydrogen_density0_cm3(self, helium_fraction):

@@ -81,7 +81,7 @@ class IonisationHistory:
         return self._spline(self._u_of(z), 1)
 
     def tables(self):
-        """``(u, ln_xe)`` on the internal grid, for the kernels and for provenance."""
+        """``(u, ln_xe)`` on the internal grid (copies), for inspection and provenance."""
         return self._u.copy(), self._ln_xe.copy()
 
     # -- constructors -----------------------------------------------------------
