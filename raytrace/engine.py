@@ -21,16 +21,31 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .boxes import as_series
-from .constants import HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from .constants import C_MPC_S, HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, ProbedRangeWarning, require_positive_finite
-from .kernels.crossings import add_crossings
-from .kernels.sampling import add_log_density
-from .rays import draw_rays, plan_samples
+from .kernels.sightlines import trace_pieces
+from .rays import draw_rays, plan_rays
+from .units import CMB_TEMPERATURE_K
 from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 
-#: Interpolated densities are floored at this fraction of the box mean so that
-#: empty cells give a finite ln n_e; masses that low are never probed by a box.
-DENSITY_FLOOR = 1e-8
+#: The default observed photon energy of near-tangent (Airy) events: k T_0, the
+#: energy at which the report evaluates the anisotropy (x = h nu / k T_0 = 1).
+DEFAULT_PHOTON_ENERGY_EV = K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K
+
+#: Options that older releases took and this one refuses, with the reason.
+REMOVED_OPTIONS = {
+    "step": "the engine now solves the interpolated field's crossings exactly, cell by cell, so there is no "
+            "step length to choose; remove it",
+    "density_floor": "empty cells are now exact zeros of the interpolated field, which never resonate; "
+                     "remove it",
+}
+
+
+def refuse_removed(options):
+    """An InputError naming any removed option present in the ``options`` mapping."""
+    for name in options:
+        if name in REMOVED_OPTIONS:
+            raise InputError(f"{name}: no longer an option: {REMOVED_OPTIONS[name]}")
 
 
 def check_seed(seed):
@@ -40,14 +55,23 @@ def check_seed(seed):
     return int(seed)
 
 
-def check_trace_options(z_max, step, batch, batch_name):
-    """The options every trace takes: z_max > 0, step > 0 cells, a batch of >= 1 rows."""
+def _is_real(value):
+    return not isinstance(value, bool) and isinstance(value, (int, float, np.integer, np.floating))
+
+
+def check_trace_options(z_max, photon_energy_eV, batch, batch_name):
+    """The options every trace takes: z_max > 0, a photon energy > 0 (eV), a batch of >= 1 rows.
+
+    Returns (z_max, photon_energy_eV) as floats.
+    """
     if isinstance(batch, bool) or not isinstance(batch, (int, np.integer)) or batch < 1:
         raise InputError(f"{batch_name}: expected a whole number >= 1, got {batch!r}")
-    if not (isinstance(step, (int, float)) and math.isfinite(step) and step > 0):
-        raise InputError(f"step: expected a positive step in cells, got {step!r}")
-    if not (isinstance(z_max, (int, float)) and math.isfinite(z_max) and z_max > 0):
+    if not (_is_real(photon_energy_eV) and math.isfinite(photon_energy_eV) and photon_energy_eV > 0):
+        raise InputError(f"photon_energy_eV (--photon-energy): expected a positive photon energy in eV, "
+                         f"got {photon_energy_eV!r}")
+    if not (_is_real(z_max) and math.isfinite(z_max) and z_max > 0):
         raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
+    return float(z_max), float(photon_energy_eV)
 
 
 def check_masses(mass_eV):
@@ -56,26 +80,6 @@ def check_masses(mass_eV):
     if mass.ndim != 1 or np.any(np.diff(mass) <= 0):
         raise InputError("mass_eV: expected a one-dimensional, strictly increasing grid of masses")
     return mass
-
-
-def box_mean(box):
-    """Mean of a box's stored values (the loader computed it while reading)."""
-    return box.describe()["mean_comoving_density_cm3"] / box.comoving_scale
-
-
-def probed_mass_range(box, z_start, z_end, density_floor=DENSITY_FLOOR):
-    """(lowest, highest) mass in eV that can resonate in ``box`` while it serves z_start..z_end.
-
-    The engine samples the trilinear interpolant of the cells, which spans the
-    lowest to the highest cell (zero where a box has empty cells), floored at
-    ``density_floor`` times the box mean: so the floor, not the lowest cell, bounds
-    the range from below where it is higher. Densities scale by (1+z)^3 (PHYSICS.md section 3).
-    """
-    lowest_cell, high = box.plasma_mass_range(z_start, z_end)
-    floor = density_floor * box_mean(box) * box.comoving_scale * (1.0 + z_start) ** 3
-    floor_mass = math.sqrt(PLASMA_MASS2_PER_DENSITY * floor)
-    low = floor_mass if box.describe()["zero_cells"] else max(lowest_cell, floor_mass)
-    return low, high
 
 
 def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
@@ -110,9 +114,13 @@ def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
     return min(z_boxes, float(z_max))
 
 
-def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR):
-    """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes."""
-    ranges = [probed_mass_range(series.boxes[i], z_start, z_end, density_floor)
+def warn_outside_probed_range(series, mass, z_boxes):
+    """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes.
+
+    The rays sample the trilinear interpolant of the cells, which spans the lowest
+    to the highest cell; densities scale by (1+z)^3 (PHYSICS.md section 3).
+    """
+    ranges = [series.boxes[i].plasma_mass_range(z_start, z_end)
               for z_start, z_end, i in series.intervals(z_boxes)]
     low, high = min(r[0] for r in ranges), max(r[1] for r in ranges)
     outside = (mass < low) | (mass > high)
@@ -125,31 +133,44 @@ def warn_outside_probed_range(series, mass, z_boxes, density_floor=DENSITY_FLOOR
 
 
 class Tracer:
-    """What sightline and sky tracers share: the sampling plan, the mass targets, the
-    crossing integration, and (for a cluster) their state without the boxes."""
+    """What sightline and sky tracers share: the ray plan, the mass targets, the
+    kernel's constants, and (for a cluster) their state without the boxes."""
 
-    def _set_up(self, series, mass_eV, z_boxes, seed, step, cosmology, density_floor):
+    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
         self.boxes = series.boxes
+        self.blend = bool(series.blend)
+        self.redshifts = np.array([box.redshift for box in self.boxes])
         self.seed = int(seed)
-        self.plan = plan_samples(cosmology, series, z_boxes, step)
-        self.dt = self.plan.proper_time_steps
-        self.targets = np.log(mass_eV**2 / PLASMA_MASS2_PER_DENSITY)
+        self.plan = plan_rays(cosmology, series, z_boxes)
         self.mass2 = mass_eV**2
-        spacing = np.diff(self.targets)
+        self.targets = self.mass2 / PLASMA_MASS2_PER_DENSITY  # physical n_e (cm^-3) of each resonance
+        self.ln_targets = np.log(self.targets)
+        spacing = np.diff(self.ln_targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
-        self.floors = [density_floor * box_mean(box) for box in self.boxes]
+        self.photon_energy_eV = float(photon_energy_eV)
 
-    def _crossings(self, ln_density):
-        """(kernel, crossing counts, DM) per ray from sampled comoving ln n_e, (n_rays, n_samples)."""
+    def _span_arguments(self, span):
+        """The leading arguments of a kernel call for span ``span``: cubes, scales, blending."""
         plan = self.plan
-        ln_density += 3.0 * plan.u[None, :]  # comoving -> physical at each sample's redshift
-        n = ln_density.shape[0]
-        kernel = np.zeros((n, self.mass2.size))
-        count = np.zeros((n, self.mass2.size), dtype=np.int32)
-        dispersion = np.zeros(n)
-        add_crossings(plan.chi, plan.u, self.dt, ln_density, self.targets, self.mass2, self.uniform,
-                      HBAR_EV_S, kernel, count, dispersion)
-        return kernel, count, dispersion
+        low, high = int(plan.span_low[span]), int(plan.span_high[span])
+        box_low, box_high = self.boxes[low], self.boxes[high]
+        blended = self.blend and low != high
+        return (box_low.data, box_high.data, float(box_low.comoving_scale), float(box_high.comoving_scale),
+                blended, float(self.redshifts[low]), float(self.redshifts[high]))
+
+    def _physics_arguments(self):
+        """The trailing arguments of a kernel call: tables, targets, constants."""
+        plan = self.plan
+        return (plan.one_plus_z, plan.hubble_over_c, 1.0 / plan.chi_step, self.targets, self.ln_targets,
+                self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV)
+
+    def _outputs(self, n_rows):
+        n_masses = self.mass2.size
+        return {"kernel_boxes": np.zeros((n_rows, n_masses)),
+                "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
+                "tangent_events": np.zeros((n_rows, n_masses), dtype=np.int32),
+                "kernel_tangent": np.zeros((n_rows, n_masses)),
+                "dispersion_measure_boxes": np.zeros(n_rows)}
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -159,8 +180,8 @@ class Tracer:
     def from_state(cls, state, boxes):
         """The tracer whose :meth:`state` is ``state``, sampling ``boxes`` (reopened by the caller).
 
-        The state's own arrays (plan, floors, targets) are used, not recomputed, so
-        the rebuilt tracer gives the same bits as the original.
+        The state's own arrays (plan, targets) are used, not recomputed, so the
+        rebuilt tracer gives the same bits as the original.
         """
         tracer = object.__new__(cls)
         vars(tracer).update(state)
@@ -175,30 +196,25 @@ class RayTracer(Tracer):
     boxes' files); :meth:`trace` is a pure function of the ray indices.
     """
 
-    def __init__(self, series, mass_eV, z_boxes, seed, step, cosmology, density_floor=DENSITY_FLOOR):
-        self._set_up(series, mass_eV, z_boxes, seed, step, cosmology, density_floor)
+    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
-        self.segments = [self.plan.segments_of(b) for b in range(len(self.boxes))]
 
     def trace(self, ray_indices):
-        """Per-ray arrays (kernel_boxes, crossings, dispersion_measure_boxes, direction) for the given rays."""
+        """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
+        dispersion_measure_boxes, direction) for the given rays."""
         plan = self.plan
-        n = len(ray_indices)
         ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
-        ln_density = np.zeros((n, plan.n_samples))
-        for b, box in enumerate(self.boxes):
-            used = self.segments[b]
-            if used.size == 0:
-                continue
-            add_log_density(
-                box.data, math.log(box.comoving_scale), self.floors[b],
-                plan.segment_first[used], plan.segment_stop[used], plan.local_cells,
-                np.ascontiguousarray(starts[:, used]), np.ascontiguousarray(directions[:, used]),
-                plan.weights[b], ln_density,
-            )
-        kernel, count, dispersion = self._crossings(ln_density)
-        return {"kernel_boxes": kernel, "crossings": count, "dispersion_measure_boxes": dispersion,
-                "direction": ray_direction}
+        out = self._outputs(len(ray_indices))
+        for span in range(plan.n_spans):
+            pieces = plan.pieces_of(span)
+            geometry = self.boxes[int(plan.span_box[span])]
+            trace_pieces(*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
+                         plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts,
+                         directions, *self._physics_arguments(), out["kernel_boxes"], out["crossings"],
+                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"])
+        out["direction"] = ray_direction
+        return out
 
 
 @contextmanager
@@ -263,9 +279,16 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
     return backend.read()
 
 
-def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, include_background=True,
-                    z_boxes=None, batch_size=256, plasma=None, backend=None, progress=False,
-                    density_floor=DENSITY_FLOOR, executor=None):
+def check_no_other_options(function, options):
+    """Refuse removed options with their reason, and any other unknown keyword by name."""
+    refuse_removed(options)
+    if options:
+        raise InputError(f"{function}: unknown option(s) {', '.join(sorted(options))}")
+
+
+def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
+                    batch_size=256, plasma=None, backend=None, progress=False, executor=None,
+                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Parameters
@@ -275,7 +298,6 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
     n_rays : number of sightlines
     z_max : redshift the rays reach (last scattering: ~1100)
     seed : ray i draws from a stream fixed by (seed, i) alone
-    step : sampling step in cells of the serving box
     n_jobs : numba threads (-1: all cores)
     include_background : boxes serve up to ``z_boxes`` (default: the highest
         snapshot's redshift) and the homogeneous background the rest; if False
@@ -288,13 +310,17 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         ``(batch, start, arrays)`` as they complete; if it has a ``prepare(tracer)``
         method, that is called before anything is written, to refuse early
         (e.g. :class:`raytrace.cluster.DaskExecutor`)
+    photon_energy_eV : observed photon energy (eV) at which near-tangent pairs take
+        their Airy form (PHYSICS.md section 9); every other crossing's kernel is
+        frequency-free. Default: k T_0.
     """
+    check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
     if isinstance(n_rays, bool) or not isinstance(n_rays, (int, np.integer)) or n_rays < 1:
         raise InputError(f"n_rays: expected a whole number >= 1, got {n_rays!r}")
-    check_trace_options(z_max, step, batch_size, "batch_size")
+    z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {
@@ -304,21 +330,21 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, step=0.5, n_jobs=1, 
         "z_boxes": float(z_boxes),
         "include_background": bool(include_background),
         "seed": int(seed),
-        "step_cells": float(step),
+        "photon_energy_eV": photon_energy_eV,
         "batch_size": int(batch_size),
-        "density_floor": float(density_floor),
         "blend": series.blend,
         "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes],
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    warn_outside_probed_range(series, mass, z_boxes, density_floor)
-    tracer = RayTracer(series, mass, z_boxes, seed, step, plasma.cosmology, density_floor)
+    warn_outside_probed_range(series, mass, z_boxes)
+    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
                          executor, progress, unit="ray", description="sightlines")
     result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
-                             arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run)
+                             arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
+                             tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
     return backend.finish(result)

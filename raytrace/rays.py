@@ -1,10 +1,10 @@
 """Ray geometry: where each sightline goes and which copy of which box it sees.
 
 In: a box series (which box serves which redshift, their sizes and grids), the
-redshift range the boxes serve, the step in cells, and (seed, ray index). Out: a :class:`SamplingPlan` shared by all
-rays (sample distances chi and u = ln(1+z), segments, which box serves each
-sample with which blending weight) and, per ray, its direction and one random
-cube symmetry plus periodic shift per segment.
+redshift range the boxes serve, and (seed, ray index). Out: a :class:`RayPlan`
+shared by all rays (spans of comoving distance served by one snapshot or one
+blended pair, box-length segments, tables of 1+z and H/c along chi) and, per
+ray, its direction and one random cube symmetry plus periodic shift per segment.
 
 The universe along a ray is a stack of box copies. A segment is one box length
 of travel through one copy; the next segment enters a new copy with a fresh
@@ -12,7 +12,9 @@ random transform (one of the 48 symmetries of the cube, and a uniformly random
 shift), so no structure repeats along a ray. Applying a symmetry R and a shift
 to the box is the same as starting the segment at a random point and turning
 the direction by R, which is what is drawn. A box interval (the redshifts one
-snapshot serves) starts a new segment, since box sizes may differ.
+snapshot serves) starts a new segment, since box sizes may differ. With
+blending, a span ends at each snapshot redshift too, where the bracketing pair
+changes (the blended field is continuous there).
 """
 
 from dataclasses import dataclass
@@ -20,6 +22,7 @@ from itertools import permutations, product
 
 import numpy as np
 
+from .constants import C_MPC_S
 from .errors import InputError
 
 
@@ -38,101 +41,126 @@ def _cube_symmetries():
 CUBE_SYMMETRIES = _cube_symmetries()
 
 
+#: Spacing of the 1+z and H/c tables in cells of the finest box: linear interpolation
+#: between table points is then good to ~1e-9 in 1+z (the curvature of z(chi) is ~(H/c)^2).
+TABLE_CELLS = 0.25
+
+
 @dataclass(frozen=True)
-class SamplingPlan:
-    """Sample positions and segments along a ray, identical for every ray.
+class RayPlan:
+    """Spans, segments and pieces of comoving distance, identical for every ray.
 
     Attributes
     ----------
-    chi, u : (n_samples,) comoving distance (Mpc) and ln(1+z) of each sample.
-    segment_first, segment_stop : (n_segments,) sample index range of each segment.
+    span_chi_a, span_chi_b : (n_spans,) comoving distance (Mpc) each span covers.
+    span_box : (n_spans,) the box whose grid and size set the span's geometry.
+    span_low, span_high : (n_spans,) the snapshots that serve the span: one box
+        (low == high), or the blended pair bracketing it.
+    segment_chi0 : (n_segments,) where each box-length segment starts (Mpc).
     segment_box : (n_segments,) index of the box whose size sets the segment.
-    local_cells : (n_samples,) distance of each sample from its segment's start,
-        in cells of that segment's box.
-    weights : (n_boxes, n_samples) blending weight of each box at each sample
-        (one box with weight 1 per sample unless blending).
+    piece_segment, piece_span, piece_chi_a, piece_chi_b : (n_pieces,) spans cut
+        at segment ends: the straight runs a sightline walks through one copy.
+    chi_step : spacing (Mpc) of the tables, which start at chi = 0.
+    one_plus_z, hubble_over_c : 1+z and H(z)/c (1/Mpc) at chi = 0, chi_step, ...
     """
 
-    chi: np.ndarray
-    u: np.ndarray
-    segment_first: np.ndarray
-    segment_stop: np.ndarray
+    span_chi_a: np.ndarray
+    span_chi_b: np.ndarray
+    span_box: np.ndarray
+    span_low: np.ndarray
+    span_high: np.ndarray
+    segment_chi0: np.ndarray
     segment_box: np.ndarray
-    local_cells: np.ndarray
-    weights: np.ndarray
-
-    @property
-    def n_samples(self):
-        return self.chi.size
-
-    @property
-    def proper_time_steps(self):
-        """Proper time (s) between consecutive samples: dt = a dchi / c, trapezoid in a."""
-        from .constants import C_MPC_S
-
-        return np.diff(self.chi) * 0.5 * (np.exp(-self.u[:-1]) + np.exp(-self.u[1:])) / C_MPC_S
+    piece_segment: np.ndarray
+    piece_span: np.ndarray
+    piece_chi_a: np.ndarray
+    piece_chi_b: np.ndarray
+    chi_step: float
+    one_plus_z: np.ndarray
+    hubble_over_c: np.ndarray
 
     @property
     def n_segments(self):
-        return self.segment_first.size
+        return self.segment_chi0.size
 
-    def segments_of(self, box_index):
-        """Indices of the segments in which box ``box_index`` has non-zero weight."""
-        used = np.flatnonzero(self.weights[box_index] != 0)
-        if used.size == 0:
-            return np.zeros(0, dtype=np.int64)
-        owner = np.searchsorted(self.segment_stop, used, side="right")
-        return np.unique(owner)
+    @property
+    def n_spans(self):
+        return self.span_chi_a.size
+
+    @property
+    def chi_end(self):
+        return float(self.span_chi_b[-1])
+
+    def pieces_of(self, span):
+        """Indices of the pieces of span ``span``."""
+        return np.flatnonzero(self.piece_span == span)
 
 
-def plan_samples(cosmology, series, z_stop, step_cells):
-    """Build the :class:`SamplingPlan` for a box series serving 0 <= z <= z_stop.
+def _spans(cosmology, series, z_stop):
+    """(chi_a, chi_b, geometry box, low, high) for each stretch served by one snapshot or pair."""
+    spans = []
+    for p, (z_start, z_end, box) in enumerate(series.intervals(z_stop)):
+        cuts = [z_start, z_end]
+        if series.blend:
+            cuts = sorted({z_start, z_end, *(float(z) for z in series.redshifts if z_start < z < z_end)})
+        for z_a, z_b in zip(cuts[:-1], cuts[1:]):
+            low, high, _ = series.serving(np.array([0.5 * (z_a + z_b)]))
+            chi_a, chi_b = (float(c) for c in cosmology.comoving_distance_Mpc([z_a, z_b]))
+            if z_a == 0.0:
+                chi_a = 0.0
+            spans.append((chi_a, chi_b, box, int(low[0]), int(high[0])))
+    return spans
+
+
+def plan_rays(cosmology, series, z_stop):
+    """Build the :class:`RayPlan` for a box series serving 0 <= z <= z_stop.
 
     The series says which box serves each redshift (``intervals``: the box whose
-    size and grid set the segments) and with which weights (``serving``: the
+    size and grid set the segments) and with which partner (``serving``: the
     nearest snapshot, or the two bracketing ones when blending).
     """
-    if not (isinstance(step_cells, (int, float)) and step_cells > 0):
-        raise InputError(f"step: expected a positive step in cells, got {step_cells!r}")
-    if not (isinstance(z_stop, (int, float)) and z_stop > 0):
+    if isinstance(z_stop, bool) or not (isinstance(z_stop, (int, float, np.integer, np.floating)) and z_stop > 0):
         raise InputError(f"z_max: expected a positive redshift, got {z_stop!r}")
-    pieces = series.intervals(z_stop)
-    chis, firsts, stops, seg_boxes, locals_ = [], [], [], [], []
-    n = 0
-    for p, (z_start, z_end, box) in enumerate(pieces):
-        size, cell = series.boxes[box].box_size_cMpc, series.boxes[box].cell_size_cMpc
-        chi_a, chi_b = (float(c) for c in cosmology.comoving_distance_Mpc([z_start, z_end]))
-        if p == 0:
-            chi_a = 0.0
-        count = int(np.floor((chi_b - chi_a) / (step_cells * cell) * (1 + 1e-12)))
-        chi = chi_a + step_cells * cell * np.arange(count + 1)
-        chi = chi[chi < chi_b]
-        if p == len(pieces) - 1:
-            chi = np.append(chi, chi_b)
-        segment = np.floor((chi - chi_a) / size).astype(np.int64)
-        for g in np.unique(segment):
-            in_segment = np.flatnonzero(segment == g)
-            firsts.append(n + in_segment[0])
-            stops.append(n + in_segment[-1] + 1)
-            seg_boxes.append(box)
-        locals_.append((chi - chi_a - segment * size) / cell)
-        chis.append(chi)
-        n += chi.size
-    chi = np.concatenate(chis)
-    u = np.log1p(cosmology.redshift_at_distance(np.minimum(chi, chi[-1])))
-    u[0] = 0.0
-    low, high, weight_high = series.serving(np.expm1(u))
-    weights = np.zeros((len(series.boxes), chi.size))
-    np.add.at(weights, (low, np.arange(chi.size)), 1.0 - weight_high)
-    np.add.at(weights, (high, np.arange(chi.size)), weight_high)
-    return SamplingPlan(
-        chi=chi,
-        u=u,
-        segment_first=np.asarray(firsts, dtype=np.int64),
-        segment_stop=np.asarray(stops, dtype=np.int64),
-        segment_box=np.asarray(seg_boxes, dtype=np.int64),
-        local_cells=np.concatenate(locals_),
-        weights=weights,
+    spans = _spans(cosmology, series, float(z_stop))
+    seg_chi0, seg_box = [], []
+    piece_segment, piece_span, piece_a, piece_b = [], [], [], []
+    interval_start = {}
+    for index, (chi_a, chi_b, box, _, _) in enumerate(spans):
+        size = series.boxes[box].box_size_cMpc
+        # Segments restart where a box's interval starts (its first span), every box length after.
+        if index == 0 or spans[index - 1][2] != box:
+            interval_start = {"chi": chi_a, "first_segment": len(seg_chi0)}
+        origin = interval_start["chi"]
+        k_first = int(np.floor((chi_a - origin) / size * (1 + 1e-12)))
+        k_last = int(np.ceil((chi_b - origin) / size * (1 - 1e-12))) - 1
+        for k in range(k_first, max(k_last, k_first) + 1):
+            segment = interval_start["first_segment"] + k
+            while len(seg_chi0) <= segment:
+                seg_chi0.append(origin + (len(seg_chi0) - interval_start["first_segment"]) * size)
+                seg_box.append(box)
+            a, b = max(chi_a, origin + k * size), min(chi_b, origin + (k + 1) * size)
+            if b > a:
+                piece_segment.append(segment)
+                piece_span.append(index)
+                piece_a.append(a)
+                piece_b.append(b)
+    chi_end = spans[-1][1]
+    finest = min(box.cell_size_cMpc for box in series.boxes)
+    n_table = int(np.ceil(chi_end / (TABLE_CELLS * finest))) + 2
+    chi_step = chi_end / (n_table - 2)
+    chi = np.minimum(chi_step * np.arange(n_table), chi_end)
+    z = cosmology.redshift_at_distance(chi)
+    z[0] = 0.0
+    return RayPlan(
+        span_chi_a=np.array([s[0] for s in spans]), span_chi_b=np.array([s[1] for s in spans]),
+        span_box=np.array([s[2] for s in spans], dtype=np.int64),
+        span_low=np.array([s[3] for s in spans], dtype=np.int64),
+        span_high=np.array([s[4] for s in spans], dtype=np.int64),
+        segment_chi0=np.array(seg_chi0), segment_box=np.array(seg_box, dtype=np.int64),
+        piece_segment=np.array(piece_segment, dtype=np.int64), piece_span=np.array(piece_span, dtype=np.int64),
+        piece_chi_a=np.array(piece_a), piece_chi_b=np.array(piece_b),
+        chi_step=float(chi_step), one_plus_z=1.0 + z,
+        hubble_over_c=cosmology.hubble_per_s(z) / C_MPC_S,
     )
 
 

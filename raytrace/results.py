@@ -23,13 +23,15 @@ from .conversion import probability_from_kernel
 from .errors import InputError
 from .provenance import atomic_output, check_writable, output_folder, provenance_json
 
-FORMAT = "raytrace-sightlines-1"
+FORMAT = "raytrace-sightlines-2"
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
 
 # name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
 SIGHTLINE_LAYOUT = {
     "kernel_boxes": (lambda r, m: (r, m), np.float64),
     "crossings": (lambda r, m: (r, m), np.int32),
+    "tangent_events": (lambda r, m: (r, m), np.int32),
+    "kernel_tangent": (lambda r, m: (r, m), np.float64),
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
     "direction": (lambda r, m: (r, 3), np.float64),
 }
@@ -49,6 +51,16 @@ class KernelRows:
         """DM to z_max in pc cm^-3 per row, boxes plus background."""
         return self.dispersion_measure_boxes + self.dispersion_measure_background
 
+    def tangent_events_per_row(self):
+        """Mean number of near-tangent (Airy) events per row, per mass."""
+        return self.tangent_events.mean(axis=0)
+
+    def tangent_share(self):
+        """Share of the boxes' kernel carried by near-tangent (Airy) events, per mass (nan where 0)."""
+        total = self.kernel_boxes.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(total > 0, self.kernel_tangent.sum(axis=0) / total, np.nan)
+
     def _mass_range(self):
         return f"{self.mass_eV.size} masses {self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, z_max = {self.run.get('z_max')}"
 
@@ -63,13 +75,16 @@ class SightlineResult(KernelRows):
     kernel_boxes, kernel_background : the part the boxes gave (per ray) and the
         homogeneous-background part beyond the boxes (same for every ray).
     crossings : (n_rays, n_masses) number of resonances inside the boxes.
+    tangent_events, kernel_tangent : (n_rays, n_masses) number of near-tangent
+        pairs (and near misses) taken in the Airy form, and the kernel they gave
+        (part of kernel_boxes); evaluated at ``run["photon_energy_eV"]``.
     dispersion_measure : (n_rays,) DM to z_max in pc cm^-3 (boxes plus background).
     direction : (n_rays, 3) unit vectors.
-    run : dict of the run's parameters (seed, z_max, step, boxes, checksums, ...).
+    run : dict of the run's parameters (seed, z_max, photon energy, boxes, checksums, ...).
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
-                 dispersion_measure_background, direction, run):
+                 dispersion_measure_background, direction, run, tangent_events=None, kernel_tangent=None):
         self.mass_eV = np.asarray(mass_eV, dtype=float)
         self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         self.kernel_background = np.asarray(kernel_background, dtype=float)
@@ -77,9 +92,10 @@ class SightlineResult(KernelRows):
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
         self.direction = np.asarray(direction, dtype=float)
+        self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
         self.run = dict(run)
         for array in (self.mass_eV, self.kernel_boxes, self.kernel_background, self.crossings,
-                      self.dispersion_measure_boxes, self.direction):
+                      self.dispersion_measure_boxes, self.direction, self.tangent_events, self.kernel_tangent):
             array.flags.writeable = False
 
     def __repr__(self):
@@ -147,7 +163,19 @@ class SightlineResult(KernelRows):
                 handle.attrs["dispersion_measure_background"],
                 handle["direction"][...],
                 json.loads(handle.attrs["run"]),
+                tangent_events=handle["tangent_events"][...],
+                kernel_tangent=handle["kernel_tangent"][...],
             )
+
+
+def tangent_arrays(kernel_boxes, tangent_events, kernel_tangent):
+    """The near-tangent arrays of a result: zeros of the kernel's shape where none are given."""
+    shape = np.shape(kernel_boxes)
+    events = np.zeros(shape, dtype=np.int32) if tangent_events is None else np.asarray(tangent_events)
+    kernel = np.zeros(shape) if kernel_tangent is None else np.asarray(kernel_tangent, dtype=float)
+    if events.shape != shape or kernel.shape != shape:
+        raise InputError(f"tangent_events, kernel_tangent: expected the kernel's shape {shape}")
+    return events, kernel
 
 
 def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes):

@@ -26,15 +26,16 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .constants import K_BOLTZMANN_EV_K
-from .engine import (DENSITY_FLOOR, Tracer, as_series, background_part, boxes_redshift_range,
-                     check_masses, check_seed, check_trace_options, run_batches, warn_outside_probed_range)
+from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
+                     check_masses, check_no_other_options, check_seed, check_trace_options, run_batches,
+                     warn_outside_probed_range)
 from .errors import InputError
-from .kernels.sampling import add_log_density_lattice
+from .kernels.lattice import trace_lattice
 from .rays import CUBE_SYMMETRIES
-from .results import KernelRows, MemoryBackend, open_result, save_arrays
+from .results import KernelRows, MemoryBackend, open_result, save_arrays, tangent_arrays
 from .units import CMB_TEMPERATURE_K
 
-FORMAT = "raytrace-sky-1"
+FORMAT = "raytrace-sky-2"
 ORDERINGS = ("RING", "NESTED")
 #: The CMB is isotropic to about 1e-5 in dT/T (a fact of the trade, no source).
 ISOTROPY_LEVEL = 1e-5
@@ -42,6 +43,8 @@ ISOTROPY_LEVEL = 1e-5
 SKY_LAYOUT = {
     "kernel_boxes": (lambda r, m: (r, m), np.float64),
     "crossings": (lambda r, m: (r, m), np.float64),
+    "tangent_events": (lambda r, m: (r, m), np.float64),
+    "kernel_tangent": (lambda r, m: (r, m), np.float64),
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
 }
 
@@ -78,18 +81,14 @@ def observer_position(seed, box_size_cMpc):
 class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
 
-    def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, step, cosmology,
-                 randomise_copies=True, density_floor=DENSITY_FLOOR):
-        self._set_up(series, mass_eV, z_boxes, seed, step, cosmology, density_floor)
+    def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
+                 randomise_copies=True):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
         self.nside = nside
         self.level = _sub_pixel_level(rays_per_pixel)
         self.randomise = bool(randomise_copies)
         self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
-        self.ranges = []
-        for b in range(len(self.boxes)):
-            used = np.flatnonzero(self.plan.weights[b] != 0)
-            self.ranges.append((int(used[0]), int(used[-1]) + 1) if used.size else (0, 0))
-        # Blended snapshots share a grid and are mixed sample by sample: they must see the
+        # Blended snapshots share a grid and are mixed point by point: they must see the
         # same transform in each copy, or the blend would average two unrelated fields.
         self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
 
@@ -103,26 +102,23 @@ class SkyTracer(Tracer):
     def trace(self, pixels):
         plan = self.plan
         directions = self.ray_directions(pixels)
-        n = directions.shape[0]
-        ln_density = np.zeros((n, plan.n_samples))
-        for b, box in enumerate(self.boxes):
-            first, stop = self.ranges[b]
-            if stop > first:
-                add_log_density_lattice(box.data, math.log(box.comoving_scale), self.floors[b], first, stop,
-                                        plan.chi, plan.weights[b], directions, self.observer, box.box_size_cMpc,
-                                        self.seed, self.copy_keys[b], CUBE_SYMMETRIES, self.randomise, ln_density)
-        kernel, count, dispersion = self._crossings(ln_density)
+        out = self._outputs(directions.shape[0])
+        for span in range(plan.n_spans):
+            box = int(plan.span_box[span])
+            geometry = self.boxes[box]
+            trace_lattice(*self._span_arguments(span), float(plan.span_chi_a[span]), float(plan.span_chi_b[span]),
+                          directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
+                          CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
+                          out["crossings"], out["tangent_events"], out["kernel_tangent"],
+                          out["dispersion_measure_boxes"])
         per_pixel = 4**self.level
-        return {
-            "kernel_boxes": kernel.reshape(len(pixels), per_pixel, -1).mean(axis=1),
-            "crossings": count.reshape(len(pixels), per_pixel, -1).mean(axis=1),
-            "dispersion_measure_boxes": dispersion.reshape(len(pixels), per_pixel).mean(axis=1),
-        }
+        return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
+                for name, values in out.items()}
 
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
-             z_boxes=None, ordering="RING", step=0.5, plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, density_floor=DENSITY_FLOOR, executor=None):
+             z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
@@ -130,9 +126,10 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
     Other arguments (``backend``, ``executor`` for a cluster) as in
-    :func:`raytrace.cast_sightlines`; results are bit-identical for any
-    ``n_jobs``, ``batch_pixels`` or cluster.
+    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
+    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
     """
+    check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
@@ -140,22 +137,22 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     level = _sub_pixel_level(rays_per_pixel)
     if ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
-    check_trace_options(z_max, step, batch_pixels, "batch_pixels")
+    z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
-        "seed": int(seed), "step_cells": float(step), "batch_pixels": int(batch_pixels),
-        "randomise_copies": bool(randomise_copies), "density_floor": float(density_floor),
+        "seed": int(seed), "photon_energy_eV": photon_energy_eV, "batch_pixels": int(batch_pixels),
+        "randomise_copies": bool(randomise_copies),
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    warn_outside_probed_range(series, mass, z_boxes, density_floor)
-    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, step, plasma.cosmology,
-                       randomise_copies, density_floor)
+    warn_outside_probed_range(series, mass, z_boxes)
+    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
+                       randomise_copies)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
@@ -166,7 +163,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
         arrays = {name: values[ring_to_nest] for name, values in arrays.items()}
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
-                       arrays["dispersion_measure_boxes"], dm_background, run)
+                       arrays["dispersion_measure_boxes"], dm_background, run,
+                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
     return backend.finish(result)
 
 
@@ -188,11 +186,13 @@ class SkyResult(KernelRows):
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
-                 dispersion_measure_background, run):
+                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
         self.mass_eV = np.asarray(mass_eV, dtype=float)
         self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         self.kernel_background = np.asarray(kernel_background, dtype=float)
         self.crossings = np.asarray(crossings, dtype=float)
+        # Per pixel: means over the pixel's rays, so fractional counts.
+        self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
         self.run = dict(run)
@@ -248,7 +248,8 @@ class SkyResult(KernelRows):
 
             return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
                        handle["crossings"][...], handle["dispersion_measure_boxes"][...],
-                       handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]))
+                       handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
+                       tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
 
     def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False):
         """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.

@@ -1,19 +1,30 @@
-"""The per-ray resonance integrator.
+"""Exact resonances of one straight ray segment through a periodic box copy.
 
-In: the samples of a batch of rays: comoving distance chi (Mpc) and u = ln(1+z)
-per sample (shared by all rays), ln n_e (physical, cm^-3) per ray and sample, and
-the mass grid as target ln n_e values (m^2 / (4 pi alpha / m_e)) with m^2 in eV^2.
-Out: added into per-ray arrays: the conversion kernel K (eV) and the number of
-crossings for each mass, and the dispersion measure (pc cm^-3).
+In: one box's float32 cube (two, when two snapshots are blended), the segment's
+start point and direction in cells, its length, the comoving distance at its
+start, tables of 1+z and H/c along chi, the targets (physical n_e at which each
+mass resonates) and the photon energy for near-tangent events. Out: added into
+one ray's rows: the kernel K (eV), the crossing count, the near-tangent event
+count and kernel per mass; returned: the segment's dispersion measure (pc cm^-3).
 
-Between two samples every target between their ln n_e values is a crossing
-(PHYSICS.md sections 2-3): its 1/(1+z) is interpolated linearly in ln n_e, and
-its rate d ln n_e/dt is the finite difference over the proper time between the
-samples (dt = a dchi / c, computed once per plan), so the (1+z)^3 dilution
-enters by itself. The kernel
-is pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) with the rate in eV (hbar/s).
-A log-uniform mass grid finds its crossings by arithmetic, O(1) per sample plus
-O(1) per crossing; any other sorted grid by binary search.
+The segment is walked cell by cell of the interpolation grid (the lattice of
+cell centres), a 3-D grid traversal (Amanatides & Woo 1987, Eurographics 87, 3).
+Inside one cell the periodic trilinear interpolant along the ray is an exact
+cubic in the path length s (PHYSICS.md section 8); a blend weight linear in s
+makes it a quartic; times (1+z)^3, linear in s over a cell (its curvature
+there is ~1e-6 relative), the physical density P(s) is a polynomial of degree
+<= 5. Its extrema split the cell into monotone pieces; on each, every target
+between the piece's end values is one root, found by bracketed Newton. The
+rate at a root is d ln n/d chi = F'/F + 3 H/(c (1+z)) with F the comoving
+cubic's own derivative and H from the table, so nothing depends on a step.
+The field jumps where a segment ends (another copy or snapshot): a jump spends
+no time at the values in between, so it adds no crossing.
+
+Near an interior extremum whose m_gamma^2 lies within |xi| < XI_CUT of a target,
+the two Landau-Zener crossings (or the near miss) are one event with the Airy
+kernel of PHYSICS.md section 9, when both crossings lie in the cell's two pieces
+next to the extremum; a pair split by a cell face keeps its Landau-Zener terms
+(the trilinear field has a kink there, so its rates stay finite).
 """
 
 import math
@@ -21,58 +32,287 @@ import math
 import numba
 import numpy as np
 
+from .polynomial import MAX_DEGREE, airy_ai, bracketed_root, evaluate, evaluate_with_slope, roots_in
+
+#: |xi| below which a near-tangent pair takes the Airy form. At this root of
+#: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
+#: over the window equals the two Landau-Zener terms integrated over it, so the
+#: mean over rays is unchanged; the next roots are 4.11 and 5.53.
+XI_CUT = 4.838497102421105
+
+_TWO_THIRD = 2.0 / 3.0
+_CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
+
 
 @numba.njit(cache=True, inline="always")
-def _count_below(targets, value, uniform, first_target, inverse_spacing):
-    """Number of targets < value (targets sorted increasing)."""
-    n = targets.shape[0]
+def _count_below(ln_targets, value, uniform, first, inverse_spacing):
+    """Number of targets whose ln is < ln(value) (ln_targets sorted increasing)."""
+    n = ln_targets.shape[0]
+    if value <= 0.0:
+        return 0
+    x = math.log(value)
     if uniform:
-        k = int(min(max(math.ceil((value - first_target) * inverse_spacing), 0.0), float(n)))
+        k = int(min(max(math.ceil((x - first) * inverse_spacing), 0.0), float(n)))
         # Rounding in the product can be one off either way; settle it exactly.
-        while k > 0 and targets[k - 1] >= value:
+        while k > 0 and ln_targets[k - 1] >= x:
             k -= 1
-        while k < n and targets[k] < value:
+        while k < n and ln_targets[k] < x:
             k += 1
         return k
-    return np.searchsorted(targets, value, side="left")
+    return np.searchsorted(ln_targets, x, side="left")
 
 
-@numba.njit(cache=True, parallel=True)
-def add_crossings(chi, u, dt, ln_density, targets, mass2, uniform, hbar_eV_s, kernel, count, dispersion):
-    """Accumulate crossings and dispersion measure along each ray of a batch.
+@numba.njit(cache=True, inline="always")
+def _lookup(table, chi_step_inverse, chi):
+    """Linear interpolation in a table sampled at chi = 0, 1/chi_step_inverse, ..."""
+    x = chi * chi_step_inverse
+    i = min(max(int(x), 0), table.shape[0] - 2)
+    f = x - i
+    return table[i] + f * (table[i + 1] - table[i])
 
-    ``dt`` (n_samples - 1,) is the proper time (s) between consecutive samples;
-    ``kernel`` and ``count`` are (n_rays, n_masses), ``dispersion`` (n_rays,).
-    A target t crosses between samples j and j+1 when min <= t < max of their
-    ln n_e, i.e. when the number of targets below each sample differs.
+
+@numba.njit(cache=True, inline="always")
+def _ray_cubic(cube, scale, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz, out, add):
+    """out[0..3] (+)= scale * the trilinear interpolant of the cell's 8 corners along t + d s."""
+    # Along x: four edges, each linear in s.
+    a00 = cube[i0, j0, k0]; b00 = cube[i1, j0, k0] - a00
+    a01 = cube[i0, j0, k1]; b01 = cube[i1, j0, k1] - a01
+    a10 = cube[i0, j1, k0]; b10 = cube[i1, j1, k0] - a10
+    a11 = cube[i0, j1, k1]; b11 = cube[i1, j1, k1] - a11
+    e00, s00 = a00 + b00 * tx, b00 * dx
+    e01, s01 = a01 + b01 * tx, b01 * dx
+    e10, s10 = a10 + b10 * tx, b10 * dx
+    e11, s11 = a11 + b11 * tx, b11 * dx
+    # Along y: two faces' lines, each quadratic in s.
+    p0 = e00 + (e10 - e00) * ty
+    p1 = s00 + (e10 - e00) * dy + (s10 - s00) * ty
+    p2 = (s10 - s00) * dy
+    q0 = e01 + (e11 - e01) * ty
+    q1 = s01 + (e11 - e01) * dy + (s11 - s01) * ty
+    q2 = (s11 - s01) * dy
+    # Along z: the cubic.
+    d0, d1, d2 = q0 - p0, q1 - p1, q2 - p2
+    c0 = p0 + d0 * tz
+    c1 = p1 + d1 * tz + d0 * dz
+    c2 = p2 + d2 * tz + d1 * dz
+    c3 = d2 * dz
+    if add:
+        out[0] += scale * c0; out[1] += scale * c1; out[2] += scale * c2; out[3] += scale * c3
+    else:
+        out[0] = scale * c0; out[1] = scale * c1; out[2] = scale * c2; out[3] = scale * c3
+
+
+@numba.njit(cache=True, inline="always")
+def _multiply_linear(c, deg, a0, a1, out):
+    """out = c * (a0 + a1 s); returns the degree."""
+    out[deg + 1] = c[deg] * a1
+    for i in range(deg, 0, -1):
+        out[i] = c[i] * a0 + c[i - 1] * a1
+    out[0] = c[0] * a0
+    return deg + 1
+
+
+@numba.njit(cache=True)
+def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, sigma_rate, omega0, targets,
+                    ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density, claim_low, claim_high,
+                    kernel, count, tangent_count, tangent_kernel):
+    """Airy events at the interior extrema bp[1..n_bp-2]; marks the targets they claim from the two
+    pieces next to each extremum in claim_low/claim_high (per breakpoint)."""
+    for i in range(deg_p - 1):
+        second[i] = (i + 2) * (i + 1) * p_poly[i + 2]
+    for j in range(1, n_bp - 1):
+        claim_low[j] = 0
+        claim_high[j] = 0
+        e = bp[j]
+        pe = bv[j]
+        curvature_s = evaluate(second, deg_p - 2, e) if deg_p >= 2 else 0.0
+        if curvature_s == 0.0:
+            continue
+        opz = opz_a + (opz_b - opz_a) * e / length
+        rate = sigma_rate * opz  # d s / dt in eV (cells per eV^-1)
+        a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
+        omega = omega0 * opz
+        abs_a = abs(a)
+        half_width = XI_CUT * _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs_a ** (1.0 / 3.0) / m2_per_density
+        k_start = _count_below(ln_targets, pe - half_width, uniform, first, inverse_spacing)
+        k_stop = _count_below(ln_targets, pe + half_width, uniform, first, inverse_spacing)
+        if k_start == k_stop:
+            continue
+        xi_per_delta = math.copysign(1.0, a) / (_CUBE_ROOT_TWO * omega**_TWO_THIRD * abs_a ** (1.0 / 3.0))
+        prefactor = math.pi**2 / (opz * omega) * (4.0 * omega / abs_a) ** _TWO_THIRD
+        # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
+        if a < 0.0:
+            reach = max(bv[j - 1], bv[j + 1])
+            crossing_low = _count_below(ln_targets, reach, uniform, first, inverse_spacing)
+            crossing_high = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
+            lo_claim, hi_claim = max(crossing_low, k_start), crossing_high
+            miss_start, miss_stop = crossing_high, k_stop
+        else:
+            reach = min(bv[j - 1], bv[j + 1])
+            crossing_low = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
+            crossing_high = _count_below(ln_targets, reach, uniform, first, inverse_spacing)
+            lo_claim, hi_claim = crossing_low, min(crossing_high, k_stop)
+            miss_start, miss_stop = k_start, crossing_low
+        if hi_claim > lo_claim:
+            claim_low[j] = lo_claim
+            claim_high[j] = hi_claim
+        for k in range(k_start, k_stop):
+            claimed = lo_claim <= k < hi_claim
+            if not claimed and not (miss_start <= k < miss_stop):
+                continue
+            xi = (m2_per_density * (pe - targets[k])) * xi_per_delta
+            ai = airy_ai(xi)
+            value = prefactor * mass2[k] * mass2[k] * ai * ai
+            kernel[k] += value
+            tangent_kernel[k] += value
+            tangent_count[k] += 1
+            if claimed:
+                count[k] += 2
+
+
+@numba.njit(cache=True)
+def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
+                 cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
+                 rate_unit, m2_per_density, omega0, work, claims, kernel, count, tangent_count, tangent_kernel):
+    """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
+
+    ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
+    cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
+    the observed photon energy of near-tangent events (eV; 0 turns them off);
+    ``work``/``claims``: scratch from :func:`scratch`.
     """
-    n_rays, n_samples = ln_density.shape
+    n0, n1, n2 = cube_lo.shape
     n_targets = targets.shape[0]
-    uniform_grid = uniform and n_targets > 1
-    first_target = targets[0]
-    inverse_spacing = (n_targets - 1) / (targets[-1] - targets[0]) if n_targets > 1 else 1.0
-    # 1/(1+z) is interpolated linearly between samples: with steps of ~1e-4 in ln(1+z) this
-    # differs from interpolating ln(1+z) by ~1e-9 and saves an exponential per crossing.
-    scale = np.exp(-u)
-    pi_mass2 = math.pi * mass2
-    for r in numba.prange(n_rays):
-        dm = 0.0
-        y0 = ln_density[r, 0]
-        # n_e,physical dl / (1+z) with dl = a dchi: n_e (1+z)^-2 dchi, trapezoid.
-        g0 = math.exp(y0 - 2.0 * u[0])
-        below0 = _count_below(targets, y0, uniform_grid, first_target, inverse_spacing)
-        for j in range(n_samples - 1):
-            y1 = ln_density[r, j + 1]
-            g1 = math.exp(y1 - 2.0 * u[j + 1])
-            dm += 0.5 * (g0 + g1) * (chi[j + 1] - chi[j])
-            below1 = _count_below(targets, y1, uniform_grid, first_target, inverse_spacing)
-            if below1 != below0:
-                inverse_dy = 1.0 / (y1 - y0)
-                per_scale = dt[j] / (abs(y1 - y0) * hbar_eV_s)  # 1 / |d ln n/dt| in 1/eV
-                a0, da = scale[j], scale[j + 1] - scale[j]
-                for k in range(min(below0, below1), max(below0, below1)):
-                    a_crossing = a0 + (targets[k] - y0) * inverse_dy * da
-                    kernel[r, k] += pi_mass2[k] * a_crossing * per_scale
-                    count[r, k] += 1
-            y0, g0, below0 = y1, g1, below1
-        dispersion[r] += dm * 1.0e6  # Mpc -> pc
+    first = ln_targets[0]
+    inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
+    uniform = uniform and n_targets > 1
+    f_lo, f_hi, f_poly, p_poly, slope_poly = work[0], work[1], work[2], work[3], work[4]
+    second, bp, bv = work[5], work[6], work[7]
+    roots_work = work[8:]
+    claim_low, claim_high = claims[0], claims[1]
+    # Position on the interpolation grid: cell centres sit at integer + 1/2.
+    ux, uy, uz = start[0] - 0.5, start[1] - 0.5, start[2] - 0.5
+    dx, dy, dz = direction[0], direction[1], direction[2]
+    ix, iy, iz = int(math.floor(ux)), int(math.floor(uy)), int(math.floor(uz))
+    wx, wy, wz = ix % n0, iy % n1, iz % n2
+    inf = math.inf
+    next_x = ((ix + 1 - ux) / dx if dx > 0 else (ix - ux) / dx) if dx != 0 else inf
+    next_y = ((iy + 1 - uy) / dy if dy > 0 else (iy - uy) / dy) if dy != 0 else inf
+    next_z = ((iz + 1 - uz) / dz if dz > 0 else (iz - uz) / dz) if dz != 0 else inf
+    step_x = 1.0 / abs(dx) if dx != 0 else inf
+    step_y = 1.0 / abs(dy) if dy != 0 else inf
+    step_z = 1.0 / abs(dz) if dz != 0 else inf
+    s = 0.0
+    opz_a = _lookup(opz_table, chi_step_inverse, chi0)
+    h_a = _lookup(hubble_table, chi_step_inverse, chi0)
+    previous_end = -1.0  # P at the end of the previous piece (the field is continuous inside a segment)
+    dm = 0.0
+    pi = math.pi
+    sigma_rate = rate_unit / cell_mpc
+    while s < length:
+        s_end = min(next_x, next_y, next_z, length)
+        piece = s_end - s
+        if piece > 0.0:
+            tx = min(max(ux + dx * s - ix, 0.0), 1.0)
+            ty = min(max(uy + dy * s - iy, 0.0), 1.0)
+            tz = min(max(uz + dz * s - iz, 0.0), 1.0)
+            i1 = wx + 1 if wx + 1 < n0 else 0
+            j1 = wy + 1 if wy + 1 < n1 else 0
+            k1 = wz + 1 if wz + 1 < n2 else 0
+            chi_b = chi0 + s_end * cell_mpc
+            opz_b = _lookup(opz_table, chi_step_inverse, chi_b)
+            h_b = _lookup(hubble_table, chi_step_inverse, chi_b)
+            # The comoving field F(sigma) on sigma in [0, piece].
+            _ray_cubic(cube_lo, scale_lo, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz, f_lo, False)
+            deg_f = 3
+            if blended:
+                w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
+                w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
+                _ray_cubic(cube_hi, scale_hi, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz, f_hi, False)
+                for i in range(4):
+                    f_hi[i] -= f_lo[i]  # G = F_hi - F_lo; F = F_lo + w G
+                deg_f = _multiply_linear(f_hi, 3, w_a, (w_b - w_a) / piece, f_poly)
+                for i in range(4):
+                    f_poly[i] += f_lo[i]
+            else:
+                for i in range(4):
+                    f_poly[i] = f_lo[i]
+            # Dispersion measure: int n_com (1+z) dchi, with 1+z linear over the piece.
+            slope_opz = (opz_b - opz_a) / piece
+            integral = 0.0
+            power = piece
+            for i in range(deg_f + 1):
+                integral += f_poly[i] * opz_a * power / (i + 1)
+                integral += f_poly[i] * slope_opz * power * piece / (i + 2)
+                power *= piece
+            dm += integral * cell_mpc
+            # Physical density P = F (1+z)^3, with (1+z)^3 linear over the piece.
+            d_a, d_b = opz_a**3, opz_b**3
+            deg_p = _multiply_linear(f_poly, deg_f, d_a, (d_b - d_a) / piece, p_poly)
+            deg_slope = deg_p - 1
+            for i in range(deg_p):
+                slope_poly[i] = (i + 1) * p_poly[i + 1]
+            n_ext = roots_in(slope_poly, deg_slope, piece, roots_work, bp[1:])
+            n_bp = n_ext + 2
+            bp[0] = 0.0
+            bp[n_bp - 1] = piece
+            bv[0] = previous_end if previous_end >= 0.0 else p_poly[0]
+            for j in range(1, n_bp - 1):
+                bv[j] = evaluate(p_poly, deg_p, bp[j])
+            bv[n_bp - 1] = evaluate(p_poly, deg_p, piece)
+            previous_end = bv[n_bp - 1]
+            if n_ext > 0 and omega0 > 0.0:
+                _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, piece, sigma_rate, omega0,
+                                targets, ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density,
+                                claim_low, claim_high, kernel, count, tangent_count, tangent_kernel)
+            else:
+                for j in range(n_bp):
+                    claim_low[j] = 0
+                    claim_high[j] = 0
+            below_a = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing)
+            for j in range(n_bp - 1):
+                below_b = _count_below(ln_targets, bv[j + 1], uniform, first, inverse_spacing)
+                if below_b != below_a:
+                    for k in range(min(below_a, below_b), max(below_a, below_b)):
+                        if (claim_low[j] <= k < claim_high[j]) or (claim_low[j + 1] <= k < claim_high[j + 1]):
+                            continue
+                        root = bracketed_root(p_poly, deg_p, bp[j], bp[j + 1], bv[j], bv[j + 1], targets[k])
+                        f_value, f_slope = evaluate_with_slope(f_poly, deg_f, root)
+                        opz = opz_a + slope_opz * root
+                        hubble = h_a + (h_b - h_a) * root / piece
+                        if f_value <= 0.0:
+                            continue
+                        log_rate = abs(f_slope / (f_value * cell_mpc) + 3.0 * hubble / opz)
+                        if log_rate > 0.0:
+                            kernel[k] += pi * mass2[k] / (opz * opz * rate_unit * log_rate)
+                        count[k] += 1
+                below_a = below_b
+            opz_a, h_a = opz_b, h_b
+        if s_end >= length:
+            break
+        s = s_end
+        if next_x <= next_y and next_x <= next_z:
+            if dx > 0:
+                ix += 1; wx = wx + 1 if wx + 1 < n0 else 0
+            else:
+                ix -= 1; wx = wx - 1 if wx > 0 else n0 - 1
+            next_x += step_x
+        elif next_y <= next_z:
+            if dy > 0:
+                iy += 1; wy = wy + 1 if wy + 1 < n1 else 0
+            else:
+                iy -= 1; wy = wy - 1 if wy > 0 else n1 - 1
+            next_y += step_y
+        else:
+            if dz > 0:
+                iz += 1; wz = wz + 1 if wz + 1 < n2 else 0
+            else:
+                iz -= 1; wz = wz - 1 if wz > 0 else n2 - 1
+            next_z += step_z
+    return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3
+
+
+@numba.njit(cache=True)
+def scratch():
+    """(work, claims) scratch arrays for one ray's :func:`walk_segment` calls."""
+    return np.zeros((8 + 2 * MAX_DEGREE + 3, MAX_DEGREE + 2)), np.zeros((2, MAX_DEGREE + 2), dtype=np.int64)
