@@ -866,7 +866,7 @@ class BoxSeries:
 
     Without blending the box nearest in redshift serves a sample (boundaries
     half-way between snapshot redshifts). With ``blend=True`` a sample between two
-    snapshots is served by both, ln n_e blended with a weight linear in z; that
+    snapshots is served by both, n_e blended linearly with a weight linear in z; that
     needs every neighbouring pair to share a grid (same N and box size). Boxes of
     different sizes and resolutions are fine without blending.
     """

@@ -8,7 +8,7 @@ tracer and its batches
 as soon as it completes, in any order, so the backend checkpoints each one.
 
 Boxes never travel through the scheduler: the tracer goes out once per run
-without them (its plan, floors and mass targets: small arrays), with each box's
+without them (its plan and mass targets: small arrays), with each box's
 ``load_arguments``, and every worker reopens the box files itself (a shared
 file system) and keeps the rebuilt tracer for the run's later batches. Ray i's
 numbers depend on (seed, i) alone and the tracer's arrays are the client's own,

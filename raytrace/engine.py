@@ -118,10 +118,13 @@ def warn_outside_probed_range(series, mass, z_boxes):
     """Warn, naming the probed range, when grid masses cannot resonate anywhere in the boxes.
 
     The rays sample the trilinear interpolant of the cells, which spans the lowest
-    to the highest cell; densities scale by (1+z)^3 (PHYSICS.md section 3).
+    to the highest cell, down to zero where a box has empty cells; densities scale
+    by (1+z)^3 (PHYSICS.md section 3).
     """
-    ranges = [series.boxes[i].plasma_mass_range(z_start, z_end)
-              for z_start, z_end, i in series.intervals(z_boxes)]
+    ranges = []
+    for z_start, z_end, i in series.intervals(z_boxes):
+        low, high = series.boxes[i].plasma_mass_range(z_start, z_end)
+        ranges.append((0.0 if series.boxes[i].describe()["zero_cells"] else low, high))
     low, high = min(r[0] for r in ranges), max(r[1] for r in ranges)
     outside = (mass < low) | (mass > high)
     if outside.any():

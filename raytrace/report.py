@@ -98,6 +98,12 @@ def histogram_masses(result, count=3):
     return np.zeros(0, dtype=int)
 
 
+def _share(result):
+    """The near-tangent events' share of the boxes' kernel over all masses, in words."""
+    total = result.kernel_boxes.sum()
+    return f"{100 * result.kernel_tangent.sum() / total:.2g} %" if total > 0 else "none"
+
+
 def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=None, omega0_eV=CMB_PHOTON_ENERGY_EV):
     """The report's text: run parameters, boxes versus background, probed masses, limits at a few masses."""
     run = result.run
@@ -105,9 +111,11 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
     with_background = bool(run.get("include_background")) and z_max > z_boxes
     lines = [
         f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "
-        f"z = 0 to {z_max:g}, step {run.get('step_cells', '?')} cells, batches of {run.get('batch_size', '?')}",
+        f"z = 0 to {z_max:g}, exact crossings, near-tangent pairs in the Airy form at "
+        f"{float(run.get('photon_energy_eV', float('nan'))):.4g} eV ({_share(result)} of the boxes' kernel), "
+        f"batches of {run.get('batch_size', '?')}",
         f"boxes serve z = 0 to {z_boxes:g}"
-        + (" (snapshots blended in ln n_e)" if run.get("blend") else " (the snapshot nearest in z serves)") + "; "
+        + (" (snapshots blended linearly in n_e)" if run.get("blend") else " (the snapshot nearest in z serves)") + "; "
         + (f"the homogeneous background z = {z_boxes:g} to {z_max:g}" if with_background else "no background part"),
         f"ionisation: {run.get('ionisation')}; cosmology: {run.get('cosmology')}",
         f"boxes ({len(run.get('boxes', []))}):",

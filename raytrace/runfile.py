@@ -20,7 +20,17 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
+from .constants import K_BOLTZMANN_EV_K
 from .errors import InputError
+from .units import CMB_TEMPERATURE_K
+
+K_T0_EV = K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K
+
+#: Keys (and their flags) that older releases took: refused with the reason, in one line.
+REMOVED_KEYS = {
+    "rays.step_cells": ("--step-cells", "the engine solves the interpolated field's crossings exactly, cell by "
+                                         "cell, so there is no step length to choose; remove it"),
+}
 
 
 @dataclass(frozen=True)
@@ -53,7 +63,7 @@ BOX_OPTIONS = (
     Option("boxes.box_size", str, None, "box side with its unit, e.g. '100 Mpc/h' (overrides the 'box_size' attribute)"),
     Option("boxes.redshift", float, None, "snapshot redshift (overrides the 'redshift' attribute; one file only)", at_least=0.0),
     Option("boxes.hubble_h", float, None, "the simulation's h, when the box size unit has /h", above=0.0),
-    Option("boxes.blend", bool, False, "blend the two snapshots bracketing each redshift (log-linear)"),
+    Option("boxes.blend", bool, False, "blend the two snapshots bracketing each redshift (linear in n_e, weights linear in z)"),
 )
 
 MASS_OPTIONS = (
@@ -66,7 +76,8 @@ TRACE_OPTIONS = (
     Option("rays.z_max", float, 6.0, "redshift the rays reach (1100: last scattering)", above=0.0),
     Option("rays.z_boxes", float, None, "highest redshift the boxes serve (default: the highest snapshot's)", above=0.0),
     Option("rays.include_background", bool, True, "add the homogeneous universe from z_boxes to z_max"),
-    Option("rays.step_cells", float, 0.5, "sampling step along the ray, in cells", above=0.0),
+    Option("rays.photon_energy_eV", float, K_T0_EV, "observed photon energy (eV) at which near-tangent "
+           "resonances take their Airy form (default k T_0)", above=0.0, flag_name="photon-energy"),
     Option("rays.seed", int, 0, "random seed (0 to 2^63 - 1); ray i's stream is fixed by (seed, i)", at_least=0,
            at_most=2**63 - 1),
     Option("rays.jobs", int, 1, "parallel threads (-1: all cores); with --scheduler, threads per worker task",
@@ -88,7 +99,7 @@ OUTPUT_OPTIONS = (
 
 SIGHTLINE_OPTIONS = BOX_OPTIONS + MASS_OPTIONS + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),) + TRACE_OPTIONS + OUTPUT_OPTIONS
 
-_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.step_cells", "rays.seed", "rays.jobs",
+_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.photon_energy_eV", "rays.seed", "rays.jobs",
                    "rays.scheduler", "rays.workers")
 
 SKY_OPTIONS = (
@@ -129,10 +140,15 @@ def add_flags(parser, options):
             group.add_argument(option.flag, nargs="+", **kwargs)
         else:
             group.add_argument(option.flag, type=str, **kwargs)
+    for key, (flag, _) in REMOVED_KEYS.items():
+        parser.add_argument(flag, dest="removed__" + key.replace(".", "__"), default=None, help=argparse.SUPPRESS)
 
 
 def settings(args, options):
     """The run's settings: defaults, then the run file, then the flags."""
+    for key, (flag, reason) in REMOVED_KEYS.items():
+        if getattr(args, "removed__" + key.replace(".", "__"), None) is not None:
+            raise InputError(f"{flag}: no longer an option: {reason}")
     values = {option.key: option.default for option in options}
     if args.run_file:
         values.update(read_run_file(args.run_file, options))
@@ -168,6 +184,8 @@ def read_run_file(path, options):
             raise InputError(f"{path}: [{section}] must be a table of keys")
         for name, value in table.items():
             key = f"{section}.{name}"
+            if key in REMOVED_KEYS:
+                raise InputError(f"{path}: key {key} is no longer an option: {REMOVED_KEYS[key][1]}")
             if key not in known:
                 names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
                 raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")

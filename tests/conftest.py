@@ -34,6 +34,14 @@ def demo_dir():
     return REPOSITORY / "cubes_demo"
 
 
+@pytest.fixture(scope="session")
+def demo_series(demo_dir):
+    """The shipped demo boxes (z = 0 to 6) as one series."""
+    from raytrace.boxes import load_series
+
+    return load_series(sorted(str(p) for p in demo_dir.glob("demo_z*.h5")))
+
+
 def write_lognormal_box(path, redshift, rng, cells=16, mean_comoving_cm3=2.5e-7):
     """A small log-normal comoving electron-density box file (contiguous float32, so it is
     memory-mapped) with every attribute the loader reads; about the cosmic mean density."""

@@ -17,9 +17,11 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError, ProbedRangeWarning
 from raytrace.ionisation import IonisationHistory
 
-# 4 pi alpha / m_e in eV^2 per cm^-3, from the NRL Plasma Formulary's
-# omega_p / 2 pi = 8.98 kHz sqrt(n_e / cm^-3) (PHYSICS.md section 1); h = 4.135667e-15 eV s.
-M2_PER_DENSITY = (2 * np.pi * 8.98e3 * 6.582119569e-16) ** 2
+from reference_tracer import PLASMA_M2_PER_DENSITY
+
+# 4 pi alpha / m_e in eV^2 per cm^-3 (PHYSICS.md section 1, whose NRL Plasma Formulary check value
+# 8.98 kHz sqrt(n_e / cm^-3) has 3 digits), from the exact CODATA constants in astropy.
+M2_PER_DENSITY = PLASMA_M2_PER_DENSITY
 HBAR_EV_S = 6.582119569e-16  # CODATA 2018
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 
@@ -51,11 +53,10 @@ def test_uniform_series_gives_the_homogeneous_kernel_on_every_ray(constant_plasm
     with pytest.warns(ProbedRangeWarning, match="outside the plasma masses the boxes span"):
         result = raytrace.cast_sightlines(series, mass, 40, z_max=20.0, plasma=constant_plasma, seed=3)
     expected, z_r = homogeneous_kernel(mass, n_com)
-    # The analytic formula of PHYSICS.md s.3 uses the kernel constant of the NRL value (3 digits);
-    # 1 % is the issue's tolerance and covers it.
+    # Measured 2e-6 (the engine's linear 1+z over a cell and its tables); 1e-4 is the issue's tolerance.
     inside = (z_r > 0.05) & (z_r < 2.95)
     assert inside.sum() > 5
-    np.testing.assert_allclose(result.kernel_boxes[:, inside], np.broadcast_to(expected[inside], (40, inside.sum())), rtol=0.01)
+    np.testing.assert_allclose(result.kernel_boxes[:, inside], np.broadcast_to(expected[inside], (40, inside.sum())), rtol=1e-4)
     assert np.all(result.crossings[:, inside] == 1)
     # Beyond the boxes (z > 3) the background part carries the resonance, the boxes nothing.
     beyond = z_r > 3.05
@@ -130,17 +131,6 @@ def test_monte_carlo_mean_matches_one_point_pdf_integral(lognormal_run):
     assert np.all(result.standard_error()[well_sampled] < 0.05 * result.mean()[well_sampled])
 
 
-def test_kernel_converges_as_the_step_shrinks(lognormal_run, constant_plasma):
-    values, n_com, box, mass, coarse = lognormal_run
-    fine = raytrace.cast_sightlines(box, mass, 3000, z_max=1.0, include_background=False,
-                                    plasma=constant_plasma, seed=1, step=0.25, n_jobs=2)
-    # Issue acceptance: halving the step changes the mean by < 2 % (common practice, no source).
-    # The same rays are traced at both steps; what differs is mostly the near-tangent crossings,
-    # whose 1/|rate| tail is heavy, hence 3000 rays.
-    well_sampled = coarse.crossings.sum(axis=0) >= 300
-    np.testing.assert_allclose(fine.mean()[well_sampled], coarse.mean()[well_sampled], rtol=0.02)
-
-
 def test_same_seed_same_result_for_any_jobs_or_batch(lognormal_run, constant_plasma):
     values, n_com, box, mass, _ = lognormal_run
     runs = [raytrace.cast_sightlines(box, mass, 37, z_max=0.5, include_background=False, plasma=constant_plasma,
@@ -182,31 +172,3 @@ def test_bad_input_is_refused(constant_plasma):
         raytrace.cast_sightlines(series, good[::-1], 2, z_max=1.0, plasma=constant_plasma)
     with pytest.raises(InputError, match="n_rays"):
         raytrace.cast_sightlines(series, good, 0, z_max=1.0, plasma=constant_plasma)
-    with pytest.raises(InputError, match="step"):
-        raytrace.cast_sightlines(series, good, 2, z_max=1.0, step=0.0, plasma=constant_plasma)
-    with pytest.raises(InputError, match="step"):
-        raytrace.cast_sightlines(series, good, 2, z_max=1.0, step=-1.0, plasma=constant_plasma)
-
-
-def test_blended_series_follows_the_log_linear_density(constant_plasma):
-    # Two uniform snapshots at z = 0 and 1 with comoving densities n_a and n_b, blended:
-    # ln n_com(z) = (1 - z) ln n_a + z ln n_b between them. The one crossing of m^2 then sits where
-    # ln(4 pi alpha/m_e) + ln n_com(z) + 3 ln(1+z) = ln m^2 (brentq), and its kernel is
-    # pi m^2 / ((1+z) |d ln n/dt|) with d ln n/dt = -(1+z) H (ln(n_b/n_a) + 3/(1+z)) (PHYSICS.md s.2-3).
-    n_a = float(constant_plasma.mean_comoving_electron_density_cm3(0.0))
-    n_b = 1.5 * n_a
-    boxes = [Box.from_array(np.full((16,) * 3, n, np.float32), "100 cMpc", z, quantity="n_e_comoving",
-                            plasma=constant_plasma) for z, n in ((0.0, n_a), (1.0, n_b))]
-    mass = np.geomspace(2.2e-14, 5.5e-14, 6)
-    result = raytrace.cast_sightlines(BoxSeries(boxes, blend=True), mass, 4, z_max=1.0, include_background=False,
-                                      plasma=constant_plasma)
-    for k, m in enumerate(mass):
-        def excess(z):
-            return np.log(M2_PER_DENSITY) + (1 - z) * np.log(n_a) + z * np.log(n_b) + 3 * np.log1p(z) - np.log(m**2)
-        z_r = optimize.brentq(excess, 0.0, 1.0)
-        hubble_eV = Planck18.H(z_r).to_value("1/s") * HBAR_EV_S
-        rate = (1 + z_r) * hubble_eV * (np.log(n_b / n_a) + 3 / (1 + z_r))
-        expected = np.pi * m**2 / ((1 + z_r) * rate)
-        # 1 %: the NRL plasma constant's 3 digits (PHYSICS.md s.1) shift z_r slightly.
-        np.testing.assert_allclose(result.kernel_boxes[:, k], expected, rtol=0.01)
-        assert np.all(result.crossings[:, k] == 1)

@@ -1,4 +1,4 @@
-"""Ray geometry: cube symmetries, sample coverage, per-ray streams.
+"""Ray geometry: cube symmetries, coverage of the ray by pieces, per-ray streams.
 
 Sources: the symmetry group of the cube (the hyperoctahedral group B3, order 48:
 rotations and reflections, every element a signed permutation matrix; common
@@ -12,7 +12,7 @@ from astropy.cosmology import Planck18
 from raytrace.boxes import Box, BoxSeries
 from raytrace.cosmology import Cosmology
 from raytrace.errors import InputError
-from raytrace.rays import CUBE_SYMMETRIES, draw_rays, plan_samples
+from raytrace.rays import CUBE_SYMMETRIES, draw_rays, plan_rays
 
 
 def test_the_48_transforms_are_the_symmetries_of_the_cube():
@@ -40,35 +40,50 @@ def series_of(redshifts, sizes, cells, blend=False):
 
 
 @pytest.mark.parametrize("blend", [False, True])
-def test_samples_cover_the_whole_ray_without_gaps(blend):
+def test_pieces_cover_the_whole_ray_without_gaps(blend):
     cosmology = Cosmology()
     redshifts, sizes, cells = [0.0, 0.5, 1.0, 2.0], [100.0, 150.0, 150.0, 80.0], [32, 48, 48, 16]
     if blend:
         sizes, cells = [100.0] * 4, [32] * 4
-    plan = plan_samples(cosmology, series_of(redshifts, sizes, cells, blend), z_stop=2.5, step_cells=0.5)
-    chi_end = Planck18.comoving_distance(2.5).to_value("Mpc")
-    assert plan.chi[0] == 0.0
-    assert plan.chi[-1] == pytest.approx(chi_end, rel=1e-9)  # astropy
-    steps = np.diff(plan.chi)
-    largest_cell = max(s / c for s, c in zip(sizes, cells))
-    assert np.all(steps > 0)
-    assert steps.max() <= 0.5 * largest_cell * (1 + 1e-9)
-    # segments tile the samples in order, each at most one box length long
-    assert plan.segment_first[0] == 0 and plan.segment_stop[-1] == plan.n_samples
-    np.testing.assert_array_equal(plan.segment_first[1:], plan.segment_stop[:-1])
-    for first, stop, box in zip(plan.segment_first, plan.segment_stop, plan.segment_box):
-        assert plan.chi[stop - 1] - plan.chi[first] < sizes[box]
-        assert np.all(plan.local_cells[first:stop] * sizes[box] / cells[box] < sizes[box] + 1e-9)
-    # every sample is served with total weight 1
-    np.testing.assert_allclose(plan.weights.sum(axis=0), 1.0)
-    # u = ln(1+z) of each sample against astropy's distance
-    z = np.expm1(plan.u[::500])
-    np.testing.assert_allclose(Planck18.comoving_distance(z).to_value("Mpc"), plan.chi[::500], rtol=1e-6, atol=1e-6)
+    series = series_of(redshifts, sizes, cells, blend)
+    plan = plan_rays(cosmology, series, z_stop=2.5)
+    chi = lambda z: Planck18.comoving_distance(z).to_value("Mpc")  # noqa: E731 (astropy, the reference)
+    assert plan.piece_chi_a[0] == 0.0
+    assert plan.chi_end == pytest.approx(chi(2.5), rel=1e-9)
+    # pieces tile [0, chi_end] in order, each inside one segment of at most one box length
+    np.testing.assert_array_equal(plan.piece_chi_a[1:], plan.piece_chi_b[:-1])
+    assert np.all(plan.piece_chi_b > plan.piece_chi_a)
+    for segment, a, b in zip(plan.piece_segment, plan.piece_chi_a, plan.piece_chi_b):
+        start, box = plan.segment_chi0[segment], plan.segment_box[segment]
+        assert start - 1e-9 <= a and b <= start + sizes[box] * (1 + 1e-12)
+    # a box's interval starts a new segment half-way between snapshot redshifts (nearest serves)
+    middles = [chi(0.5 * (z0 + z1)) for z0, z1 in zip(redshifts[:-1], redshifts[1:])]
+    for middle in middles:
+        assert np.any(np.isclose(plan.segment_chi0, middle, rtol=1e-9))
+    # spans: one box, or with blending the bracketing pair, cut at every snapshot redshift
+    for span in range(plan.n_spans):
+        z_mid = float(np.interp(0.5 * (plan.span_chi_a[span] + plan.span_chi_b[span]),
+                                chi(np.linspace(0, 2.5, 2501)), np.linspace(0, 2.5, 2501)))
+        low, high = plan.span_low[span], plan.span_high[span]
+        if blend:
+            assert redshifts[low] <= z_mid <= redshifts[high] or (high == 3 and z_mid > 2.0)
+        else:
+            assert low == high == int(np.argmin(np.abs(np.array(redshifts) - z_mid)))
+    if blend:
+        for z in redshifts[1:]:
+            assert np.any(np.isclose(plan.span_chi_b, chi(z), rtol=1e-9))
+    # the tables: 1+z and H/c against astropy at their own spacing (<= a quarter of the finest cell)
+    assert plan.chi_step <= 0.25 * min(s / c for s, c in zip(sizes, cells)) * (1 + 1e-9)
+    grid = plan.chi_step * np.arange(plan.one_plus_z.size - 1)
+    z_table = plan.one_plus_z[:-1] - 1
+    np.testing.assert_allclose(chi(z_table[::200]), grid[::200], rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(plan.hubble_over_c[::200], Planck18.H(z_table[::200]).to_value("km/(s Mpc)")
+                               / 299792.458, rtol=1e-9)
 
 
 def test_each_ray_has_its_own_fixed_stream():
     cosmology = Cosmology()
-    plan = plan_samples(cosmology, series_of([0.0], [100.0], [32]), z_stop=1.0, step_cells=0.5)
+    plan = plan_rays(cosmology, series_of([0.0], [100.0], [32]), z_stop=1.0)
     together = draw_rays(4, [16, 17, 18], plan, [32])
     alone = draw_rays(4, [17], plan, [32])
     # Ray 17's geometry does not depend on which other rays share its batch.
@@ -89,7 +104,7 @@ def test_copy_symmetries_and_shifts_are_uniform():
     # scipy.stats.kstest); p > 1e-3 (common practice, no source).
     from scipy import stats
 
-    plan = plan_samples(Cosmology(), series_of([0.0], [100.0], [32]), z_stop=1.0, step_cells=0.5)
+    plan = plan_rays(Cosmology(), series_of([0.0], [100.0], [32]), z_stop=1.0)
     _, starts, _, symmetries = draw_rays(11, np.arange(400), plan, [32])
     counts = np.bincount(symmetries.ravel(), minlength=48)
     assert stats.chisquare(counts).pvalue > 1e-3
@@ -100,7 +115,6 @@ def test_copy_symmetries_and_shifts_are_uniform():
 def test_bad_plan_input():
     cosmology = Cosmology()
     series = series_of([0.0], [100.0], [32])
-    with pytest.raises(InputError, match="step"):
-        plan_samples(cosmology, series, z_stop=1.0, step_cells=0.0)
-    with pytest.raises(InputError, match="z_max"):
-        plan_samples(cosmology, series, z_stop=-1.0, step_cells=0.5)
+    for bad in (-1.0, 0.0, float("nan"), "1", True):
+        with pytest.raises(InputError, match="z_max"):
+            plan_rays(cosmology, series, z_stop=bad)

@@ -19,7 +19,6 @@ import pytest
 import raytrace
 from raytrace.background import MeanPlasma
 from raytrace.boxes import Box
-from raytrace.engine import DENSITY_FLOOR
 from raytrace.errors import InputError, ProbedRangeWarning
 from raytrace.ionisation import IonisationHistory
 from raytrace.results import SightlineResult
@@ -60,20 +59,21 @@ BOXES = {
 def probed_range(values):
     """Masses the engine can cross in a box served from z = 0 to Z_BOXES.
 
-    It samples the trilinear interpolant of the cells, which spans the lowest to
-    the highest cell, floored at DENSITY_FLOOR times the box mean (raytrace.engine);
-    densities scale by (1+z)^3, so the lowest at z = 0, the highest at Z_BOXES.
+    It solves the trilinear interpolant of the cells, which spans the lowest to the
+    highest cell (zero where cells are empty); densities scale by (1+z)^3, so the
+    lowest at z = 0, the highest at Z_BOXES.
     """
     values = values.astype(np.float32).astype(np.float64)  # what the box stores
-    lowest = max(values.min(), DENSITY_FLOOR * values.mean())
-    return nrl_mass(lowest), nrl_mass(values.max() * (1 + Z_BOXES) ** 3)
+    return nrl_mass(values.min()), nrl_mass(values.max() * (1 + Z_BOXES) ** 3)
 
 
 def mass_grid(values):
-    """Masses inside the probed range and, 3 and 30 times beyond it, outside on both sides."""
+    """Masses inside the probed range and, 3 and 30 times beyond it, outside on both sides (below the
+    lowest non-empty cell where cells are empty: those masses are inside, and resonate in the gaps)."""
     low, high = probed_range(values)
-    inside = np.geomspace(low * 1.05, high / 1.05, 12)
-    return np.concatenate(([low / 30, low / 3], inside, [high * 3, high * 30])), low, high
+    bottom = low if low > 0 else nrl_mass(values[values > 0].min())
+    inside = np.geomspace(bottom * 1.05, high / 1.05, 12)
+    return np.concatenate(([bottom / 30, bottom / 3], inside, [high * 3, high * 30])), low, high
 
 
 @pytest.fixture(scope="module")
@@ -103,8 +103,9 @@ def test_results_are_finite_with_zeros_where_nothing_crosses(run):
     for name in ("kernel", "kernel_boxes", "kernel_background", "crossings", "dispersion_measure"):
         assert np.all(np.isfinite(getattr(result, name))), name
     assert np.all(result.kernel_boxes >= 0) and np.all(result.crossings >= 0)
-    # A kernel is a sum over crossings (PHYSICS.md section 2): zero exactly where there is none.
-    assert np.all((result.kernel_boxes > 0) == (result.crossings > 0))
+    # A kernel is a sum over crossings and near misses (PHYSICS.md sections 2 and 9): zero exactly
+    # where there is neither.
+    assert np.all((result.kernel_boxes > 0) == ((result.crossings > 0) | (result.tangent_events > 0)))
     assert result.crossings.sum() > 0  # the rays did cross, so the checks above had something to check
     # Every sightline crosses gas inside the boxes (a third of the zero-slab box is empty, not all of it).
     assert np.all(result.dispersion_measure_boxes > 0)

@@ -54,7 +54,7 @@ def main(argv=None):
         return 2
     except MemoryError as error:  # sizes the user asked for (cells, rays, step), not a bug
         print(f"raytrace {args.command}: error: not enough memory for what the options ask ({error}); "
-              "ask for less: fewer cells or rays, a larger step", file=sys.stderr)
+              "ask for less: fewer cells, rays or masses", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"raytrace {args.command}: interrupted", file=sys.stderr)

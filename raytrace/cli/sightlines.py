@@ -84,7 +84,7 @@ def run(args):
     with cluster_executor(values) as executor:
         result = cast_sightlines(
             series, mass, values["rays.count"], values["rays.z_max"], seed=values["rays.seed"],
-            step=values["rays.step_cells"], n_jobs=values["rays.jobs"],
+            photon_energy_eV=values["rays.photon_energy_eV"], n_jobs=values["rays.jobs"],
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
         )
@@ -109,6 +109,9 @@ def print_summary(result, epsilon, omega0):
     fraction = result.boxes_fraction()
     print(f"# {result.n_rays} sightlines to z = {result.run['z_max']:g} (boxes to z = {result.run['z_boxes']:g}), "
           f"seed {result.run['seed']}; mean DM = {result.dispersion_measure.mean():.1f} pc cm^-3")
+    print(f"# near-tangent (Airy) events at {result.run['photon_energy_eV']:.4g} eV: "
+          f"{result.tangent_events.sum(axis=1).mean():.2f} per ray, "
+          f"{100 * result.kernel_tangent.sum() / max(result.kernel_boxes.sum(), 1e-300):.2g} % of the boxes' kernel")
     header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'sem_K_eV':>10} {'K_16%':>10} {'K_84%':>10} {'boxes':>6}"
     if epsilon is not None:
         header += f" {'P_mean':>10}"

@@ -38,7 +38,7 @@ def run(args):
             series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
             rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
-            ordering=values["sky.ordering"], step=values["rays.step_cells"],
+            ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
             randomise_copies=values["sky.randomise_copies"], batch_pixels=values["sky.batch_pixels"],
             backend=backend, progress=True, executor=executor,
         )

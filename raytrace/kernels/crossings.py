@@ -113,6 +113,20 @@ def _multiply_linear(c, deg, a0, a1, out):
 
 
 @numba.njit(cache=True)
+def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
+    """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
+
+    K = pi^2 m^4 / ((1+z) omega) (4 omega / |a|)^(2/3) Ai(xi)^2 with
+    xi = sign(a) Delta 2^(-1/3) omega^(-2/3) |a|^(-1/3); ``mass2`` = m^2 (eV^2),
+    ``omega`` the photon energy there (eV), ``curvature`` a = d^2 m_gamma^2/dt^2
+    (eV^4), ``delta`` = m_gamma^2 - m^2 at the extremum (eV^2).
+    """
+    scale = _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs(curvature) ** (1.0 / 3.0)
+    ai = airy_ai(math.copysign(1.0, curvature) * delta / scale)
+    return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
+
+
+@numba.njit(cache=True)
 def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, sigma_rate, omega0, targets,
                     ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density, claim_low, claim_high,
                     kernel, count, tangent_count, tangent_kernel):
@@ -138,8 +152,6 @@ def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, s
         k_stop = _count_below(ln_targets, pe + half_width, uniform, first, inverse_spacing)
         if k_start == k_stop:
             continue
-        xi_per_delta = math.copysign(1.0, a) / (_CUBE_ROOT_TWO * omega**_TWO_THIRD * abs_a ** (1.0 / 3.0))
-        prefactor = math.pi**2 / (opz * omega) * (4.0 * omega / abs_a) ** _TWO_THIRD
         # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
         if a < 0.0:
             reach = max(bv[j - 1], bv[j + 1])
@@ -160,9 +172,7 @@ def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, s
             claimed = lo_claim <= k < hi_claim
             if not claimed and not (miss_start <= k < miss_stop):
                 continue
-            xi = (m2_per_density * (pe - targets[k])) * xi_per_delta
-            ai = airy_ai(xi)
-            value = prefactor * mass2[k] * mass2[k] * ai * ai
+            value = pair_kernel(mass2[k], opz, omega, a, m2_per_density * (pe - targets[k]))
             kernel[k] += value
             tangent_kernel[k] += value
             tangent_count[k] += 1
@@ -225,6 +235,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             # The comoving field F(sigma) on sigma in [0, piece].
             _ray_cubic(cube_lo, scale_lo, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz, f_lo, False)
             deg_f = 3
+            w_a = w_b = 0.0
             if blended:
                 w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
                 w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
@@ -280,6 +291,11 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                         f_value, f_slope = evaluate_with_slope(f_poly, deg_f, root)
                         opz = opz_a + slope_opz * root
                         hubble = h_a + (h_b - h_a) * root / piece
+                        if blended:
+                            # The weight's own slope from H, not from its chord over the piece (first order).
+                            w_root = w_a + (w_b - w_a) * root / piece
+                            exact = hubble * cell_mpc / (z_hi - z_lo) if 0.0 < w_root < 1.0 else 0.0
+                            f_slope += evaluate(f_hi, 3, root) * (exact - (w_b - w_a) / piece)
                         if f_value <= 0.0:
                             continue
                         log_rate = abs(f_slope / (f_value * cell_mpc) + 3.0 * hubble / opz)

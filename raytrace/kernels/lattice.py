@@ -57,14 +57,16 @@ def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi
                 axis_next = 2
             chi_end = min(next_face[axis_next], chi_b)
             if chi_end > chi:
-                s, s0, s1, s2 = 0, 0.0, 0.0, 0.0
+                symmetry = np.int64(0)
+                shift0 = shift1 = shift2 = 0.0
                 if randomise:
-                    s, s0, s1, s2 = copy_transform(seed, copy_key, copy[0], copy[1], copy[2])
-                shift0, shift1, shift2 = (s0 * n, s1 * n, s2 * n) if randomise else (0.0, 0.0, 0.0)
+                    drawn, s0, s1, s2 = copy_transform(seed, copy_key, copy[0], copy[1], copy[2])
+                    symmetry = np.int64(drawn)  # a uint64 would unify with int64 to float
+                    shift0, shift1, shift2 = s0 * n, s1 * n, s2 * n
                 local0 = (observer[0] + chi * d[0] - copy[0] * box_size) * cells_per_mpc - half
                 local1 = (observer[1] + chi * d[1] - copy[1] * box_size) * cells_per_mpc - half
                 local2 = (observer[2] + chi * d[2] - copy[2] * box_size) * cells_per_mpc - half
-                m = symmetries[s]
+                m = symmetries[symmetry]
                 point[0] = m[0, 0] * local0 + m[0, 1] * local1 + m[0, 2] * local2 + half + shift0
                 point[1] = m[1, 0] * local0 + m[1, 1] * local1 + m[1, 2] * local2 + half + shift1
                 point[2] = m[2, 0] * local0 + m[2, 1] * local1 + m[2, 2] * local2 + half + shift2

@@ -155,10 +155,10 @@ def roots_in(c, deg, length, work, out):
 
 @numba.njit(cache=True)
 def airy_ai(x):
-    """Ai(x) (DLMF 9.2) from its Maclaurin series (DLMF 9.4.1), for |x| <= 8.
+    """Ai(x) (DLMF 9.2) from its Maclaurin series (DLMF 9.4.1), for -8 <= x <= 5.
 
-    The series' largest term is ~ exp(2/3 |x|^1.5) times Ai's size at x = 8, so at
-    most ~9 digits cancel there; for |x| <= 6, where the engine uses it, ~7.
+    For x > 0 the terms grow to ~exp(2/3 x^1.5) times Ai(x) before they fall, so
+    digits cancel: at x = 5 about 8 are left (the engine needs |x| < XI_CUT = 4.84).
     """
     c1 = 0.355028053887817239  # Ai(0) = 3^(-2/3) / Gamma(2/3)
     c2 = 0.258819403792806798  # -Ai'(0) = 3^(-1/3) / Gamma(1/3)
