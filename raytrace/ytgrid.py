@@ -13,9 +13,10 @@ The electron density, in order of preference:
 - else the dataset's own ("gas", "El_number_density"), or for particles the gas type's
   "ElectronAbundance" (n_e / n_H by that field's definition); else an InputError.
 
-Deposition is yt's own: on grid datasets a covering grid at the refinement level
-whose cells tile the N^3 cells (each coarse value copied into the finer cells, so
-the volume integral is kept exactly), summed in blocks of whole cells; on particle
+Deposition is yt's own: on grid datasets a covering grid at a refinement level
+whose cells tile the N^3 cells, the finest affordable one (_grid_levels; coarser
+cells are copied into the finer ones, so the volume integral is kept exactly),
+summed in blocks of whole cells; on particle
 datasets yt's cloud-in-cell deposit of each particle's electrons onto an
 arbitrary grid spanning the periodic domain. The redshift, comoving box size and h
 come from the dataset (``current_redshift``, ``domain_width`` in proper cm times
@@ -82,16 +83,30 @@ def _metadata(ds, redshift, hubble_h):
     return redshift, hubble_h, float(width[0]) * (1.0 + redshift) / MPC_CM
 
 
+# The largest covering grid read (cells); about 400 MB of float64 for its few fields.
+_MAX_COVERING_CELLS = 1 << 24
+
+
 def _grid_levels(ds, n_cells):
-    """The refinement level whose covering grid tiles N^3 in whole blocks, and the block size."""
+    """The refinement level whose covering grid tiles N^3 in whole blocks, and the block size: the
+    finest such level up to the dataset's finest that stays under _MAX_COVERING_CELLS (then every
+    leaf cell's own value is read), else the coarsest that tiles N^3 (then coarse cells stand for
+    their children, whose volume average AMR codes keep there: common practice, no source)."""
     dims = np.asarray(ds.domain_dimensions)
     refine = int(getattr(ds, "refine_by", 2))
+    tiling = []
     for level in range(0, 16):
         fine = dims * refine**level
         if np.all(fine % n_cells == 0) and np.all(fine >= n_cells) and len(set(fine)) == 1:
-            return level, int(fine[0] // n_cells)
-    raise InputError(f"--cells {n_cells}: must divide the dataset's grid of {tuple(dims)} cells refined by "
-                     f"{refine}^level (e.g. {dims[0]} or {dims[0] * refine})")
+            tiling.append((level, int(fine[0] // n_cells)))
+        if fine[0] > 16 * max(n_cells, dims[0] * refine ** int(ds.max_level)):
+            break
+    if not tiling:
+        raise InputError(f"--cells {n_cells}: must divide the dataset's grid of {tuple(dims)} cells refined by "
+                         f"{refine}^level (e.g. {dims[0]} or {dims[0] * refine})")
+    affordable = [(level, block) for level, block in tiling
+                  if level <= int(ds.max_level) and (n_cells * block) ** 3 <= _MAX_COVERING_CELLS]
+    return affordable[-1] if affordable else tiling[0]
 
 
 def _grid_electrons(ds, n_cells, electron_field, fraction, hydrogen_fraction):

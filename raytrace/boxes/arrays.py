@@ -31,12 +31,13 @@ def box_from_array(cls, array, box_size, redshift, quantity, plasma, hubble_h, i
     fraction = fraction_from(*fractions, helium_electrons, where)
     converts = quantity == "density_contrast" or (
         fraction is not None and fraction.cells is not None and quantity in _GAS)
-    if copy or converts:
+    if quantity == "density_contrast":
+        data = np.empty(array.shape, dtype=np.float32)
+        add_one(array, data, where)
+    elif copy or converts:
         data = np.array(array, dtype=np.float32, order="C")
     else:
         data = np.ascontiguousarray(array, np.float32)
-    if quantity == "density_contrast":
-        add_one(data, where)
     constant, box_ionisation = apply_fraction(data, quantity, reference, fraction, plasma, where)
     from .box import _scan
 

@@ -35,9 +35,9 @@ class Fraction:
     option: str              # the flag (keyword) that states it, for messages
 
     def cell_values(self, values):
-        """Per-cell factor before :meth:`factor`: x_e itself, or 1 - x_HI (a float32 array, in place)."""
+        """Per-cell factor before :meth:`factor`: x_e itself, or 1 - x_HI (a float array, in place)."""
         if self.neutral:
-            np.subtract(np.float32(1.0), values, out=values)
+            np.subtract(1.0, values, out=values)
         return values
 
     def factor(self, plasma):
@@ -121,9 +121,10 @@ def apply_fraction(values, quantity, reference, fraction, plasma, where):
         raise InputError(f"{where}, fraction {fraction.label}: values of type {cells.dtype}; expected numbers")
     density_sum = electron_sum = fraction_sum = 0.0
     for start, stop in _slabs(values.shape[0]):
-        slab = np.array(cells[start:stop], dtype=np.float32)
+        # float64 until after 1 - x_HI, which loses digits near x_HI = 1 in float32
+        slab = np.array(cells[start:stop], dtype=np.float64)
         _check_fraction_values(slab, f"{where}, fraction {fraction.label}", neutral=fraction.neutral)
-        slab = fraction.cell_values(slab)
+        slab = fraction.cell_values(slab).astype(np.float32)
         fraction_sum += float(np.sum(slab, dtype=np.float64))
         if quantity in _GAS:
             density_sum += float(np.sum(values[start:stop], dtype=np.float64))
@@ -139,13 +140,15 @@ def apply_fraction(values, quantity, reference, fraction, plasma, where):
     return mean, mean
 
 
-def add_one(values, where):
-    """A density contrast delta -> 1 + delta, in place; delta below -1 is an InputError."""
+def add_one(source, values, where):
+    """values = 1 + delta (float32) from a density contrast ``source`` (h5py dataset or array, same
+    shape), slab by slab in float64: 1 + delta loses digits near delta = -1 when done in float32.
+    delta below -1 is an InputError."""
     for start, stop in _slabs(values.shape[0]):
-        slab = values[start:stop]
-        slab += np.float32(1.0)
-        low = float(slab.min())
-        # float32 rounding of delta = -1 can leave -1e-7; anything below that is not a density contrast
+        slab = np.asarray(source[start:stop], dtype=np.float64) + 1.0
+        low = float(slab.min()) if slab.size else 0.0
+        # rounding of a stored delta = -1 can leave -1e-7; anything below that is not a density contrast
         if low < -1e-6:
             raise InputError(f"{where}: density contrast {low - 1:g} below -1; expected rho / rhobar - 1 >= -1")
         np.maximum(slab, 0.0, out=slab)
+        values[start:stop] = slab

@@ -295,9 +295,11 @@ def load_box(
                                                                     helium_electrons), sources, where)
         per_cell = fraction is not None and fraction.cells is not None and quantity in _GAS_QUANTITIES
         mappable = memory_map and not per_cell and quantity != "density_contrast"
-        values = _read_values(node, path, mappable)
         if quantity == "density_contrast":
-            add_one(values, where)
+            values = np.empty(node.shape, dtype=np.float32)
+            add_one(node, values, where)
+        else:
+            values = _read_values(node, path, mappable)
         constant, box_ionisation = apply_fraction(values, quantity, reference, fraction, plasma, where)
         if comoving_scale is not None:
             scale = _number(comoving_scale, "comoving_scale")
