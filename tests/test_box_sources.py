@@ -255,7 +255,9 @@ def test_the_command_line_prints_each_warning_on_one_line(tmp_path, capsys):
     z = 1.0
     path = write(tmp_path / "dense.h5", field(8) * 1e3, attrs={
         "quantity": "n_e_physical", "box_size": 10.0, "box_size_unit": "cMpc", "redshift": z})
-    assert cli.main(["inspect", str(path)]) == 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        assert cli.main(["inspect", str(path)]) == 0
     lines = [line for line in capsys.readouterr().err.splitlines() if "warning" in line]
     assert len(lines) == 1 and lines[0].startswith("raytrace inspect: warning: ") and "dense.h5" in lines[0]
 

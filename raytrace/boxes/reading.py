@@ -217,6 +217,43 @@ def _stated_fraction(handle, metadata, arguments, sources, where):
     return fraction_from(ionised, neutral, helium, where)
 
 
+def _meaning(handle, metadata, where, sources, quantity, redshift, hubble_h, box_size, mean_density, fractions):
+    """What the dataset holds, from the arguments, else the file's metadata; ``sources`` gets
+    where each value came from. Returns (quantity, z, h, length, comoving size, reference, fraction)."""
+
+    def stated(key, given, check_value, required=None):
+        if given is not None:
+            sources[key] = _given(key)
+            return check_value(given, f"--{key.replace('_', '-')} ({key})")
+        value, source = metadata.find(key)
+        if value is None:
+            if required:
+                raise InputError(f"{where}: {required}; give {_supply(key)} or store a '{key}' attribute")
+            return None
+        sources[key] = source
+        return check_value(value, f"{where}: {source}")
+
+    quantity = stated("quantity", quantity, _check_quantity,
+                      f"what the values mean is not stated (one of {', '.join(QUANTITIES)})")
+    z = stated("redshift", redshift, _check_redshift, "the snapshot redshift is unknown")
+    h = stated("hubble_h", hubble_h, _check_hubble)
+    if box_size is None:
+        length, sources["box_size"] = _length_from_metadata(metadata, where)
+    else:
+        length, sources["box_size"] = _length_from_argument(box_size, "--box-size (box_size)"), _given("box_size")
+    size = _comoving_size(length, z, h, where)
+    if mean_density is not None and quantity != "overdensity":
+        raise InputError(f"--mean-density (mean_density): applies to quantity 'overdensity' only; {where} "
+                         f"holds {quantity!r}")
+    reference = stated("mean_density", mean_density, _check_reference) if quantity == "overdensity" else None
+    if quantity == "overdensity" and reference is None:
+        reference, sources["mean_density"] = "history", "default"
+    # Fraction attributes are read only where the quantity takes one; arguments are always checked.
+    needs_fraction = quantity in _GAS_QUANTITIES or reference == "box"
+    fraction = _stated_fraction(handle, metadata if needs_fraction else _NO_METADATA, fractions, sources, where)
+    return quantity, z, h, length, size, reference, fraction
+
+
 def load_box(
     path,
     dataset=None,
@@ -261,38 +298,9 @@ def load_box(
         _check_grid(node.shape, where)
         _check_dtype(node.dtype, where)
         metadata = Metadata(handle, node)
-
-        def stated(key, given, check_value, required=None):
-            if given is not None:
-                sources[key] = _given(key)
-                return check_value(given, f"--{key.replace('_', '-')} ({key})")
-            value, source = metadata.find(key)
-            if value is None:
-                if required:
-                    raise InputError(f"{where}: {required}; give {_supply(key)} or store a '{key}' attribute")
-                return None
-            sources[key] = source
-            return check_value(value, f"{where}: {source}")
-
-        quantity = stated("quantity", quantity, _check_quantity,
-                          f"what the values mean is not stated (one of {', '.join(QUANTITIES)})")
-        z = stated("redshift", redshift, _check_redshift, "the snapshot redshift is unknown")
-        h = stated("hubble_h", hubble_h, _check_hubble)
-        if box_size is None:
-            length, sources["box_size"] = _length_from_metadata(metadata, where)
-        else:
-            length, sources["box_size"] = _length_from_argument(box_size, "--box-size (box_size)"), _given("box_size")
-        size = _comoving_size(length, z, h, where)
-        if mean_density is not None and quantity != "overdensity":
-            raise InputError(f"--mean-density (mean_density): applies to quantity 'overdensity' only; {where} "
-                             f"holds {quantity!r}")
-        reference = stated("mean_density", mean_density, _check_reference) if quantity == "overdensity" else None
-        if quantity == "overdensity" and reference is None:
-            reference, sources["mean_density"] = "history", "default"
-        needs_fraction = quantity in _GAS_QUANTITIES or reference == "box"
-        fraction = _stated_fraction(
-            handle, metadata if needs_fraction else _NO_METADATA, (ionised_fraction, neutral_fraction,
-                                                                    helium_electrons), sources, where)
+        quantity, z, h, length, size, reference, fraction = _meaning(
+            handle, metadata, where, sources, quantity, redshift, hubble_h, box_size, mean_density,
+            (ionised_fraction, neutral_fraction, helium_electrons))
         per_cell = fraction is not None and fraction.cells is not None and quantity in _GAS_QUANTITIES
         mappable = memory_map and not per_cell and quantity != "density_contrast"
         if quantity == "density_contrast":

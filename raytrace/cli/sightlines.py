@@ -2,7 +2,7 @@
 
 import numpy as np
 
-from ..runfile import SIGHTLINE_OPTIONS, add_flags, require, settings
+from ..runfile import SIGHTLINE_OPTIONS, add_flags, settings
 
 NAME = "sightlines"
 HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
