@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 from astropy.cosmology import Planck18
 
+import raytrace.boxes.meanings as boxes_meanings
 import raytrace.cli as cli
 from raytrace.background import MeanPlasma
 from raytrace.boxes import QUANTITIES, Box, load_box, load_series
@@ -194,12 +195,17 @@ def test_density_contrast_and_neutral_fraction_give_the_n_e_of_the_equivalent_co
                                (1.0 + delta) * 0.14 * hydrogen_density0() * (1 + z) ** 3, rtol=1e-6)
 
 
-def test_the_reopened_box_needs_no_plasma_and_matches(tmp_path, plasma):
+def test_the_reopened_box_needs_no_plasma_and_matches(tmp_path, plasma, monkeypatch):
     path = write(tmp_path / "sim.h5", field(8, seed=8) - 1.0, dataset="delta",
                  attrs={"quantity": "density_contrast", "box_size": 10.0, "box_size_unit": "cMpc", "redshift": 6.0,
                         "neutral_fraction_dataset": "/xHI", "helium_electrons": 1})
     write(path, np.full((8, 8, 8), 0.5), dataset="xHI")
     box = load_box(path, plasma=plasma, check=False)
+
+    def no_default_plasma():
+        raise AssertionError("the reopened box must not need a MeanPlasma")
+
+    monkeypatch.setattr(boxes_meanings, "_default_plasma", no_default_plasma)
     again = load_box(**box.load_arguments)
     np.testing.assert_array_equal(again.data, box.data)
     assert again.comoving_scale == box.comoving_scale

@@ -83,12 +83,13 @@ def fraction_from(ionised, neutral, helium_electrons, where, option_style="--"):
     return Fraction(None, given, is_neutral, helium_electrons, f"{source} ({meaning} per cell{helium})", option)
 
 
-def apply_fraction(values, quantity, reference, fraction, plasma, where):
+def apply_fraction(values, quantity, reference, fraction, plasma, where, scale_known=False):
     """``(constant, box_ionisation)`` for the scale; per-cell gas fractions multiply ``values`` in place.
 
     ``constant``: the factor that enters :func:`meanings._comoving_scale`: the
     ionised fraction, or for per-cell fractions what is left after the cells
-    (1, or n_e / n_HII for a neutral fraction). ``box_ionisation``: the box's mean electrons per
+    (1, or n_e / n_HII for a neutral fraction). ``scale_known``: the caller has the
+    box's scale already (a reopened box), so no MeanPlasma is needed for the factor. ``box_ionisation``: the box's mean electrons per
     hydrogen nucleus (mass-weighted for gas), None when the box does not state it.
     """
     needs = quantity in _GAS or (quantity == "overdensity" and reference == "box")
@@ -107,7 +108,7 @@ def apply_fraction(values, quantity, reference, fraction, plasma, where):
                 "--mean-density box to use the box's own ionisation") if quantity == "overdensity" else ""
         raise InputError(f"{fraction.option}: applies to gas quantities ({', '.join(_GAS)}) and to an overdensity "
                          f"with --mean-density box; {where} holds {quantity!r}{hint}")
-    factor = fraction.factor(plasma)
+    factor = 1.0 if scale_known else fraction.factor(plasma)
     if fraction.cells is None:
         x = factor * ((1.0 - fraction.constant) if fraction.neutral else fraction.constant)
         if not x > 0:

@@ -308,7 +308,8 @@ def load_box(
             add_one(node, values, where)
         else:
             values = _read_values(node, path, mappable)
-        constant, box_ionisation = apply_fraction(values, quantity, reference, fraction, plasma, where)
+        constant, box_ionisation = apply_fraction(values, quantity, reference, fraction, plasma, where,
+                                                  scale_known=comoving_scale is not None)
         if comoving_scale is not None:
             scale = _number(comoving_scale, "comoving_scale")
             if not (math.isfinite(scale) and scale > 0):
