@@ -317,3 +317,23 @@ def test_bad_flags_are_one_line_errors_naming_them(tmp_path, capsys, flags, name
     lines = [line for line in err.strip().splitlines() if "warning" not in line]
     assert status == 2 and len(lines) == 1, err
     assert lines[0].startswith("raytrace inspect: error: ") and named in lines[0], lines[0]
+
+
+@pytest.mark.parametrize("argv, named", [
+    (["grid", "--cells", "8", "--output", "{out}"], "PARTICLES.h5 or --yt"),
+    (["grid", "{particles}", "--yt", "{particles}", "--cells", "8", "--output", "{out}"], "PARTICLES.h5 or --yt"),
+    (["grid", "--yt", "{particles}", "--positions", "pos", "--cells", "8", "--output", "{out}"], "--positions"),
+    (["grid", "--yt", "{particles}", "--hydrogen-ionised-fraction", "1", "--cells", "8", "--output", "{out}"],
+     "--hydrogen-ionised-fraction"),
+    (["grid", "{particles}", "--yt-field", "El", "--cells", "8", "--output", "{out}"], "--yt-field"),
+    (["grid", "{particles}", "--yt-particle-type", "io", "--cells", "8", "--output", "{out}"], "--yt-particle-type"),
+    (["grid", "{particles}", "--cells", "8", "--output", "{out}"], "--positions"),
+])
+def test_bad_grid_flags_are_one_line_errors_naming_them(tmp_path, capsys, argv, named):
+    particles = tmp_path / "particles.h5"
+    with h5py.File(particles, "w") as handle:
+        handle["pos"] = np.zeros((4, 3))
+    argv = [item.format(particles=particles, out=tmp_path / "out.h5") for item in argv]
+    status = cli.main(argv)
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert status == 2 and len(lines) == 1 and named in lines[0], lines
