@@ -1,8 +1,9 @@
 """``raytrace inspect``: what box files hold and which dark-photon masses they can probe.
 
-In: HDF5 box files or quoted globs, with the box options that fill in or override
-their attributes. Out (stdout, text or JSON): for each box its grid, dtype, size,
-cell, redshift, what the values mean, the mean and percentiles of n_e / nbar_e,
+In: HDF5 box files or quoted globs, with the box options (runfile.BOX_OPTIONS) that
+fill in or override their metadata. Out (stdout, text or JSON): for each box its
+grid, dtype, size, cell, redshift, what the values mean, each with where it came
+from (a flag, or which attribute of which group), the mean and percentiles of n_e / nbar_e,
 the plasma-mass range at its redshift and so the masses it can probe; for
 several boxes, the series' redshift coverage (which box serves where). With
 ``--plot FILE`` a figure of each box's density PDF and a slice.
