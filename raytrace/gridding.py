@@ -19,9 +19,9 @@ What the file and the options must supply
   as simulation codes write them).
 - The electrons per hydrogen atom, either
   ``electron_abundance`` = n_e / n_H (a dataset or one number), or
-  ``ionised_fraction`` = n_HII / n_H (a dataset or one number, in [0, 1]) with
+  ``hydrogen_ionised_fraction`` = n_HII / n_H (a dataset or one number, in [0, 1]) with
   ``helium_electrons`` (0, 1 or 2): the electrons each helium atom gives where
-  hydrogen is ionised, so that n_e / n_H = ionised_fraction * (1 + helium_electrons
+  hydrogen is ionised, so that n_e / n_H = hydrogen_ionised_fraction * (1 + helium_electrons
   * n_He / n_H), n_He / n_H = (1 - X_H) / (4 X_H) (metals neglected and
   m_He = 4 m_H: common practice, no source).
 - Optionally ``smoothing_lengths`` (a dataset of N values in position_unit): then
@@ -70,7 +70,7 @@ _PER_H = re.compile(r"\s*/\s*h$")
 _VALUE_AND_UNIT = re.compile(r"^\s*(?P<value>[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(?P<unit>\S+)\s*$")
 _METHODS = ("auto", "cic", "sph")
 # Command-line flags whose names are not the keyword's with "-" for "_".
-_FLAGS = {"n_cells": "--cells", "periodic": "--not-periodic"}
+_FLAGS = {"n_cells": "--cells", "periodic": "--not-periodic", "electron_abundance": "--ionised-fraction"}
 
 
 def _option(name):
@@ -281,7 +281,7 @@ def grid_particles(
     smoothing_lengths=None,
     kernel_support=None,
     electron_abundance=None,
-    ionised_fraction=None,
+    hydrogen_ionised_fraction=None,
     helium_electrons=None,
     hubble_h=None,
     hydrogen_fraction=0.76,
@@ -291,7 +291,7 @@ def grid_particles(
     """Deposit the gas particles of ``path`` onto an ``n_cells``^3 grid of comoving n_e (cm^-3).
 
     Dataset options name datasets of the file (e.g. "PartType0/Coordinates");
-    ``masses``, ``electron_abundance`` and ``ionised_fraction`` may instead be one
+    ``masses``, ``electron_abundance`` and ``hydrogen_ionised_fraction`` may instead be one
     number for every particle. See the module docstring for what each option
     means and which are needed. Returns a `GriddedParticles`.
     """
@@ -322,12 +322,13 @@ def grid_particles(
             f"mass: give {_option('masses')}, or both {_option('densities')} and {_option('volumes')} "
             "(mass = density * volume)"
         )
-    _exactly_one(("electron_abundance", electron_abundance), ("ionised_fraction", ionised_fraction), "electrons")
+    _exactly_one(("electron_abundance", electron_abundance),
+                 ("hydrogen_ionised_fraction", hydrogen_ionised_fraction), "electrons")
     electrons_per_hydrogen_factor = 1.0
-    if ionised_fraction is not None:
+    if hydrogen_ionised_fraction is not None:
         if helium_electrons not in (0, 1, 2) or isinstance(helium_electrons, bool):
             raise InputError(
-                f"{_option('helium_electrons')}: with an ionised fraction, say how many electrons each helium "
+                f"{_option('helium_electrons')}: with a hydrogen ionised fraction, say how many electrons each helium "
                 f"atom gives where hydrogen is ionised: 0, 1 or 2; got {helium_electrons!r}"
             )
         electrons_per_hydrogen_factor += helium_electrons * (1.0 - hydrogen_fraction) / (4.0 * hydrogen_fraction)
@@ -358,7 +359,7 @@ def grid_particles(
             abundance = _Source(handle, path, "electron_abundance", electron_abundance, n_particles)
             abundance_high = math.inf
         else:
-            abundance = _Source(handle, path, "ionised_fraction", ionised_fraction, n_particles)
+            abundance = _Source(handle, path, "hydrogen_ionised_fraction", hydrogen_ionised_fraction, n_particles)
             abundance_high = 1.0
         smoothing = _Source(handle, path, "smoothing_lengths", smoothing_lengths, n_particles) if use_sph else None
 
@@ -399,7 +400,7 @@ def grid_particles(
         "source": str(path.resolve()),
         "source_checksum": file_checksum(path),
         "datasets": datasets,
-        "electron_option": "electron_abundance" if electron_abundance is not None else "ionised_fraction",
+        "electron_option": "electron_abundance" if electron_abundance is not None else "hydrogen_ionised_fraction",
         "helium_electrons": helium_electrons,
         "units": {"position_unit": position_unit, "box_size": str(box_size), "mass_unit": mass_unit},
         "hubble_h": hubble_h,

@@ -33,6 +33,10 @@ REMOVED_KEYS = {
 }
 
 
+class NumberOrText:
+    """Option kind: a number, or text (a dataset path) when it does not read as one."""
+
+
 @dataclass(frozen=True)
 class Option:
     key: str            # "section.name" in the TOML file
@@ -45,6 +49,8 @@ class Option:
     flag_name: str = None    # when the key's own name would be ambiguous as a flag
     path: bool = False       # a file path: in a run file, relative to the run file's folder
     forbidden: tuple = ()    # values refused although within the bounds
+    choices: tuple = ()      # the only values accepted, when not empty
+    listable: bool = False   # one value or a list: a TOML list, or comma-separated in a flag
 
     @property
     def flag(self):
@@ -58,11 +64,25 @@ class Option:
 BOX_OPTIONS = (
     Option("boxes.files", list, None, "box files or glob patterns (HDF5); a series when several", flag_name="boxes",
            path=True),
-    Option("boxes.dataset", str, None, "path of the 3-D density dataset in each file (default: the only 3-D dataset)"),
-    Option("boxes.quantity", str, None, "what the values are (overrides the file's 'quantity' attribute)"),
-    Option("boxes.box_size", str, None, "box side with its unit, e.g. '100 Mpc/h' (overrides the 'box_size' attribute)"),
-    Option("boxes.redshift", float, None, "snapshot redshift (overrides the 'redshift' attribute; one file only)", at_least=0.0),
+    Option("boxes.dataset", str, None, "path of the 3-D density dataset in each file, or several comma-separated "
+           "(default: the only 3-D dataset, or those that carry their own redshift attribute)", listable=True),
+    Option("boxes.quantity", str, None, "what the values are (overrides the file's 'quantity' attribute)",
+           choices=("n_e_physical", "n_e_comoving", "overdensity", "gas_density", "gas_overdensity",
+                    "density_contrast")),
+    Option("boxes.box_size", str, None, "box side with its unit, e.g. '100 Mpc/h', one for all files or one per "
+           "file (overrides the file's box size)", listable=True),
+    Option("boxes.redshift", float, None, "snapshot redshift, one for all files or one per file in the files' "
+           "order (overrides the file's redshift)", at_least=0.0, listable=True),
     Option("boxes.hubble_h", float, None, "the simulation's h, when the box size unit has /h", above=0.0),
+    Option("boxes.ionised_fraction", NumberOrText, None, "electrons per hydrogen nucleus n_e/n_H: a number, or a "
+           "3-D dataset of it in each file (gas quantities; overdensity with mean_density = 'box')", listable=True),
+    Option("boxes.neutral_fraction", NumberOrText, None, "instead of ionised_fraction: the neutral hydrogen "
+           "fraction n_HI/n_H, a number or a 3-D dataset (needs helium_electrons)", listable=True),
+    Option("boxes.helium_electrons", int, None, "with neutral_fraction: electrons per helium atom where hydrogen "
+           "is ionised", choices=(0, 1, 2)),
+    Option("boxes.mean_density", str, None, "what an overdensity is relative to: 'history' (nbar_e of the "
+           "background ionisation history, the default) or 'box' (the box's own ionisation)",
+           choices=("history", "box")),
     Option("boxes.blend", bool, False, "blend the two snapshots bracketing each redshift (linear in n_e, weights linear in z)"),
 )
 
@@ -127,13 +147,21 @@ SKY_OPTIONS = (
 def add_flags(parser, options):
     """Add one flag per option; flags default to None so the run file's value stands unless given."""
     parser.add_argument("run_file", nargs="?", default=None, help="TOML run file (flags override its keys)")
+    add_option_flags(parser, options)
+
+
+def add_option_flags(parser, options):
+    """The flags of ``options`` alone, grouped by section (for commands without a run file)."""
     sections = {}
     for option in options:
         section = option.key.split(".")[0]
         group = sections.setdefault(section, parser.add_argument_group(f"[{section}]"))
         kwargs = {"dest": option.dest, "default": None, "help": f"{option.help} (TOML {option.key})"}
         if option.kind is not bool:
-            kwargs["metavar"] = {int: "N", float: "X", str: "TEXT", list: "PATH"}[option.kind]
+            metavar = {int: "N", float: "X", str: "TEXT", list: "PATH", NumberOrText: "X|DATASET"}[option.kind]
+            if option.choices:
+                metavar = "|".join(str(choice) for choice in option.choices)
+            kwargs["metavar"] = f"{metavar}[,{metavar}...]" if option.listable else metavar
         if option.kind is bool:
             group.add_argument(option.flag, action=argparse.BooleanOptionalAction, **kwargs)
         elif option.kind is list:
@@ -150,13 +178,13 @@ def settings(args, options):
         if getattr(args, "removed__" + key.replace(".", "__"), None) is not None:
             raise InputError(f"{flag}: no longer an option: {reason}")
     values = {option.key: option.default for option in options}
-    if args.run_file:
+    if getattr(args, "run_file", None):
         values.update(read_run_file(args.run_file, options))
     by_key = {option.key: option for option in options}
     for option in options:
         given = getattr(args, option.dest, None)
         if given is not None:
-            values[option.key] = _convert(option, given, f"flag {option.flag}")
+            values[option.key] = _convert(option, given, f"flag {option.flag}", from_flag=True)
     for key, value in values.items():
         _check_range(by_key[key], value)
     return values
@@ -199,7 +227,31 @@ def read_run_file(path, options):
     return found
 
 
-def _convert(option, value, where):
+def _convert(option, value, where, from_flag=False):
+    """The value of an option, checked: one value of its kind, or for a listable option a
+    list of them (a TOML list, or a flag's comma-separated text)."""
+    if option.listable:
+        if isinstance(value, list):
+            items = value
+        elif from_flag and isinstance(value, str) and "," in value:
+            items = [item.strip() for item in value.split(",")]
+        else:
+            return _convert_one(option, value, where)
+        if not items:
+            raise InputError(f"{where}: expected one value or a non-empty list, got {value!r}")
+        converted = [_convert_one(option, item, where) for item in items]
+        return converted[0] if len(converted) == 1 else converted
+    return _convert_one(option, value, where)
+
+
+def _convert_one(option, value, where):
+    value = _checked_kind(option, value, where)
+    if option.choices and value not in option.choices:
+        raise InputError(f"{where}: {value!r} is not one of {', '.join(str(c) for c in option.choices)}")
+    return value
+
+
+def _checked_kind(option, value, where):
     kind = option.kind
     try:
         if kind is bool:
@@ -227,14 +279,32 @@ def _convert(option, value, where):
             if not isinstance(value, str) or not value:
                 raise TypeError
             return value
+        if kind is NumberOrText:
+            if isinstance(value, bool) or not isinstance(value, (int, float, str)) or value == "":
+                raise TypeError
+            if isinstance(value, str):
+                try:
+                    value = float(value)
+                except ValueError:
+                    return value
+            if not math.isfinite(value):
+                raise TypeError
+            return float(value)
     except (TypeError, ValueError):
         pass
     expected = {bool: "true or false", list: "a list of strings", int: "a whole number",
-                float: "a finite number", str: "a non-empty string"}[kind]
+                float: "a finite number", str: "a non-empty string",
+                NumberOrText: "a number or the path of a dataset"}[kind]
+    if option.listable:
+        expected += " (or a list of them, one per file)"
     raise InputError(f"{where}: expected {expected}, got {value!r}")
 
 
 def _check_range(option, value):
+    if isinstance(value, list):
+        for item in value:
+            _check_range(option, item)
+        return
     if value is None or option.kind not in (int, float):
         return
     if value in option.forbidden:

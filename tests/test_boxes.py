@@ -17,7 +17,8 @@ from astropy.cosmology import Planck18
 from astropy.cosmology import units as cu
 from scipy import stats
 
-import raytrace.boxes as boxes_module
+import raytrace.boxes.meanings as boxes_meanings
+import raytrace.boxes.values as boxes_values
 from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries, as_series, load_box, load_series
 from raytrace.errors import InputError
@@ -237,7 +238,7 @@ def test_reading_a_compressed_box_makes_no_second_full_copy(tmp_path, monkeypatc
     values = field(n, seed=6).astype(np.float32)
     path = write(tmp_path / "b.h5", values, attrs=dict(STANDARD, quantity="n_e_comoving"),
                  chunks=(8, n, n), compression="gzip")
-    monkeypatch.setattr(boxes_module, "_SLAB_VALUES", 4 * n * n)
+    monkeypatch.setattr(boxes_values, "_SLAB_VALUES", 4 * n * n)
     tracemalloc.start()
     box = load_box(path)
     peak = tracemalloc.get_traced_memory()[1]
@@ -254,7 +255,7 @@ def test_load_arguments_reopen_the_same_box_without_a_mean_plasma(tmp_path, plas
     def no_default_plasma():
         raise AssertionError("the reopened box must not need a MeanPlasma")
 
-    monkeypatch.setattr(boxes_module, "_default_plasma", no_default_plasma)
+    monkeypatch.setattr(boxes_meanings, "_default_plasma", no_default_plasma)
     again = load_box(**arguments)
     assert again.comoving_scale == box.comoving_scale
     assert again.box_size_cMpc == pytest.approx(box.box_size_cMpc, rel=1e-15)

@@ -78,7 +78,7 @@ def test_text_report_and_flags_for_a_file_without_attributes(tmp_path, capsys):
     )
     assert status == 0, err
     assert "8^3 cells, stored as int64" in out and "/gas/ne" in out
-    assert "50 cMpc (given as '50 Mpc')" in out
+    assert "50 cMpc, as '50 Mpc'  [given: --box-size" in out
     assert "series" not in out
     # n_e = 3 cm^-3 everywhere: m = h 8.98 kHz sqrt(3) = 6.43e-11 eV (NRL Plasma Formulary).
     expected = (const.h * 8.98 * u.kHz).to_value(u.eV) * np.sqrt(3.0)

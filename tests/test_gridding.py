@@ -207,7 +207,7 @@ def test_fully_ionised_hydrogen_and_helium(tmp_path):
                            vol=np.array([2.0]), x=np.array([1.0]))
     result = grid_particles(
         path, 2, positions="pos", position_unit="cMpc", box_size="1 cMpc", redshift=0.0,
-        densities="rho", volumes="vol", mass_unit="g", ionised_fraction="x", helium_electrons=2,
+        densities="rho", volumes="vol", mass_unit="g", hydrogen_ionised_fraction="x", helium_electrons=2,
         hydrogen_fraction=0.75,
     )
     assert result.electrons_read == pytest.approx(6.0 / PROTON_MASS_G * (1 + 0.75) / 2, rel=1e-12)
@@ -244,8 +244,8 @@ GOOD = dict(positions="PartType0/Coordinates", position_unit="cMpc", box_size="5
     (dict(redshift=None), r"redshift \(--redshift\)"),
     (dict(masses=None), r"masses \(--masses\), or both densities"),
     (dict(densities="PartType0/Masses"), r"not both"),
-    (dict(ionised_fraction=0.5), r"exactly one of electron_abundance.*both were given"),
-    (dict(electron_abundance=None, ionised_fraction=0.5), r"helium_electrons \(--helium-electrons\)"),
+    (dict(hydrogen_ionised_fraction=0.5), r"exactly one of electron_abundance.*both were given"),
+    (dict(electron_abundance=None, hydrogen_ionised_fraction=0.5), r"helium_electrons \(--helium-electrons\)"),
     (dict(electron_abundance=-1.0), r"electron_abundance.*50 values are not finite and in \[0, inf\] \(first: -1.0\)"),
     (dict(smoothing_lengths="PartType0/Hsml"), r"kernel_support \(--kernel-support\)"),
     (dict(method="sph"), r"'sph' needs smoothing_lengths"),
@@ -318,7 +318,7 @@ def test_command_line_writes_a_box(particle_file, tmp_path, capsys):
     out = tmp_path / "cli.h5"
     argv = [str(particle_file), "--cells", "4", "--positions", "PartType0/Coordinates", "--position-unit", "cMpc",
             "--box-size", "5 cMpc", "--redshift", "1", "--masses", "PartType0/Masses", "--mass-unit", "Msun",
-            "--ionised-fraction", "1", "--helium-electrons", "1", "--smoothing-lengths", "PartType0/Hsml",
+            "--hydrogen-ionised-fraction", "1", "--helium-electrons", "1", "--smoothing-lengths", "PartType0/Hsml",
             "--kernel-support", "2", "--output", str(out)]
     assert grid_cli.run(parse(argv)) == 0
     printed = capsys.readouterr().out

@@ -31,7 +31,7 @@ from raytrace.background import MeanPlasma
 from raytrace.boxes import QUANTITIES, Box, load_box, load_series
 from raytrace.errors import InputError
 from raytrace.ionisation import IonisationHistory
-from raytrace.runfile import SIGHTLINE_OPTIONS, add_flags, read_run_file
+from raytrace.runfile import SIGHTLINE_OPTIONS, NumberOrText, add_flags, read_run_file
 from raytrace.runfile import settings as run_settings
 
 # Derandomized, no example database: every run, here or in CI, tries the same examples.
@@ -97,6 +97,7 @@ of_kind = {
     int: st.integers(min_value=-(2**63), max_value=2**63 - 1),
     float: st.floats(allow_nan=True, allow_infinity=True) | st.integers(-10, 10),
     str: st.text(max_size=8),
+    NumberOrText: st.floats(allow_nan=True, allow_infinity=True) | st.text(max_size=8),
     bool: st.booleans(),
     list: st.lists(st.text(max_size=8), max_size=3) | st.text(max_size=8),
 }
@@ -127,7 +128,10 @@ def run_documents(draw):
             if "unknown key" in faults and draw(st.booleans()):
                 name = draw(st.text(max_size=6))
             typed = "value of any type" in faults and draw(st.booleans())
-            table[name] = draw(values if typed else of_kind[option.kind])
+            single = of_kind[option.kind]
+            if option.listable:
+                single = single | st.lists(single, max_size=3)
+            table[name] = draw(values if typed else single)
     return document
 
 
@@ -152,7 +156,16 @@ def assert_matches_schema(found):
         option = KNOWN[key]
         if value is None:
             continue
-        if option.kind is list:
+        if option.listable and isinstance(value, list):
+            assert len(value) > 1
+            for item in value:
+                assert_matches_schema({key: item})
+            continue
+        if option.choices:
+            assert value in option.choices
+        if option.kind is NumberOrText:
+            assert (isinstance(value, float) and math.isfinite(value)) or (isinstance(value, str) and value)
+        elif option.kind is list:
             assert isinstance(value, list) and value and all(isinstance(v, str) for v in value)
         elif option.kind is float:
             assert isinstance(value, float) and math.isfinite(value)
@@ -411,7 +424,7 @@ def files(tmp_path_factory):
 def grid_argv(particles="{particles}", **changed):
     flags = {"cells": "8", "output": "{folder}/out.h5", "positions": "pos", "position_unit": "cMpc",
              "box_size": "10 cMpc", "redshift": "0", "masses": "mass", "mass_unit": "Msun",
-             "electron_abundance": "1", **changed}
+             "ionised_fraction": "1", **changed}
     options = [item for name, value in flags.items() for item in ("--" + name.replace("_", "-"), value)]
     return ["grid", particles, *options]
 
@@ -435,6 +448,7 @@ BAD_COMMAND_LINES = [
     case(["inspect", "{folder}/*.none"], "{folder}/*.none"),
     case(["inspect", "{box}", "--redshift", "a,b"], "--redshift"),
     case(["inspect", "{box}", "--hubble-h", "-1"], "--hubble-h"),
+    case(["inspect", "{box}", "--hubble-h", "abc"], "--hubble-h"),
     case(["inspect", "{box}", "--ionised-fraction", "0.5"], "--ionised-fraction"),
     case(["inspect", "{box}", "--z-max", "1e9"], "--z-max"),
     case(["inspect", "{box}", "--z-max", "nan"], "--z-max"),
@@ -498,7 +512,7 @@ def test_bad_input_on_the_command_line_is_one_line_and_status_2(files, capsys, a
 
 @pytest.mark.parametrize("argv, flag", [
     (["background", "--mass", "1e-13", "--z-min", "abc"], "--z-min"),
-    (["inspect", "{box}", "--hubble-h", "abc"], "--hubble-h"),
+    (["inspect", "{box}", "--z-max", "abc"], "--z-max"),
     (grid_argv(cells="many"), "--cells"),
     (["sightlines", "--rays"], "--rays"),
     (["limits", "--mass", "1e-13", "--confidence", "x"], "--confidence"),

@@ -1,13 +1,20 @@
-"""``raytrace grid``: gas particles in an HDF5 file -> a box file of comoving n_e.
+"""``raytrace grid``: gas particles in an HDF5 file, or any snapshot yt loads -> a box file of comoving n_e.
 
 In: the particle file, the names of its datasets and their units (flags below,
-the same options as raytrace.gridding.grid_particles). Out: a box file that
-``raytrace.load_box`` reads with no extra flags, and the electron totals
-before and after deposition on stdout.
+the same options as raytrace.gridding.grid_particles); or ``--yt SNAPSHOT``
+(raytrace.ytgrid.grid_yt). Out: a box file that ``raytrace.load_box`` reads with
+no extra flags, and the electron totals before and after deposition on stdout.
+``--ionised-fraction`` means electrons per hydrogen nucleus n_e / n_H, as in
+every other subcommand; hydrogen's own n_HII / n_H is ``--hydrogen-ionised-fraction``.
 """
 
 NAME = "grid"
-HELP = "Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths) onto an N^3 box of n_e."
+HELP = ("Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths), or any snapshot yt loads "
+        "(--yt), onto an N^3 box of n_e.")
+
+# Options of HDF5 particle files that have no meaning with --yt.
+_PARTICLE_FILE_OPTIONS = ("positions", "position_unit", "box_size", "masses", "densities", "volumes", "mass_unit",
+                          "hydrogen_ionised_fraction", "helium_electrons", "smoothing_lengths", "kernel_support")
 
 
 def dataset_or_number(text):
@@ -19,14 +26,15 @@ def dataset_or_number(text):
 
 
 def add_arguments(parser):
-    parser.add_argument("particles", metavar="PARTICLES.h5", help="HDF5 file of gas particles")
+    parser.add_argument("particles", metavar="PARTICLES.h5", nargs="?", help="HDF5 file of gas particles")
     parser.add_argument("--cells", type=int, required=True, metavar="N", help="cells along each side of the grid")
     parser.add_argument("--output", required=True, metavar="BOX.h5", help="box file to write")
     parser.add_argument("--overwrite", action="store_true", help="replace --output if it exists")
     parser.add_argument("--compress", action="store_true", help="gzip the box (smaller; cannot be memory-mapped)")
 
     where = parser.add_argument_group("positions and box")
-    where.add_argument("--positions", required=True, metavar="DATASET", help="dataset of positions, shape (N, 3)")
+    where.add_argument("--positions", metavar="DATASET", help="dataset of positions, shape (N, 3) (required "
+                       "for a particle file)")
     where.add_argument(
         "--position-unit", metavar="UNIT",
         help="unit of positions and smoothing lengths: [c|p](pc|kpc|Mpc|Gpc)[/h], 'c' comoving, 'p' proper, "
@@ -51,18 +59,26 @@ def add_arguments(parser):
     )
 
     electrons = parser.add_argument_group(
-        "electrons: --electron-abundance, or --ionised-fraction with --helium-electrons"
+        "electrons: --ionised-fraction, or --hydrogen-ionised-fraction with --helium-electrons"
     )
     electrons.add_argument(
-        "--electron-abundance", type=dataset_or_number, metavar="DATASET|VALUE", help="n_e / n_H"
+        "--ionised-fraction", type=dataset_or_number, metavar="X|DATASET",
+        help="electrons per hydrogen nucleus n_e / n_H (with --yt: a number or a yt field)",
     )
     electrons.add_argument(
-        "--ionised-fraction", type=dataset_or_number, metavar="DATASET|VALUE", help="n_HII / n_H, in [0, 1]"
+        "--hydrogen-ionised-fraction", type=dataset_or_number, metavar="X|DATASET", help="n_HII / n_H, in [0, 1]"
     )
     electrons.add_argument(
         "--helium-electrons", type=int, choices=(0, 1, 2),
-        help="electrons per helium atom where hydrogen is ionised (with --ionised-fraction)",
+        help="electrons per helium atom where hydrogen is ionised (with --hydrogen-ionised-fraction)",
     )
+
+    yt = parser.add_argument_group("any snapshot yt loads (the raytrace[yt] extra), instead of PARTICLES.h5")
+    yt.add_argument("--yt", metavar="SNAPSHOT", help="a file or folder yt.load opens (AMR, uniform grid, particles)")
+    yt.add_argument("--yt-field", metavar="FIELD",
+                    help="yt field of electron number density, 'name' or 'type,name' (default: gas El_number_density "
+                    "when the dataset has it)")
+    yt.add_argument("--yt-particle-type", metavar="TYPE", help="the gas particle type (default: the SPH or only one)")
 
     kernel = parser.add_argument_group("deposit (default: SPH with --smoothing-lengths, else cloud in cell)")
     kernel.add_argument("--smoothing-lengths", metavar="DATASET", help="SPH smoothing lengths, in the position unit")
@@ -74,17 +90,27 @@ def add_arguments(parser):
 
 
 def run(args):
+    from ..errors import InputError
     from ..gridding import grid_particles
     from ..provenance import check_writable
 
     check_writable(args.output, args.overwrite)  # before the work, not after it
+    if (args.yt is None) == (args.particles is None):
+        raise InputError("grid: give a particle file PARTICLES.h5 or --yt SNAPSHOT, one of the two")
+    if args.yt is not None:
+        return _run_yt(args)
+    for name in ("yt_field", "yt_particle_type"):
+        if getattr(args, name) is not None:
+            raise InputError(f"--{name.replace('_', '-')}: applies with --yt SNAPSHOT only")
+    if args.positions is None:
+        raise InputError("--positions: required for a particle file: the dataset of positions, shape (N, 3)")
     result = grid_particles(
         args.particles, args.cells,
         positions=args.positions, position_unit=args.position_unit, box_size=args.box_size,
         redshift=args.redshift, hubble_h=args.hubble_h, periodic=args.periodic,
         masses=args.masses, densities=args.densities, volumes=args.volumes, mass_unit=args.mass_unit,
         hydrogen_fraction=args.hydrogen_fraction,
-        electron_abundance=args.electron_abundance, ionised_fraction=args.ionised_fraction,
+        electron_abundance=args.ionised_fraction, hydrogen_ionised_fraction=args.hydrogen_ionised_fraction,
         helium_electrons=args.helium_electrons,
         smoothing_lengths=args.smoothing_lengths, kernel_support=args.kernel_support, method=args.method,
     )
@@ -100,3 +126,26 @@ def run(args):
         f"mean n_e = {result.density.mean():.4e} cm^-3 comoving"
     )
     return 0
+
+
+def _run_yt(args):
+    from ..errors import InputError
+    from ..ytgrid import grid_yt
+
+    for name in _PARTICLE_FILE_OPTIONS:
+        if getattr(args, name) is not None:
+            raise InputError(f"--{name.replace('_', '-')}: applies to a particle file, not to --yt (yt's dataset "
+                             "knows its positions, masses and units)")
+    if args.method != "auto" or not args.periodic:
+        raise InputError("--method, --not-periodic: apply to a particle file, not to --yt")
+    result = grid_yt(args.yt, args.cells, electron_field=args.yt_field, ionised_fraction=args.ionised_fraction,
+                     hydrogen_fraction=args.hydrogen_fraction, particle_type=args.yt_particle_type,
+                     redshift=args.redshift, hubble_h=args.hubble_h)
+    written = result.write(args.output, overwrite=args.overwrite, compression="gzip" if args.compress else None)
+    print(f"# {args.yt} through yt: {result.n_particles} particles or cells, {result.method}")
+    print(f"# electrons: {result.electrons_read:.10e} in the dataset, {result.electrons_gridded:.10e} on the grid "
+          f"(relative difference {result.relative_difference:.2e})")
+    print(f"# wrote {written}: {args.cells}^3 cells, {result.box_size_cMpc:g} cMpc, z = {result.redshift:g}"
+          + (f", h = {result.hubble_h:g}" if result.hubble_h is not None else ""))
+    return 0
+

@@ -1,8 +1,9 @@
 """``raytrace inspect``: what box files hold and which dark-photon masses they can probe.
 
-In: HDF5 box files or quoted globs, with the box options that fill in or override
-their attributes. Out (stdout, text or JSON): for each box its grid, dtype, size,
-cell, redshift, what the values mean, the mean and percentiles of n_e / nbar_e,
+In: HDF5 box files or quoted globs, with the box options (runfile.BOX_OPTIONS) that
+fill in or override their metadata. Out (stdout, text or JSON): for each box its
+grid, dtype, size, cell, redshift, what the values mean, each with where it came
+from (a flag, or which attribute of which group), the mean and percentiles of n_e / nbar_e,
 the plasma-mass range at its redshift and so the masses it can probe; for
 several boxes, the series' redshift coverage (which box serves where). With
 ``--plot FILE`` a figure of each box's density PDF and a slice.
@@ -17,57 +18,11 @@ HELP = "Describe box files: grid, size, redshift, meaning, n_e/nbar_e percentile
 
 
 def add_box_arguments(parser):
-    """Options that fill in or override a box file's attributes; shared by every command that reads boxes."""
-    from ..boxes import QUANTITIES
+    """The box options (runfile.BOX_OPTIONS but the files) as flags; each overrides what the file says."""
+    from ..runfile import add_option_flags
+    from .box_options import BOX_SETTINGS
 
-    group = parser.add_argument_group("boxes (each option overrides the file's attribute of the same name)")
-    group.add_argument(
-        "--dataset", default=None, metavar="PATH[,PATH...]",
-        help="dataset path(s) in each file (default: the only 3-D dataset, or every 3-D dataset that "
-        "carries its own 'redshift' attribute)",
-    )
-    group.add_argument("--quantity", default=None, choices=tuple(QUANTITIES), help="what the values are")
-    group.add_argument(
-        "--box-size", default=None, metavar="LENGTH",
-        help="side length with its unit, e.g. '100 Mpc/h', '67.7 Mpc' (comoving unless 'physical' or 'pMpc')",
-    )
-    group.add_argument(
-        "--redshift", default=None, metavar="Z[,Z...]",
-        help="snapshot redshift: one for all boxes or one per box, comma-separated, in the order of the files",
-    )
-    group.add_argument("--hubble-h", type=float, default=None, metavar="H", help="the simulation's h (for '/h' units)")
-    group.add_argument(
-        "--ionised-fraction", default=None, metavar="X|DATASET",
-        help="gas quantities: electrons per hydrogen nucleus, a constant or a 3-D dataset in the same file",
-    )
-    group.add_argument(
-        "--blend", action="store_true",
-        help="blend the two bracketing snapshots (log-linear in density) instead of taking the nearest",
-    )
-
-
-def box_arguments(args, plasma):
-    """Keyword arguments for raytrace.boxes.load_boxes from the options of add_box_arguments."""
-    from ..errors import InputError
-
-    arguments = {"plasma": plasma}
-    if args.dataset is not None:
-        names = [name.strip() for name in args.dataset.split(",") if name.strip()]
-        arguments["dataset"] = names[0] if len(names) == 1 else names
-    for key in ("quantity", "box_size", "hubble_h"):
-        if getattr(args, key) is not None:
-            arguments[key] = getattr(args, key)
-    if args.redshift is not None:
-        try:
-            arguments["redshift"] = [float(text) for text in args.redshift.split(",")]
-        except ValueError:
-            raise InputError(f"--redshift: expected numbers separated by commas, got {args.redshift!r}") from None
-    if args.ionised_fraction is not None:
-        try:
-            arguments["ionised_fraction"] = float(args.ionised_fraction)
-        except ValueError:
-            arguments["ionised_fraction"] = args.ionised_fraction
-    return arguments
+    add_option_flags(parser, BOX_SETTINGS)
 
 
 def add_arguments(parser):
@@ -91,20 +46,23 @@ def run(args):
     from ..cosmology import Z_TABLE_MAX
     from ..errors import InputError
     from ..provenance import check_writable
+    from ..runfile import settings
     from .background import ionisation_from_args
+    from .box_options import BOX_SETTINGS, box_arguments
 
     if args.z_max is not None and not (np.isfinite(args.z_max) and 0 < args.z_max <= Z_TABLE_MAX):
         raise InputError(f"--z-max: expected a redshift in (0, {Z_TABLE_MAX:g}], got {args.z_max!r}")
     if args.plot:
         check_writable(args.plot, args.overwrite)
         _image_format(args.plot)
+    values = settings(args, BOX_SETTINGS)
     plasma = MeanPlasma(None, ionisation_from_args(args))
-    boxes = load_boxes(args.files, **box_arguments(args, plasma))
+    boxes = load_boxes(args.files, **box_arguments(values, plasma))
     statistics = [box.statistics(plasma) for box in boxes]
 
     series, series_error = None, None
     try:
-        series = BoxSeries(boxes, blend=args.blend)
+        series = BoxSeries(boxes, blend=values["boxes.blend"])
     except InputError as error:
         series_error = error
     z_stop = None
@@ -154,23 +112,37 @@ def _box_text(box, stats, number, count):
     info = box.describe()
     where = f"{info['path']} : {info['dataset']}" if info["path"] else "in-memory box"
     mapped = ", memory-mapped" if info["memory_mapped"] else ""
-    given = info["box_size_given"]
-    h = f", h = {info['hubble_h']:g}" if info["hubble_h"] is not None else ""
+    sources = info["sources"]
+
+    def source(key):
+        return f"  [{sources[key]}]" if key in sources else ""
+
     lines = [
         f"box {number} of {count}: {where}",
         f"  grid           {box.n_cells}^3 cells, stored as {info['stored_dtype']}{mapped}",
-        f"  box size       {box.box_size_cMpc:.6g} cMpc (given as '{given}'{h}); cell {box.cell_size_cMpc:.4g} cMpc",
-        f"  redshift       {box.redshift:g}",
-        f"  values         {info['meaning']}",
+        f"  box size       {box.box_size_cMpc:.6g} cMpc, as '{info['box_size_given']}'{source('box_size')}; "
+        f"cell {box.cell_size_cMpc:.4g} cMpc",
     ]
+    if info["hubble_h"] is not None:
+        lines.append(f"  hubble h       {info['hubble_h']:g}{source('hubble_h')}")
+    lines += [
+        f"  redshift       {box.redshift:g}{source('redshift')}",
+        f"  values         {info['quantity']}: {info['meaning']}{source('quantity')}",
+    ]
+    if info["mean_density"] is not None:
+        lines.append(f"  relative to    {info['mean_density']}{source('mean_density')}")
     if info["ionised_fraction"] is not None:
-        lines.append(f"  ionised frac.  {info['ionised_fraction']}")
+        key = "neutral_fraction" if "neutral_fraction" in sources else "ionised_fraction"
+        helium = f"; helium electrons{source('helium_electrons')}" if "helium_electrons" in sources else ""
+        lines.append(f"  ionisation     {info['ionised_fraction']}{source(key)}{helium}")
+    if info["box_ionisation"] is not None:
+        lines.append(f"  box's own x_e  {info['box_ionisation']:.4g} electrons per hydrogen nucleus (mean)")
     masses = stats["plasma_mass_eV"]
     used = stats["percentile_cells"]
     sampled = "" if used == box.n_cells**3 else f" (from a random sample of {used} cells)"
     percentiles = "  ".join(f"{p:g}%: {v:.4g}" for p, v in stats["percentiles"].items())
     lines += [
-        f"  nbar_e(z)      {stats['mean_electron_density_cm3']:.4e} cm^-3 physical",
+        f"  nbar_e(z)      {stats['mean_electron_density_cm3']:.4e} cm^-3 physical (background history)",
         f"  n_e/nbar_e     mean {stats['mean_overdensity']:.4f}; "
         f"lowest non-zero {stats['min_positive_overdensity']:.4g}; "
         f"highest {stats['max_overdensity']:.4g}; zero cells {stats['zero_cells']}",
@@ -188,7 +160,7 @@ def _box_text(box, stats, number, count):
 
 
 def _series_text(series, coverage):
-    rule = "blended log-linearly between bracketing snapshots" if series.blend else "nearest snapshot in redshift"
+    rule = "blended linearly in n_e between bracketing snapshots" if series.blend else "nearest snapshot in redshift"
     lines = [
         f"series: {len(series)} boxes at z = {', '.join(f'{z:g}' for z in series.redshifts)} ({rule})",
         f"  {'z from':>8} {'z to':>8}  {'box':>4} {'at z':>6}  masses probed (eV)",

@@ -2,7 +2,7 @@
 
 import numpy as np
 
-from ..runfile import SIGHTLINE_OPTIONS, add_flags, require, settings
+from ..runfile import SIGHTLINE_OPTIONS, add_flags, settings
 
 NAME = "sightlines"
 HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
@@ -15,18 +15,9 @@ def add_arguments(parser):
 
 def load_boxes(values):
     """The box series a run file's [boxes] section describes."""
-    from ..boxes import load_series
+    from .box_options import load_run_series
 
-    files = require(values, "boxes.files", SIGHTLINE_OPTIONS)
-    return load_series(
-        files if len(files) > 1 else files[0],
-        dataset=values["boxes.dataset"],
-        blend=values["boxes.blend"],
-        quantity=values["boxes.quantity"],
-        box_size=values["boxes.box_size"],
-        redshift=values["boxes.redshift"],
-        hubble_h=values["boxes.hubble_h"],
-    )
+    return load_run_series(values, SIGHTLINE_OPTIONS)
 
 
 def masses(values):
