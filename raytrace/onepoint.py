@@ -27,7 +27,8 @@ Method and error: the points' ln n_e are binned (2^16 bins spanning the
 densities the masses can resonate at; each bin holds its points' count and mean
 ln n_e, so a bin's points sit at their own mean). The points come in ``groups``
 independent groups; the error is the standard error of the group estimates plus
-a bound on the binning (the content of the bins cut by an interval's edge).
+a bound on the binning (the content of the bins cut by an interval's edge),
+plus 1e-6 of <K> for the arithmetic.
 """
 
 import math
@@ -45,6 +46,8 @@ FORMAT = "raytrace-onepoint-1"
 BINS = 1 << 16
 #: Default number of random points per box (or per blended pair), over all groups.
 POINTS = 1 << 24
+#: Relative error bound of the arithmetic (tabulated F, float32 box values): always added.
+NUMERICAL = 1e-6
 _TABLE = 4097  # nodes of the tabulated F(s) per interval: relative error ~1e-7
 
 
@@ -155,7 +158,8 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
             binning += bound
     estimates *= np.pi * mass**2
     kernel_boxes = estimates.mean(axis=0)
-    error = estimates.std(axis=0, ddof=1) / math.sqrt(groups) + np.pi * mass**2 * binning
+    error = (estimates.std(axis=0, ddof=1) / math.sqrt(groups) + np.pi * mass**2 * binning
+             + NUMERICAL * kernel_boxes)
     kernel_background, _ = background_part(plasma, mass, z_boxes, z_max, include_background)
     run = {
         "raytrace": __version__, "method": "one-point PDF of the trilinear interpolant at uniform random points",
