@@ -232,3 +232,17 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
         ok = (index >= 0) & (index < BINS)
         bound[ok] += f_edge * total[index[ok]]
     return out, bound
+
+
+def load_mean_result(path):
+    """A :class:`PdfMean` or a :class:`~raytrace.results.SightlineResult` from its file, by its format attribute."""
+    import h5py
+
+    from .results import SightlineResult
+
+    try:
+        with h5py.File(path, "r") as handle:
+            kind = handle.attrs.get("format")
+    except OSError:
+        kind = None  # SightlineResult.load says what is wrong with the file
+    return PdfMean.load(path) if kind == FORMAT else SightlineResult.load(path)
