@@ -161,6 +161,7 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
     error = (estimates.std(axis=0, ddof=1) / math.sqrt(groups) + np.pi * mass**2 * binning
              + NUMERICAL * kernel_boxes)
     kernel_background, _ = background_part(plasma, mass, z_boxes, z_max, include_background)
+    error += NUMERICAL * kernel_background  # the background's quadrature, as it would differ from the rays' own
     run = {
         "raytrace": __version__, "method": "one-point PDF of the trilinear interpolant at uniform random points",
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),

@@ -99,6 +99,8 @@ def top_share(kernel, fraction=TOP_FRACTION):
     squares = (kernel - kernel.mean(axis=0)) ** 2
     largest = np.sort(kernel, axis=0)[n - top:]
     total = squares.sum(axis=0)
+    # Rows equal but for rounding (the background alone) have no spread to share.
+    total = np.where(np.ptp(kernel, axis=0) > 1e-12 * np.abs(kernel).max(axis=0), total, 0.0)
     carried = ((largest - kernel.mean(axis=0)) ** 2).sum(axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(total > 0, carried / total, np.nan)
