@@ -23,7 +23,9 @@ resonate). Blended snapshots mix linearly in n_e with a weight linear in z; each
 bracketing pair is cut into ``blend_steps`` redshift pieces, each with the blend
 frozen at its midpoint (the midpoint rule in z, second order).
 
-Method and error: the points' ln n_e are binned (2^16 bins spanning the
+Method and error: the points are a stratified uniform sample (on average
+points / N^3 per cell, each group visiting the cells in memory order, which keeps
+a large box's reads in cache); their ln n_e are binned (2^14 bins spanning the
 densities the masses can resonate at; each bin holds its points' count and mean
 ln n_e, so a bin's points sit at their own mean). The points come in ``groups``
 independent groups; the error is the standard error of the group estimates plus
@@ -43,7 +45,7 @@ from .constants import PLASMA_MASS2_PER_DENSITY
 from .errors import InputError
 
 FORMAT = "raytrace-onepoint-1"
-BINS = 1 << 16
+BINS = 1 << 14
 #: Default number of random points per box (or per blended pair), over all groups.
 POINTS = 1 << 24
 #: Relative error bound of the arithmetic (tabulated F, float32 box values): always added.
@@ -145,15 +147,14 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     pieces = serving_pieces(series, z_boxes, blend_steps)
-    per_group = max(1, int(points) // int(groups))
+    per_group = int(points) / int(groups)
     estimates = np.zeros((groups, mass.size))
     binning = np.zeros(mass.size)
     target = np.log(mass**2 / PLASMA_MASS2_PER_DENSITY)
     with numba_threads(n_jobs):
         for key, (z_a, z_b, low, high, weight, share) in enumerate(pieces):
-            n_points = max(1, int(round(per_group * share)))
             piece, bound = _piece_kernel(series, plasma.cosmology, target, z_a, z_b, low, high, weight, seed, key,
-                                         groups, n_points)
+                                         groups, per_group * share)
             estimates += piece
             binning += bound
     estimates *= np.pi * mass**2
@@ -163,9 +164,9 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
     kernel_background, _ = background_part(plasma, mass, z_boxes, z_max, include_background)
     error += NUMERICAL * kernel_background  # the background's quadrature, as it would differ from the rays' own
     run = {
-        "raytrace": __version__, "method": "one-point PDF of the trilinear interpolant at uniform random points",
+        "raytrace": __version__, "method": "one-point PDF of the trilinear interpolant at stratified uniform random points",
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
-        "seed": int(seed), "points": int(per_group * groups), "groups": int(groups), "bins": BINS,
+        "seed": int(seed), "points": int(points), "groups": int(groups), "bins": BINS,
         "blend": series.blend, "blend_steps": int(blend_steps), "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
@@ -200,8 +201,9 @@ def serving_pieces(series, z_boxes, blend_steps):
     return pieces
 
 
-def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, key, groups, n_points):
-    """Per group, sum over points / n_points of F(L_m - ln n) on one piece; and the binning bound (both / pi m^2).
+def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, key, groups, points):
+    """Per group of about ``points`` points, the mean over them of F(L_m - ln n) on one piece, and the
+    binning bound (both / pi m^2).
 
     F(s) = 1 / (3 (1+z) H(z)) with 3 ln(1+z) = s, for s in [3 ln(1+z_a), 3 ln(1+z_b)).
     """
@@ -213,8 +215,11 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
     counts = np.zeros((groups, BINS))
     sums = np.zeros((groups, BINS))
     box_a, box_b = series.boxes[low], series.boxes[high]
+    drawn = np.zeros(groups)
     interpolant_histograms(box_a.data, box_a.comoving_scale, box_b.data, box_b.comoving_scale, float(weight),
-                           int(seed), int(key), int(n_points), ln_low, 1.0 / width, counts, sums)
+                           int(seed), int(key), float(points / box_a.n_cells**3), ln_low, 1.0 / width, counts, sums,
+                           drawn)
+    n_points = drawn[:, None]
     s_table = np.linspace(s_a, s_b, _TABLE)
     one_plus_z = np.exp(s_table / 3.0)
     f_table = 1.0 / (3.0 * one_plus_z * cosmology.hubble_eV(one_plus_z - 1.0))
@@ -226,7 +231,7 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
     values = np.where((s >= s_a) & (s < s_b), np.interp(s, s_table, f_table), 0.0)
     out = counts[:, filled] @ values.T / n_points
     # A bin cut by an edge of the piece may hold points on either side: bound their share.
-    total = pooled / (groups * n_points)
+    total = pooled / drawn.sum()
     bound = np.zeros(target.size)
     for s_edge, f_edge in ((s_a, f_table[0]), (s_b, f_table[-1])):
         index = np.floor((target - s_edge - ln_low) / width).astype(int)
