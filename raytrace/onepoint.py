@@ -25,7 +25,7 @@ frozen at its midpoint (the midpoint rule in z, second order).
 
 Method and error: the points are a stratified uniform sample (on average
 points / N^3 per cell, each group visiting the cells in memory order, which keeps
-a large box's reads in cache); their ln n_e are binned (2^14 bins spanning the
+a large box's reads in cache); their ln n_e are binned (2^16 bins spanning the
 densities the masses can resonate at; each bin holds its points' count and mean
 ln n_e, so a bin's points sit at their own mean). The points come in ``groups``
 independent groups; the error is the standard error of the group estimates plus
@@ -45,7 +45,7 @@ from .constants import PLASMA_MASS2_PER_DENSITY
 from .errors import InputError
 
 FORMAT = "raytrace-onepoint-1"
-BINS = 1 << 14
+BINS = 1 << 16
 #: Default number of random points per box (or per blended pair), over all groups.
 POINTS = 1 << 24
 #: Relative error bound of the arithmetic (tabulated F, float32 box values): always added.
