@@ -21,7 +21,12 @@ point's density. So <K> is the volume average of that, over uniform random point
 of the periodic trilinear interpolant (no density floor: empty regions never
 resonate). Blended snapshots mix linearly in n_e with a weight linear in z; each
 bracketing pair is cut into ``blend_steps`` redshift pieces, each with the blend
-frozen at its midpoint (the midpoint rule in z, second order).
+frozen at its midpoint (the midpoint rule in z). That is accurate where the PDF is
+broad next to the change of the blend across a piece (on a smooth log-normal pair
+z = 0 and 1, 4, 16 and 64 pieces agree to 1 %), but a nearly uniform blended pair
+loses the blend's own rate d ln n_e,com/dz at each root (a uniform pair whose
+density rises by half between z = 0 and 1 comes out up to 20 % off per mass), and
+that error is not in the estimate below.
 
 Method and error: the points are a stratified uniform sample (on average
 points / N^3 per cell, each group visiting the cells in memory order, which keeps
