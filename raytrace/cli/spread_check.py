@@ -2,7 +2,7 @@
 
 NAME = "spread-check"
 HELP = ("Bootstrap intervals of std/mean (and, for a sky, of the dT/T rms and the anisotropy limit), the share "
-        "of the variance in the top 1 % of rays or pixels, the Hill tail index and robust spreads, per mass.")
+        "of the variance in the top 1 percent of rays or pixels, the Hill tail index and robust spreads, per mass.")
 
 
 def add_arguments(parser):
