@@ -28,7 +28,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .boxes import Box, BoxSeries, _scan, as_series
+from .boxes import Box, BoxSeries, as_series
+from .boxes.box import _scan
 from .errors import InputError
 
 FACTORS = (1, 2, 4)
