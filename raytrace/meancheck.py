@@ -5,7 +5,8 @@ result carries ``pdf_check`` (a :class:`~raytrace.onepoint.PdfMean` over the sam
 redshifts, stored in its HDF5 file), :func:`mean_check` compares the two per mass
 (ratio, Monte Carlo standard error, their difference in standard errors), and
 a :class:`MeanCheckWarning` names the masses where they differ by more than
-3 standard errors: a sign of too few rays, or of a defect.
+3 standard errors (for a sky, the Student-t equivalent for its 11 degrees of
+freedom, about 4): a sign of too few rays, or of a defect.
 
 The Monte Carlo standard error of a sightline run is std/sqrt(n_rays) (the rays
 are independent). The pixels of one sky are not: they share the structures of
@@ -38,6 +39,17 @@ class MeanCheck:
     pdf_mean: np.ndarray
     pdf_error: np.ndarray
     error_kind: str
+    #: Degrees of freedom of the MC error (None: many, normal); 11 for a sky's 12 faces.
+    dof: int = None
+
+    def limit(self, threshold=THRESHOLD):
+        """The |pull| beyond which a mass is flagged: ``threshold`` for a normal error; for an error from
+        few batches, the Student-t value with the same two-sided tail probability (scipy.stats)."""
+        if self.dof is None:
+            return float(threshold)
+        from scipy import stats
+
+        return float(stats.t.isf(stats.norm.sf(threshold), self.dof))
 
     def ratio(self):
         """Monte Carlo mean / PDF mean (nan where the PDF mean is 0)."""
@@ -59,7 +71,7 @@ class MeanCheck:
 
     def discrepant(self, threshold=THRESHOLD):
         """Indices of the masses where |pull| > threshold."""
-        return np.flatnonzero(np.abs(self.pull()) > threshold)
+        return np.flatnonzero(np.abs(self.pull()) > self.limit(threshold))
 
     def message(self, threshold=THRESHOLD):
         """One line naming the discrepant masses, or None when there are none."""
@@ -68,9 +80,12 @@ class MeanCheck:
             return None
         shown = ", ".join(f"{self.mass_eV[k]:.3g} eV ({self.pull()[k]:+.1f})" for k in bad[:8])
         more = f" and {bad.size - 8} more" if bad.size > 8 else ""
-        return (f"the Monte Carlo mean differs from the one-point-PDF mean by more than {threshold:g} standard "
-                f"errors at {bad.size} of {self.mass_eV.size} masses: {shown}{more} (in standard errors); "
-                "too few rays, or a defect")
+        limit = self.limit(threshold)
+        cause = ("too few rays, or a defect" if self.dof is None else
+                 "a sky is one observer's light cone, a finite and correlated sample whose mean can differ from "
+                 "the volume's by more than its 12-face error shows; or a defect")
+        return (f"the Monte Carlo mean differs from the one-point-PDF mean by more than {limit:.3g} standard "
+                f"errors at {bad.size} of {self.mass_eV.size} masses: {shown}{more} (in standard errors); {cause}")
 
     def table(self, rows=None):
         """Text lines: mass, PDF mean, MC/PDF ratio, MC standard error / PDF, pull."""
@@ -142,7 +157,7 @@ def mean_check(result):
         return None
     error, kind = monte_carlo_error(result)
     return MeanCheck(result.mass_eV, result.mean() if hasattr(result, "mean") else result.kernel.mean(axis=0),
-                     error, pdf.kernel, pdf.error, kind)
+                     error, pdf.kernel, pdf.error, kind, 11 if hasattr(result, "nside") else None)
 
 
 def write_pdf_check(handle, pdf):

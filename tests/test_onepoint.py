@@ -12,7 +12,7 @@ import warnings
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
-from scipy import integrate, special
+from scipy import integrate, optimize, special
 
 import raytrace
 from raytrace.background import MeanPlasma
@@ -154,3 +154,19 @@ def test_bad_input_is_refused(plasma, demo_dir):
         pdf_mean(series, [1e-14], 1.0, include_background=False, plasma=plasma, groups=1)
     with pytest.raises(InputError, match="^mass_eV"):
         pdf_mean(series, [2e-14, 1e-14], 1.0, include_background=False, plasma=plasma)
+
+
+def test_a_sky_check_uses_the_student_t_limit_of_its_12_faces():
+    # The normal tail beyond 3 sigma (0.00135 a side, erfc(3/sqrt 2)/2) is the Student-t tail beyond t_11,
+    # found here from the t density written out (Student 1908) by quadrature and a root (about 3.85).
+    nu = 11
+    norm_c = math.gamma((nu + 1) / 2) / (math.sqrt(nu * math.pi) * math.gamma(nu / 2))
+    tail = 0.5 * math.erfc(3 / math.sqrt(2))
+    t_limit = optimize.brentq(lambda t: integrate.quad(lambda x: norm_c * (1 + x * x / nu) ** (-(nu + 1) / 2),
+                                                       t, np.inf)[0] - tail, 2.0, 8.0)
+    mass = np.array([1e-14, 2e-14])
+    sky = MeanCheck(mass, np.array([1.0, 1.0]), np.array([0.1, 0.1]), np.array([1.35, 1.45]), np.zeros(2),
+                    "batch means over the 12 base HEALPix pixels", dof=11)
+    assert sky.limit() == pytest.approx(t_limit, rel=1e-6)
+    assert list(sky.discrepant()) == [1]  # pulls -3.5 (within 3.85) and -4.5
+    assert "light cone" in sky.message()
