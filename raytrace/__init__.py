@@ -50,6 +50,10 @@ _PUBLIC = {
     "cast_sky": "sky",
     "SkyResult": "sky",
     "spectral_limit": "limits",
+    "pdf_mean": "onepoint",
+    "PdfMean": "onepoint",
+    "degrade": "resolution",
+    "resolution_convergence": "resolution",
     "read_spectrum": "spectrum",
 }
 

@@ -26,6 +26,7 @@ from .errors import InputError, ProbedRangeWarning, require_positive_finite
 from .kernels.sightlines import trace_pieces
 from .rays import draw_rays, plan_rays
 from .units import CMB_TEMPERATURE_K
+from .meancheck import attach_pdf_check
 from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 
 #: The default observed photon energy of near-tangent (Airy) events: k T_0, the
@@ -350,4 +351,5 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                              arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
                              tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    attach_pdf_check(result, series, plasma, n_jobs)  # the built-in check (raytrace.meancheck)
     return backend.finish(result)

@@ -248,7 +248,8 @@ def sightline_limits(mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, sprea
 
 
 def result_kernels(result, plasma=None):
-    """The kernels :func:`sightline_limits` takes, from a :class:`~raytrace.results.SightlineResult`.
+    """The kernels :func:`sightline_limits` takes, from a :class:`~raytrace.results.SightlineResult`
+    or a :class:`~raytrace.onepoint.PdfMean` (its mean only).
 
     Mean and 16 % / 84 % quantiles of K over the rays, and the homogeneous
     universe's K over the same z = 0 to z_max as the rays (``plasma``: a
@@ -268,7 +269,8 @@ def result_kernels(result, plasma=None):
     return {
         "mass_eV": result.mass_eV,
         "mean_kernel_eV": result.mean(),
-        "spread_kernels_eV": tuple(result.percentiles((16.0, 84.0))),
+        # A one-point-PDF mean (raytrace.pdf_mean) has no spread between sightlines.
+        "spread_kernels_eV": tuple(result.percentiles((16.0, 84.0))) if hasattr(result, "percentiles") else None,
         "background_kernel_eV": plasma.kernel(result.mass_eV, 0.0, float(result.run["z_max"])),
     }
 

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import require_positive_finite
+from .errors import RaytraceWarning, require_positive_finite
 from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
                      same_mass_grid, sightline_limits)
 from .plots import _pyplot, kernel_bands
@@ -23,6 +23,7 @@ from .provenance import atomic_output, check_writable
 from .results import SightlineResult
 from .sky import SkyResult
 from .spectrum import Spectrum, read_spectrum
+from .trust import trust_lines
 from .units import CMB_PHOTON_ENERGY_EV
 
 DPI = 150
@@ -67,7 +68,7 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     limits, notes = _limits(result, sky, spectrum, confidence, fit_galaxy, omega0, threshold, cl_limits, plasma)
     picked = histogram_masses(result)
     sky_index = None if sky is None else _sky_mass_index(sky)
-    text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0)
+    text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, threshold)
     plt = _pyplot()
     figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
     try:
@@ -104,8 +105,10 @@ def _share(result):
     return f"{100 * result.kernel_tangent.sum() / total:.2g} %" if total > 0 else "none"
 
 
-def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=None, omega0_eV=CMB_PHOTON_ENERGY_EV):
-    """The report's text: run parameters, boxes versus background, probed masses, limits at a few masses."""
+def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=None, omega0_eV=CMB_PHOTON_ENERGY_EV,
+            threshold=None):
+    """The report's text: run parameters, boxes versus background, probed masses, limits at a few masses,
+    the built-in mean check and how well the spread is determined (:mod:`raytrace.trust`)."""
     run = result.run
     z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
     with_background = bool(run.get("include_background")) and z_max > z_boxes
@@ -179,6 +182,10 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
     lines.append("  none: K = 0, not constrained"
                  + (f"; <P>: mean over rays at epsilon = {epsilon:g}, omega_0 = {omega0_eV:.4g} eV" if epsilon is not None
                     else ""))
+    trust, warned = trust_lines(result, rows.astype(int), sky, sky_index, omega0_eV, threshold)
+    lines += trust
+    for message in warned:
+        warnings.warn(message, RaytraceWarning, stacklevel=3)
     lines += [f"note: {note}" for note in notes]
     # Lines this long still fit the page's width in its monospaced font.
     return "".join((line if len(line) <= _TEXT_COLUMNS else textwrap.fill(line, _TEXT_COLUMNS, subsequent_indent="      "))

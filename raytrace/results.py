@@ -41,6 +41,15 @@ class KernelRows:
     """What sightline and sky results share: per-row (ray or pixel) kernels from the boxes
     plus the homogeneous background beyond them, and the same for the dispersion measure."""
 
+    #: The one-point-PDF mean over the same redshifts (:mod:`raytrace.meancheck`), when computed.
+    pdf_check = None
+
+    def mean_check(self):
+        """The Monte Carlo mean against :attr:`pdf_check` per mass (a MeanCheck), or None without one."""
+        from .meancheck import mean_check
+
+        return mean_check(self)
+
     @property
     def kernel(self):
         """K in eV per row and mass, boxes plus background; P = epsilon^2 K / omega_0."""
@@ -153,8 +162,10 @@ class SightlineResult(KernelRows):
     @classmethod
     def load(cls, path):
         """Read a result written by :meth:`save`."""
+        from .meancheck import read_pdf_check
+
         with open_result(path, FORMAT, "sightline") as handle:
-            return cls(
+            result = cls(
                 handle["mass_eV"][...],
                 handle["kernel_boxes"][...],
                 handle["kernel_background"][...],
@@ -166,6 +177,8 @@ class SightlineResult(KernelRows):
                 tangent_events=handle["tangent_events"][...],
                 kernel_tangent=handle["kernel_tangent"][...],
             )
+            result.pdf_check = read_pdf_check(handle, result.mass_eV)
+        return result
 
 
 def tangent_arrays(kernel_boxes, tangent_events, kernel_tangent):
@@ -190,6 +203,10 @@ def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attr
                 handle.create_dataset(name, data=getattr(source, name), compression="gzip", shuffle=True)
             handle["kernel_background"] = source.kernel_background
             handle.attrs.update(attributes)
+            if source.pdf_check is not None:
+                from .meancheck import write_pdf_check
+
+                write_pdf_check(handle, source.pdf_check)
             handle.attrs["complete"] = True
             _check_finite(handle, path)
     return Path(path)
@@ -231,7 +248,7 @@ def _write_header(handle, format_name, mass_eV, run):
 
 def _check_finite(handle, path):
     for name, item in handle.items():
-        if item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
+        if isinstance(item, h5py.Dataset) and item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
             raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
     # Numbers stored as attributes (the background's dispersion measure) are results too.
     for name, value in handle.attrs.items():

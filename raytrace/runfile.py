@@ -323,3 +323,42 @@ def require(values, key, options):
         option = {o.key: o for o in options}[key]
         raise InputError(f"{option.flag} (TOML {key}) is required: {option.help}")
     return values[key]
+
+
+_ONEPOINT_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.seed", "rays.jobs")
+_PDF_SAMPLING = (
+    Option("onepoint.points", int, 1 << 24, "random points of the interpolated field per box (per blended pair)",
+           at_least=2),
+    Option("onepoint.groups", int, 16, "independent groups the points are split into, for the error estimate",
+           at_least=2),
+    Option("onepoint.blend_steps", int, 16, "redshift pieces per blended pair of snapshots (midpoint rule)",
+           at_least=1),
+)
+
+ONEPOINT_OPTIONS = (
+    BOX_OPTIONS + MASS_OPTIONS
+    + tuple(option for option in TRACE_OPTIONS if option.key in _ONEPOINT_TRACE_KEYS)
+    + _PDF_SAMPLING
+    + (
+        Option("output.path", str, None, "result file (HDF5): <K>(m), its error and provenance", flag_name="output",
+               path=True),
+        Option("output.plot", str, None, "figure of <K>(m) (PNG or PDF)", path=True),
+        Option("output.overwrite", bool, False, "replace existing outputs"),
+    )
+)
+
+RESOLUTION_OPTIONS = (
+    BOX_OPTIONS + MASS_OPTIONS
+    + tuple(option for option in TRACE_OPTIONS if option.key in _ONEPOINT_TRACE_KEYS)
+    + _PDF_SAMPLING
+    + (
+        Option("resolution.coarsest", int, 4, "largest degrade factor; the levels are 1, 2, 4 ... up to it",
+               at_least=2),
+        Option("resolution.order", float, 2.0, "assumed order p of convergence (error ~ cell size^p) for the "
+               "Richardson extrapolation", above=0.0),
+        Option("resolution.rays", int, 0, "also cast this many sightlines at each level for the std/mean "
+               "(0: the mean only)", at_least=0),
+        Option("output.report", str, None, "write STEM.png, STEM.pdf (figure) and STEM.txt (table)", path=True),
+        Option("output.overwrite", bool, False, "replace existing outputs"),
+    )
+)

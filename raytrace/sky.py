@@ -31,6 +31,7 @@ from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_par
                      warn_outside_probed_range)
 from .errors import InputError
 from .kernels.lattice import trace_lattice
+from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
 from .results import KernelRows, MemoryBackend, open_result, save_arrays, tangent_arrays
 from .units import CMB_TEMPERATURE_K
@@ -165,6 +166,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run,
                        tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    attach_pdf_check(result, series, plasma, n_jobs)  # the built-in check (raytrace.meancheck)
     return backend.finish(result)
 
 
@@ -243,13 +245,17 @@ class SkyResult(KernelRows):
 
     @classmethod
     def load(cls, path):
+        from .meancheck import read_pdf_check
+
         with open_result(path, FORMAT, "sky") as handle:
             import json
 
-            return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                       handle["crossings"][...], handle["dispersion_measure_boxes"][...],
-                       handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
-                       tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
+            result = cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
+                         handle["crossings"][...], handle["dispersion_measure_boxes"][...],
+                         handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
+                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
+            result.pdf_check = read_pdf_check(handle, result.mass_eV)
+        return result
 
     def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False):
         """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.

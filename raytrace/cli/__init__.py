@@ -15,7 +15,8 @@ from .. import __version__
 from ..errors import InputError
 
 # Subcommand modules, in the order of the data flow.
-_SUBCOMMANDS = ("background", "inspect", "grid", "sightlines", "sky", "limits", "report")
+_SUBCOMMANDS = ("background", "inspect", "grid", "onepoint_mean", "sightlines", "sky", "spread_check",
+                "resolution_check", "limits", "report")
 
 
 def build_parser():

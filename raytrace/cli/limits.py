@@ -27,7 +27,8 @@ def add_arguments(parser):
     masses.add_argument(
         "--result", default=None, metavar="RESULT.h5",
         help="sightline result (raytrace sightlines): limits from its mean kernel and 16-84 %% sightline band, "
-        "beside the homogeneous universe to the same z_max; its masses are the grid",
+        "beside the homogeneous universe to the same z_max; or a one-point-PDF mean (raytrace onepoint-mean): "
+        "its mean alone; its masses are the grid",
     )
     masses.add_argument("--mass", nargs="+", type=float, metavar="EV", help="dark-photon masses in eV")
     masses.add_argument(
@@ -161,7 +162,7 @@ def run(args):
     from ..background import MeanPlasma
     from ..errors import InputError, require_positive_finite
     from ..limits import result_kernels, same_mass_grid
-    from ..results import SightlineResult
+    from ..onepoint import load_mean_result
     from ..sky import SkyResult
 
     check_confidence(args)
@@ -172,7 +173,7 @@ def run(args):
     sky = SkyResult.load(args.sky) if args.sky else None
     plasma = MeanPlasma(None, ionisation_from_args(args))
     if args.result is not None:
-        kernels = result_kernels(SightlineResult.load(args.result), plasma)
+        kernels = result_kernels(load_mean_result(args.result), plasma)
         grid = f"--result {args.result}"
     else:
         if args.mass is None and args.mass_range is None:

@@ -95,22 +95,51 @@ def run(args):
 
 
 def print_summary(result, epsilon, omega0):
+    from ..spread import robust_spread, top_share
+
     mean, error = result.mean(), result.standard_error()
     q16, q84 = result.percentiles((16.0, 84.0))
+    check = result.mean_check()
+    ratio = check.ratio() if check is not None else np.full(mean.size, np.nan)
+    relative_sem = check.relative_error() if check is not None else np.full(mean.size, np.nan)
+    half_width, mad = robust_spread(result.kernel) if result.n_rays > 1 else (np.zeros(mean.size),) * 2
+    top = top_share(result.kernel) if result.n_rays > 1 else np.full(mean.size, np.nan)
     fraction = result.boxes_fraction()
     print(f"# {result.n_rays} sightlines to z = {result.run['z_max']:g} (boxes to z = {result.run['z_boxes']:g}), "
           f"seed {result.run['seed']}; mean DM = {result.dispersion_measure.mean():.1f} pc cm^-3")
     print(f"# near-tangent (Airy) events at {result.run['photon_energy_eV']:.4g} eV: "
           f"{result.tangent_events.sum(axis=1).mean():.2f} per ray, "
           f"{100 * result.kernel_tangent.sum() / max(result.kernel_boxes.sum(), 1e-300):.2g} % of the boxes' kernel")
-    header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'sem_K_eV':>10} {'K_16%':>10} {'K_84%':>10} {'boxes':>6}"
+    header = (f"# {'mass_eV':>11} {'mean_K_eV':>11} {'sem_K_eV':>10} {'K_16%':>10} {'K_84%':>10} {'boxes':>6} "
+              f"{'MC/PDF':>7} {'sem/PDF':>7} {'hw16-84':>9} {'MAD':>9} {'top1%':>6}")
     if epsilon is not None:
         header += f" {'P_mean':>10}"
     print(header)
     step = max(1, result.mass_eV.size // 16)
     for k in range(0, result.mass_eV.size, step):
         line = (f"  {result.mass_eV[k]:11.4e} {mean[k]:11.4e} {error[k]:10.3e} {q16[k]:10.3e} {q84[k]:10.3e} "
-                f"{fraction[k]:6.2f}")
+                f"{fraction[k]:6.2f} {ratio[k]:7.4f} {relative_sem[k]:7.4f} {half_width[k]:9.3e} {mad[k]:9.3e} "
+                f"{100 * top[k]:5.1f}%")
         if epsilon is not None:
             line += f" {epsilon**2 * mean[k] / omega0:10.3e}"
         print(line)
+    print("# MC/PDF: the mean over rays / the one-point-PDF mean of the same boxes (the built-in check), "
+          "sem/PDF its standard error; hw16-84: half the 16-84 % range; top1%: the variance share of the top 1 % of rays")
+    _warn_spread(result)
+
+
+def _warn_spread(result):
+    """Warn, naming the masses, where the top 1 % of rows carry more than half the variance."""
+    import warnings
+
+    from ..spread import TOP_SHARE_WARNING, top_share
+
+    if result.kernel.shape[0] < 2:
+        return
+    share = np.nan_to_num(top_share(result.kernel))
+    bad = np.flatnonzero(share > TOP_SHARE_WARNING)
+    if bad.size:
+        shown = ", ".join(f"{result.mass_eV[k]:.3g} eV ({100 * share[k]:.0f} %)" for k in bad[:6])
+        warnings.warn(f"the top 1 % of rows carry more than half the variance at {bad.size} of {share.size} masses: "
+                      f"{shown}{' ...' if bad.size > 6 else ''}; the variance there rests on a few rows "
+                      "(raytrace spread-check gives its interval)")

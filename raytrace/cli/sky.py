@@ -3,7 +3,7 @@
 import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import cluster_executor, load_boxes, masses, observed_energy
+from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, observed_energy
 
 NAME = "sky"
 HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
@@ -65,19 +65,32 @@ def most_varied_mass(sky):
 
 
 def print_summary(sky, limit, threshold, omega0):
+    from ..spread import robust_spread, sky_rms_interval
+
     mean = sky.kernel.mean(axis=0)
     rms = sky.kernel.std(axis=0)
+    half_width, mad = robust_spread(sky.kernel)
+    check = sky.mean_check()
+    ratio = check.ratio() if check is not None else np.full(mean.size, np.nan)
+    relative_sem = check.relative_error() if check is not None else np.full(mean.size, np.nan)
+    interval = sky_rms_interval(sky, omega0, n_resamples=200, seed=sky.run["seed"], threshold=threshold)
     print(f"# sky of nside {sky.nside} ({sky.npix} pixels, {sky.run['rays_per_pixel']} rays each), z = 0 to "
           f"{sky.run['z_max']:g}, boxes to z = {sky.run['z_boxes']:g}, seed {sky.run['seed']}")
     print(f"# anisotropy test: rms of dT/T below {threshold:g} at omega_0 = {omega0:.4g} eV")
-    header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'rms/mean':>9} {'eps_max_rms':>12}"
+    header = (f"# {'mass_eV':>11} {'mean_K_eV':>11} {'rms/mean':>9} {'hw16-84':>9} {'MAD':>9} {'MC/PDF':>7} "
+              f"{'sem/PDF':>7} {'eps_max_rms':>12} {'68% interval':>21}")
     if "epsilon_max_cl" in limit:
         header += f" {'eps_max_Cl':>11}"
     print(header)
     step = max(1, sky.mass_eV.size // 16)
     for k in range(0, sky.mass_eV.size, step):
         relative = rms[k] / mean[k] if mean[k] > 0 else 0.0
-        line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {limit['epsilon_max_rms'][k]:12.3e}"
+        line = (f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {half_width[k]:9.3e} {mad[k]:9.3e} "
+                f"{ratio[k]:7.4f} {relative_sem[k]:7.4f} {limit['epsilon_max_rms'][k]:12.3e} "
+                f"{interval['epsilon_low'][k]:10.3e}-{interval['epsilon_high'][k]:<10.3e}")
         if "epsilon_max_cl" in limit:
             line += f" {limit['epsilon_max_cl'][k]:11.3e}"
         print(line)
+    print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
+          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
+    _warn_spread(sky)

@@ -1,0 +1,58 @@
+"""``raytrace onepoint-mean``: <K>(m) straight from the boxes' one-point PDF, no rays (a fast mode)."""
+
+from ..runfile import ONEPOINT_OPTIONS, add_flags, settings
+
+NAME = "onepoint-mean"
+HELP = ("The mean conversion kernel <K>(m) from the one-point density PDF of the boxes' interpolated field "
+        "(no rays: seconds), with its error; the file feeds 'raytrace limits --result' like a sightline result.")
+
+
+def add_arguments(parser):
+    add_flags(parser, ONEPOINT_OPTIONS)
+
+
+def run(args):
+    from ..onepoint import pdf_mean
+    from ..provenance import check_writable
+    from .sightlines import load_boxes, masses
+
+    values = settings(args, ONEPOINT_OPTIONS)
+    overwrite = values["output.overwrite"]
+    output, plot = values["output.path"], values["output.plot"]
+    for path in (output, plot):
+        if path:
+            check_writable(path, overwrite)
+    if plot:
+        from ..plots import check_figure_path
+
+        check_figure_path(plot, "--plot (TOML output.plot)")
+    series = load_boxes(values)
+    result = pdf_mean(series, masses(values), values["rays.z_max"],
+                      include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+                      points=values["onepoint.points"], groups=values["onepoint.groups"],
+                      blend_steps=values["onepoint.blend_steps"], seed=values["rays.seed"],
+                      n_jobs=values["rays.jobs"])
+    run = result.run
+    print(f"# one-point-PDF mean: z = 0 to {run['z_max']:g} (boxes to {run['z_boxes']:g}), {run['points']} points "
+          f"per box in {run['groups']} groups, seed {run['seed']}")
+    print(f"# {'mass_eV':>11} {'mean_K_eV':>11} {'error_eV':>10} {'boxes':>6}")
+    for k in range(result.mass_eV.size):
+        share = result.kernel_boxes[k] / result.kernel[k] if result.kernel[k] > 0 else float("nan")
+        print(f"  {result.mass_eV[k]:11.4e} {result.kernel[k]:11.4e} {result.error[k]:10.3e} {share:6.2f}")
+    if output:
+        result.save(output, overwrite=overwrite)
+        print(f"result: {output}")
+    if plot:
+        from ..plots import _pyplot, save_figure
+
+        plt = _pyplot()
+        figure, ax = plt.subplots(figsize=(6.4, 4.4))
+        ax.loglog(result.mass_eV, result.kernel, label="boxes + background")
+        ax.loglog(result.mass_eV, result.kernel_boxes, ls=":", label="boxes")
+        ax.set_xlabel("dark-photon mass m [eV]")
+        ax.set_ylabel("<K> from the one-point PDF [eV]")
+        ax.legend()
+        save_figure(figure, plot, overwrite=overwrite)
+        plt.close(figure)
+        print(f"plot: {plot}")
+    return 0

@@ -1,0 +1,40 @@
+"""``raytrace resolution-check``: how <K>(m) changes as the boxes are degraded, and its extrapolation."""
+
+from ..runfile import RESOLUTION_OPTIONS, add_flags, require, settings
+
+NAME = "resolution-check"
+HELP = ("Degrade every box by 2, 4 ... (electrons conserved), compute the one-point-PDF mean at each "
+        "resolution, and report the change per mass and a Richardson extrapolation (figure and table).")
+
+
+def add_arguments(parser):
+    add_flags(parser, RESOLUTION_OPTIONS)
+
+
+def run(args):
+    from ..errors import InputError
+    from ..provenance import check_writable
+    from ..resolution import resolution_convergence, write_convergence_page
+    from .sightlines import load_boxes, masses
+
+    values = settings(args, RESOLUTION_OPTIONS)
+    stem = require(values, "output.report", RESOLUTION_OPTIONS)
+    for kind in ("png", "pdf", "txt"):
+        check_writable(f"{stem}.{kind}", values["output.overwrite"])
+    coarsest = values["resolution.coarsest"]
+    if coarsest & (coarsest - 1):
+        raise InputError(f"--coarsest (TOML resolution.coarsest): expected a power of 2 (2, 4, 8 ...), got {coarsest}")
+    factors = tuple(2**k for k in range(coarsest.bit_length()))
+    series = load_boxes(values)
+    convergence = resolution_convergence(
+        series, masses(values), values["rays.z_max"], factors=factors, order=values["resolution.order"],
+        n_rays=values["resolution.rays"], seed=values["rays.seed"], n_jobs=values["rays.jobs"],
+        include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+        points=values["onepoint.points"], groups=values["onepoint.groups"],
+        blend_steps=values["onepoint.blend_steps"],
+    )
+    for line in convergence.lines(range(convergence.mass_eV.size)):
+        print(line)
+    for kind, path in write_convergence_page(convergence, stem, overwrite=values["output.overwrite"]).items():
+        print(f"{kind}: {path}")
+    return 0

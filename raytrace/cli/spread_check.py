@@ -1,0 +1,77 @@
+"""``raytrace spread-check``: how well a result's spread between rays (or pixels) is determined."""
+
+NAME = "spread-check"
+HELP = ("Bootstrap intervals of std/mean (and, for a sky, of the dT/T rms and the anisotropy limit), the share "
+        "of the variance in the top 1 percent of rays or pixels, the Hill tail index and robust spreads, per mass.")
+
+
+def add_arguments(parser):
+    parser.add_argument("result", metavar="RESULT.h5", help="sightline or sky result file")
+    parser.add_argument("--resamples", type=int, default=1000, help="bootstrap resamples (default 1000)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap resamples (default 0)")
+    parser.add_argument("--level", type=float, default=0.68, help="level of the intervals (default 0.68)")
+    parser.add_argument("--frequency", default=None,
+                        help="observed photon frequency with a unit for a sky's dT/T (default k T_0)")
+    parser.add_argument("--isotropy-threshold", type=float, default=None, metavar="DT_T",
+                        help="the dT/T rms a sky map must stay below (default 1e-5)")
+
+
+def run(args):
+    import warnings
+
+    from ..errors import InputError
+    from ..spread import sky_rms_interval, spread
+    from .limits import photon_energy_from_args
+
+    result = load_rows(args.result)
+    is_sky = hasattr(result, "nside")
+    if not is_sky and (args.frequency is not None or args.isotropy_threshold is not None):
+        raise InputError("--frequency, --isotropy-threshold: only meaningful for a sky result")
+    with _flag_names():
+        found = spread(result.kernel, result.mass_eV, args.resamples, args.seed, args.level)
+    rows = range(result.mass_eV.size)
+    print(f"# {args.result}: {result.kernel.shape[0]} {'pixels' if is_sky else 'rays'}")
+    for line in found.table(rows):
+        print(line)
+    message = found.warning()
+    if message:
+        warnings.warn(message)
+    if is_sky:
+        with _flag_names():
+            sky = sky_rms_interval(result, photon_energy_from_args(args), args.resamples, args.seed, args.level,
+                                   args.isotropy_threshold)
+        print(f"# sky: rms of dT/T at epsilon = 1 and the rms anisotropy limit (threshold {sky['threshold']:g}), "
+              f"{100 * args.level:.0f} % bootstrap intervals over pixels (correlated: a lower bound on the width)")
+        print(f"  {'m [eV]':>11} {'rms dT/T':>10} {'interval':>21} {'eps_max':>10} {'interval':>21}")
+        for k in rows:
+            print(f"  {result.mass_eV[k]:11.4g} {sky['rms'][k]:10.3g} {sky['rms_low'][k]:10.3g}-{sky['rms_high'][k]:<10.3g} "
+                  f"{sky['epsilon_max'][k]:10.3g} {sky['epsilon_low'][k]:10.3g}-{sky['epsilon_high'][k]:<10.3g}")
+    return 0
+
+
+def load_rows(path):
+    """A sightline or sky result from its file, by the file's format attribute."""
+    from ..results import FORMAT, SightlineResult, open_result
+    from ..sky import FORMAT as SKY_FORMAT
+    from ..sky import SkyResult
+
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as handle:
+            kind = handle.attrs.get("format")
+    except OSError:
+        kind = None  # open_result below says what is wrong with the file
+    if kind == SKY_FORMAT:
+        return SkyResult.load(path)
+    if kind == FORMAT:
+        return SightlineResult.load(path)
+    with open_result(path, FORMAT, "sightline or sky"):
+        pass  # raises the clear error (missing, unreadable, another format)
+
+
+def _flag_names():
+    from .background import flags_named
+
+    return flags_named({"n_resamples": "--resamples", "level": "--level", "seed": "--seed",
+                        "threshold": "--isotropy-threshold"})
