@@ -12,6 +12,7 @@ bit-identical for any ``n_jobs`` and ``batch_size``.
 """
 
 import math
+import sys
 import warnings
 from contextlib import contextmanager
 
@@ -24,6 +25,7 @@ from .boxes import as_series
 from .constants import C_MPC_S, HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, ProbedRangeWarning, require_positive_finite
 from .kernels.sightlines import trace_pieces
+from .progress import compile_notice, step_rows
 from .rays import draw_rays, plan_rays
 from .units import CMB_TEMPERATURE_K
 from .meancheck import attach_pdf_check
@@ -272,9 +274,19 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
               desc=description, disable=not progress) as bar:
         if executor is None:
             with numba_threads(n_jobs):
-                for b, start, stop in todo:
-                    backend.write_batch(b, start, tracer.trace(range(start, stop)))
-                    bar.update(stop - start)
+                # Without a bar, one call per batch; with one, steps small enough for it to move.
+                step = step_rows(batch_size, numba.get_num_threads()) if progress else batch_size
+                for number, (b, start, stop) in enumerate(todo):
+                    # Small steps move the bar per group of rays; each row is traced on its own,
+                    # so the arrays are the same bits as one call for the batch.
+                    parts = []
+                    for first in range(start, stop, step):
+                        with compile_notice(progress and number == 0 and first == start,
+                                            lambda text: bar.write(text, file=sys.stderr)):
+                            parts.append(tracer.trace(range(first, min(first + step, stop))))
+                        bar.update(min(first + step, stop) - first)
+                    backend.write_batch(b, start, {name: np.concatenate([part[name] for part in parts])
+                                                   for name in parts[0]})
         else:
             finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):

@@ -546,10 +546,12 @@ def _draw(ax, limits, title):
         upper = np.where(np.isfinite(band.upper.epsilon_max), band.upper.epsilon_max, 10 * top)
         nowhere = ~np.isfinite(band.lower.epsilon_max) & ~np.isfinite(band.upper.epsilon_max)
         lower, upper = np.where(nowhere, np.nan, lower), np.where(nowhere, np.nan, upper)
-        ax.fill_between(band.lower.mass_eV, lower, upper, alpha=0.3, linewidth=0, label=band.label)
+        # The legend lists only what the plot shows.
+        ax.fill_between(band.lower.mass_eV, lower, upper, alpha=0.3, linewidth=0,
+                        label=band.label if not nowhere.all() else "_nolegend_")
     for curve in limits.curves:
         values = np.where(np.isfinite(curve.epsilon_max), curve.epsilon_max, np.nan)
-        ax.plot(curve.mass_eV, values, label=curve.label)
+        ax.plot(curve.mass_eV, values, label=curve.label if np.isfinite(values).any() else "_nolegend_")
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_ylim(finite.min() / 3.0, top)

@@ -1,8 +1,10 @@
 """Figures people would rather look at than read.
 
-In: a SightlineResult (and optionally epsilon and omega_0). Out: matplotlib
-figures: the mean kernel (or P) versus mass with the 68 % and 95 % sightline
-bands, and the homogeneous-background part for comparison.
+In: a SightlineResult (and optionally epsilon and omega_0), or a SkyResult. Out:
+matplotlib figures: the mean kernel (or P) versus mass with the 68 % and 95 %
+sightline bands, and the homogeneous-background part for comparison; and the
+one rule (:func:`shown_mass_index`) that picks the mass a sky figure, the first
+FITS map and the report show.
 """
 
 import numpy as np
@@ -35,10 +37,7 @@ def kernel_bands(result, ax=None, epsilon=None, omega0_eV=None):
         ax.plot(m, to_plotted(result.kernel_background), color="k", lw=1, ls="--",
                 label=f"homogeneous part, z > {result.run.get('z_boxes', 0):g}")
     ax.set_xscale("log")
-    positive = mean[mean > 0]
-    if positive.size:
-        ax.set_yscale("log")
-        ax.set_ylim(positive.min() / 30, None)
+    fit_log_limits(ax, mean, q[0], q[4], to_plotted(result.kernel_background))
     ax.set_xlabel("dark-photon mass m [eV]")
     if epsilon is None:
         ax.set_ylabel(r"conversion kernel $K$ [eV]  ($P = \epsilon^2 K/\omega_0$)")
@@ -47,6 +46,34 @@ def kernel_bands(result, ax=None, epsilon=None, omega0_eV=None):
     ax.set_title(f"z = 0 to {result.run.get('z_max'):g}, boxes to z = {result.run.get('z_boxes'):g}", fontsize=10)
     ax.legend(fontsize=8, loc="best")
     return ax
+
+
+def fit_log_limits(ax, *curves, margin=1.5):
+    """A log y axis spanning the positive values of ``curves`` (a factor ``margin`` beyond each end), or linear."""
+    values = np.concatenate([np.ravel(curve) for curve in curves])
+    positive = values[np.isfinite(values) & (values > 0)]
+    if positive.size:
+        ax.set_yscale("log")
+        low, high = positive.min(), positive.max()
+        ax.set_ylim(low / margin, high * margin if high > low else low * margin**2)
+
+
+def shown_mass_index(sky, mass_eV=None):
+    """Index of the grid mass a sky figure, the first FITS map and the report show.
+
+    ``mass_eV`` given (``--mass``): the grid mass nearest to it. Otherwise the
+    masses resonating (a crossing inside the boxes) in the most pixels are the
+    candidates, and the middle one of them is shown: a mass at the edge of the
+    probed range resonates in few pixels and shows an almost empty sky. Without
+    any resonance, the middle of the grid.
+    """
+    if mass_eV is not None:
+        return sky.mass_index(float(mass_eV))
+    resonating = (np.asarray(sky.crossings) > 0).mean(axis=0)
+    if not np.any(resonating > 0):
+        return sky.mass_eV.size // 2
+    candidates = np.flatnonzero(resonating == resonating.max())
+    return int(candidates[candidates.size // 2])
 
 
 def result_probability(kernel, epsilon, omega0_eV):
@@ -70,13 +97,16 @@ def check_figure_path(path, what="--plot"):
     return path
 
 
-def save_figure(figure, path, overwrite=False):
-    """Save a figure atomically (the format from the file's suffix)."""
+def save_figure(figure, path, overwrite=False, owner=None):
+    """Save a figure atomically (the format from the file's suffix), marked with the run's result ``owner``
+    (see :mod:`raytrace.companions`)."""
     from pathlib import Path
 
+    from .companions import figure_metadata
     from .provenance import atomic_output
 
     path = Path(path)
     with atomic_output(path, overwrite=overwrite) as temporary:
-        figure.savefig(temporary, format=path.suffix.lstrip(".") or "png", dpi=150, bbox_inches="tight")
+        figure.savefig(temporary, format=path.suffix.lstrip(".") or "png", dpi=150, bbox_inches="tight",
+                       metadata=figure_metadata(path, owner))
     return path

@@ -18,7 +18,8 @@ import numpy as np
 from .errors import RaytraceWarning, require_positive_finite
 from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
                      same_mass_grid, sightline_limits)
-from .plots import _pyplot, kernel_bands
+from .crosscheck import warn_differences
+from .plots import _pyplot, fit_log_limits, kernel_bands, shown_mass_index
 from .provenance import atomic_output, check_writable
 from .results import SightlineResult
 from .sky import SkyResult
@@ -43,7 +44,7 @@ _LEGEND_ROOM = 0.3
 
 
 def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, spectrum=None, confidence=0.95,
-                overwrite=False, fit_galaxy=False, threshold=None, cl_limits=None, plasma=None):
+                overwrite=False, fit_galaxy=False, threshold=None, cl_limits=None, plasma=None, mass_eV=None):
     """Write the one-page report of a run: ``<path_stem>.png``, ``.pdf`` and ``.txt``.
 
     ``sightlines``, ``sky``: result objects or their HDF5 files. ``epsilon``
@@ -53,13 +54,20 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     :func:`raytrace.limits.anisotropy_curve`). ``spectrum``: a Spectrum, a file
     for :func:`raytrace.spectrum.read_spectrum`, or None for FIRAS. ``plasma``:
     the MeanPlasma of the homogeneous comparison (default CAMB, Planck 2018).
+    ``mass_eV``: the sky map's mass (default: :func:`raytrace.plots.shown_mass_index`,
+    the rule the sky figure follows). A sky from another set-up (boxes, masses,
+    history, seed) is warned about, one line per difference.
     Returns a dict kind -> path.
     """
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS}
     for path in paths.values():  # refuse before any work
         check_writable(path, overwrite)
     result = _load(sightlines, SightlineResult)
+    sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
+    if sky is not None:
+        warn_differences(result, sky, f"sightlines {sightlines}" if isinstance(sightlines, (str, Path))
+                         else "the sightlines", sky_name)
     omega0 = CMB_PHOTON_ENERGY_EV if omega0_eV is None else float(require_positive_finite(omega0_eV, "omega0_eV"))
     if epsilon is not None:
         epsilon = float(require_positive_finite(epsilon, "epsilon"))
@@ -67,7 +75,7 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
 
     limits, notes = _limits(result, sky, spectrum, confidence, fit_galaxy, omega0, threshold, cl_limits, plasma)
     picked = histogram_masses(result)
-    sky_index = None if sky is None else _sky_mass_index(sky)
+    sky_index = None if sky is None else shown_mass_index(sky, mass_eV)
     text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, threshold)
     plt = _pyplot()
     figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
@@ -158,7 +166,8 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
     if sky is not None:
         lines.append(f"sky: nside {sky.nside} ({sky.npix} pixels, {sky.run.get('rays_per_pixel')} ray(s) per pixel), "
                      f"seed {sky.run.get('seed')}, z = 0 to {sky.run['z_max']:g}, boxes to {sky.run['z_boxes']:g}; "
-                     f"map at m = {sky.mass_eV[sky_index]:.3g} eV (largest spread between pixels)")
+                     f"map at m = {sky.mass_eV[sky_index]:.3g} eV (resonating in "
+                     f"{100 * (sky.crossings[:, sky_index] > 0).mean():.0f} % of pixels)")
         lines.append(f"  anisotropy limit: {anisotropy.label}"
                      + ("" if same_mass_grid(sky.mass_eV, mass) else "; on its own mass grid, plotted only"))
     shown_sky = anisotropy is not None and same_mass_grid(anisotropy.mass_eV, mass)
@@ -179,9 +188,13 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
         lines.append("  " + " ".join(f"{cell:>11}" for cell in cells))
     lines.append("  boxes: the boxes' share of <K>; rays hit: share of rays with a resonance in the boxes; "
                  "eps K16% / K84%: the limit with K at that sightline quantile")
-    lines.append("  none: K = 0, not constrained"
-                 + (f"; <P>: mean over rays at epsilon = {epsilon:g}, omega_0 = {omega0_eV:.4g} eV" if epsilon is not None
-                    else ""))
+    legend = ["none: K = 0, not constrained"] if any(
+        not np.isfinite(by_name[name].epsilon_max[k]) for name in ("mean", "background", "sightline_p16", "sightline_p84")
+        for k in rows.astype(int)) or (shown_sky and not np.all(np.isfinite(anisotropy.epsilon_max[rows.astype(int)]))) else []
+    if epsilon is not None:
+        legend.append(f"<P>: mean over rays at epsilon = {epsilon:g}, omega_0 = {omega0_eV:.4g} eV")
+    if legend:
+        lines.append("  " + "; ".join(legend))
     trust, warned = trust_lines(result, rows.astype(int), sky, sky_index, omega0_eV, threshold)
     lines += trust
     for message in warned:
@@ -214,12 +227,6 @@ def _limits(result, sky, spectrum, confidence, fit_galaxy, omega0, threshold, cl
         else:  # anything else is the user's to see, as it would have been
             warnings.warn_explicit(warning.message, warning.category, warning.filename, warning.lineno)
     return limits, notes
-
-
-def _sky_mass_index(sky):
-    """The sky's mass whose map varies most between pixels (the tightest anisotropy limit)."""
-    spread = sky.kernel.std(axis=0)
-    return int(np.argmax(spread)) if np.any(spread > 0) else sky.mass_eV.size // 2
 
 
 def _percent(value):
@@ -285,9 +292,7 @@ def _draw_kernel(ax, result, epsilon, omega0):
     ax.set_title("mean and sightline bands, " + ax.get_title(), fontsize=10)
     ax.set_xlim(result.mass_eV[0], result.mass_eV[-1])
     _readable_log_axis(ax.xaxis)
-    if ax.get_yscale() == "log":
-        _legend_room(ax, "top")
-    ax.legend(fontsize=7, loc="upper center", ncol=2)
+    ax.legend(fontsize=7, loc="best", ncol=2, framealpha=0.8)
 
 
 def _draw_limits(ax, limits, result):

@@ -24,6 +24,10 @@ from .errors import InputError
 from .provenance import atomic_output, check_writable, output_folder, provenance_json
 
 FORMAT = "raytrace-sightlines-2"
+#: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
+#: every dataset and stores crossings as float64 in sightline and sky files alike. Files without the
+#: attribute are version 1, still read; a newer version is refused.
+FORMAT_VERSION = 2
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
 
 # name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
@@ -35,6 +39,31 @@ SIGHTLINE_LAYOUT = {
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
     "direction": (lambda r, m: (r, 3), np.float64),
 }
+
+
+# name -> (unit, one-line description) of each dataset a result file holds; {row} is "ray" or "pixel".
+# Crossings are float64 in both files: a pixel's count is the mean over its rays.
+DATASETS = {
+    "mass_eV": ("eV", "dark-photon masses of the grid"),
+    "kernel_boxes": ("eV", "conversion kernel K from the boxes per {row} and mass; P = epsilon^2 K / omega_0"),
+    "kernel_background": ("eV", "kernel of the homogeneous universe beyond the boxes per mass, the same for every {row}"),
+    "crossings": ("1", "resonances inside the boxes per {row} and mass{mean}"),
+    "tangent_events": ("1", "near-tangent resonance pairs (and near misses) taken in the Airy form per {row} and mass{mean}"),
+    "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
+    "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
+    "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+}
+# Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
+# a sky's are means over a pixel's rays).
+FILE_DTYPES = {"crossings": np.float64, "tangent_events": np.float64}
+
+
+def _describe(dataset, name, format_name):
+    unit, description = DATASETS[name]
+    dataset.attrs["unit"] = unit
+    sky = "sky" in format_name
+    dataset.attrs["description"] = description.format(row="pixel" if sky else "ray",
+                                                       mean=" (mean over the pixel's rays)" if sky else "")
 
 
 class KernelRows:
@@ -200,13 +229,19 @@ def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attr
         with h5py.File(temporary, "w") as handle:
             _write_header(handle, format_name, mass_eV, run)
             for name in layout:
-                handle.create_dataset(name, data=getattr(source, name), compression="gzip", shuffle=True)
+                data = getattr(source, name)
+                handle.create_dataset(name, data=data, dtype=FILE_DTYPES.get(name, data.dtype), compression="gzip",
+                                      shuffle=True)
+                _describe(handle[name], name, format_name)
             handle["kernel_background"] = source.kernel_background
+            _describe(handle["kernel_background"], "kernel_background", format_name)
             handle.attrs.update(attributes)
             if source.pdf_check is not None:
                 from .meancheck import write_pdf_check
 
                 write_pdf_check(handle, source.pdf_check)
+            if "dispersion_measure_background" in attributes:
+                handle.attrs["dispersion_measure_background_unit"] = "pc cm^-3"
             handle.attrs["complete"] = True
             _check_finite(handle, path)
     return Path(path)
@@ -229,6 +264,11 @@ class open_result:
             self.handle.close()
             raise InputError(f"{self.path}: not a raytrace {self.what} result "
                              f"(attribute 'format' is not {self.format_name!r})")
+        version = int(self.handle.attrs.get("format_version", 1))
+        if version > FORMAT_VERSION:
+            self.handle.close()
+            raise InputError(f"{self.path}: written by a newer raytrace (format version {version}; this one reads "
+                             f"up to {FORMAT_VERSION}); update raytrace to read it")
         if not self.handle.attrs.get("complete", False):
             self.handle.close()
             raise InputError(f"{self.path}: the run is not complete; finish it with --resume")
@@ -240,10 +280,11 @@ class open_result:
 
 def _write_header(handle, format_name, mass_eV, run):
     handle.attrs["format"] = format_name
+    handle.attrs["format_version"] = FORMAT_VERSION
     handle.attrs["run"] = json.dumps(run, sort_keys=True, default=str)
     handle.attrs["provenance"] = provenance_json(run=run)
     handle["mass_eV"] = mass_eV
-    handle["mass_eV"].attrs["unit"] = "eV"
+    _describe(handle["mass_eV"], "mass_eV", format_name)
 
 
 def _check_finite(handle, path):

@@ -257,15 +257,22 @@ class SkyResult(KernelRows):
             result.pdf_check = read_pdf_check(handle, result.mass_eV)
         return result
 
-    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False):
+    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
         """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
 
-        The header carries nside, ordering, units, each map's mass, the run's seed,
-        z range and the input checksums.
+        The maps come in the order of ``masses_eV``, so the first is the one
+        ``healpy.read_map`` returns by default: put the shown mass first. The header
+        carries nside, ordering, units, the frame (SKYFRAME: the box axes, no
+        celestial COORDSYS), each map's mass, the run's seed, z range, the input
+        checksums, EPSILON and OMEGA0 only with probability maps, and ``owner``
+        (the run's result file, keyword RTRESULT; see :mod:`raytrace.companions`).
         """
+        from .companions import FITS_KEYWORD
         from .provenance import atomic_output
 
         healpy = _healpy()
+        if epsilon is not None and omega0_eV is None:
+            raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
         maps, names, units, cards = [], [], [], []
         for i, mass in enumerate(np.atleast_1d(masses_eV)):
             k = self.mass_index(float(mass))
@@ -274,32 +281,40 @@ class SkyResult(KernelRows):
             names.append(f"KERNEL{i + 1}")
             units.append("eV")
             if epsilon is not None:
-                if omega0_eV is None:
-                    raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
                 maps.append(self.probability_map(self.mass_eV[k], epsilon, omega0_eV))
                 names.append(f"PROB{i + 1}")
                 units.append("")
-        cards += [("EPSILON", float(epsilon) if epsilon is not None else 0.0, "kinetic mixing of PROB maps"),
-                  ("OMEGA0", float(omega0_eV) if omega0_eV is not None else 0.0, "observed photon energy, eV"),
-                  ("ZMAX", self.run["z_max"], "rays reach this redshift"),
+        if epsilon is not None:
+            cards += [("EPSILON", float(epsilon), "kinetic mixing of PROB maps"),
+                      ("OMEGA0", float(omega0_eV), "observed photon energy of PROB maps, eV")]
+        cards += [("ZMAX", self.run["z_max"], "rays reach this redshift"),
                   ("ZBOXES", self.run["z_boxes"], "boxes serve up to this redshift"),
                   ("SEED", self.run["seed"], "random seed of the light cone"),
                   ("RAYSPIX", self.run["rays_per_pixel"], "rays averaged per pixel"),
                   ("RTVERS", __version__, "raytrace version"),
-                  ("SKYFRAME", "box axes", "sky frame: the simulation box's axes")]
+                  ("SKYFRAME", "box axes", "frame: the boxes' axes, not a celestial frame")]
         for i, box in enumerate(self.run["boxes"]):
             checksum = str(box.get("checksum", "")).replace("sha256:", "")
             # 64 hex digits fill the card: no room for a comment.
             cards.append((f"BOXSUM{i + 1}", checksum[:64]))
+        if owner is not None:
+            cards.append((FITS_KEYWORD, str(owner), "result file of the run"))
+        # healpy names every map extension 'xtension'; its extra cards replace that.
+        cards.append(("EXTNAME", "RAYTRACE_MAPS", "conversion kernel maps of a raytrace sky"))
         path = Path(path)
         with atomic_output(path, overwrite=overwrite) as temporary:
-            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord="C",
+            # coord=None: healpy writes no COORDSYS, the map's frame is the box axes (SKYFRAME).
+            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord=None,
                              column_names=names, column_units=units, extra_header=cards, overwrite=True,
                              dtype=np.float64)
         return path
 
-    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False):
-        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given."""
+    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
+        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
+
+        Colour-bar ticks in three significant digits (scientific notation where the
+        values need it); ``owner`` marks the file as in :func:`raytrace.plots.save_figure`.
+        """
         from .plots import _pyplot, save_figure
 
         healpy = _healpy()
@@ -308,11 +323,11 @@ class SkyResult(KernelRows):
             values, label = self.kernel_map(mass_eV), "K [eV]"
         else:
             values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label,
+        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
                         title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
         figure = plt.gcf()
         if path is not None:
-            save_figure(figure, path, overwrite=overwrite)
+            save_figure(figure, path, overwrite=overwrite, owner=owner)
             plt.close(figure)
         return figure
 

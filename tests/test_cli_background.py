@@ -62,7 +62,7 @@ def _analytic(mass, helium_fraction=0.245):
 def test_constant_table_against_analytic_result(capsys, constant_table):
     masses = [1e-13, 1e-12, 1e-10]
     code, out, err = _run(
-        capsys, "--mass", *map(str, masses), "--ionisation-table", str(constant_table),
+        capsys, "--mass-values", *map(str, masses), "--ionisation-table", str(constant_table),
         "--helium-fraction", "0.245", "--epsilon", "1e-8", "--frequency", "160 GHz",
     )
     assert code == 0, err
@@ -81,7 +81,7 @@ def test_constant_table_against_analytic_result(capsys, constant_table):
 
 def test_default_camb_history(capsys):
     # Default: CAMB with Planck 2018; omega_0 = k T_0, T_0 = 2.72548 K (Fixsen 2009).
-    code, out, err = _run(capsys, "--mass", "1e-13", "1e-9", "1e-16")
+    code, out, err = _run(capsys, "--mass-values", "1e-13", "1e-9", "1e-16")
     assert code == 0, err
     rows = _table_rows(out)
     assert len(rows) == 3
@@ -101,12 +101,25 @@ def test_default_camb_history(capsys):
         assert redshifts == [] and kernel == 0.0 and probability == 0.0
 
 
-def test_mass_range(capsys, constant_table):
-    code, out, err = _run(capsys, "--mass-range", "1e-13", "1e-11", "5", "--ionisation-table", str(constant_table))
-    assert code == 0, err
+def test_mass_grid(capsys, constant_table):
+    # numpy.geomspace is the reference for log-spaced masses.
+    code, out, err = _run(capsys, "--mass-min", "1e-13", "--mass-max", "1e-11", "--mass-count", "5",
+                          "--ionisation-table", str(constant_table))
+    assert code == 0 and err == "", err
     rows = _table_rows(out)
     np.testing.assert_allclose([row[0] for row in rows], np.geomspace(1e-13, 1e-11, 5), rtol=1e-4)
     assert all(len(row[3]) == 1 for row in rows)
+
+
+def test_old_spellings_work_with_one_deprecation_line(capsys, constant_table):
+    new = _run(capsys, "--mass-min", "1e-13", "--mass-max", "1e-11", "--mass-count", "5",
+               "--ionisation-table", str(constant_table))
+    old = _run(capsys, "--mass-range", "1e-13", "1e-11", "5", "--ionisation-table", str(constant_table))
+    assert old[0] == 0 and old[1] == new[1]
+    lines = old[2].strip().splitlines()
+    assert len(lines) == 1 and "--mass-range is deprecated" in lines[0] and "--mass-min" in lines[0]
+    listed = _run(capsys, "--mass", "1e-13", "--ionisation-table", str(constant_table))
+    assert listed[0] == 0 and "--mass is deprecated" in listed[2] and "use --mass-values" in listed[2]
 
 
 def test_version(capsys):
@@ -120,22 +133,22 @@ def test_version(capsys):
 @pytest.mark.parametrize(
     "argv, flag",
     [
-        (["--mass=-1e-13"], "--mass"),
-        (["--mass", "1e-13", "nan"], "--mass"),
-        (["--mass", "0"], "--mass"),
-        (["--mass-range", "1e-12", "1e-14", "5"], "--mass-range"),
-        (["--mass-range", "1e-14", "1e-12", "many"], "--mass-range"),
-        (["--mass", "1e-13", "--epsilon=-1e-7"], "--epsilon"),
-        (["--mass", "1e-13", "--epsilon", "nan"], "--epsilon"),
-        (["--mass", "1e-13", "--z-min", "5", "--z-max", "1"], "--z-min"),
-        (["--mass", "1e-13", "--z-min", "-1"], "--z-min"),
-        (["--mass", "1e-13", "--z-max", "nan"], "--z-max"),
-        (["--mass", "1e-13", "--z-max", "5000"], "--z-max"),
-        (["--mass", "1e-13", "--frequency", "160"], "--frequency"),
-        (["--mass", "1e-13", "--frequency", "3 kg"], "--frequency"),
-        (["--mass", "1e-13", "--optical-depth", "0.9"], "--optical-depth"),
-        (["--mass", "1e-13", "--reionisation-redshift", "90"], "--reionisation-redshift"),
-        (["--mass", "1e-13", "--helium-fraction", "1.5"], "--helium-fraction"),
+        (["--mass-values=-1e-13"], "--mass-values"),
+        (["--mass-values", "1e-13", "nan"], "--mass-values"),
+        (["--mass-values", "0"], "--mass-values"),
+        (["--mass-min", "1e-12", "--mass-max", "1e-14", "--mass-count", "5"], "--mass-min"),
+        (["--mass-values", "1e-13", "--mass-count", "5"], "--mass-values"),
+        (["--mass-values", "1e-13", "--epsilon=-1e-7"], "--epsilon"),
+        (["--mass-values", "1e-13", "--epsilon", "nan"], "--epsilon"),
+        (["--mass-values", "1e-13", "--z-min", "5", "--z-max", "1"], "--z-min"),
+        (["--mass-values", "1e-13", "--z-min", "-1"], "--z-min"),
+        (["--mass-values", "1e-13", "--z-max", "nan"], "--z-max"),
+        (["--mass-values", "1e-13", "--z-max", "5000"], "--z-max"),
+        (["--mass-values", "1e-13", "--frequency", "160"], "--frequency"),
+        (["--mass-values", "1e-13", "--frequency", "3 kg"], "--frequency"),
+        (["--mass-values", "1e-13", "--optical-depth", "0.9"], "--optical-depth"),
+        (["--mass-values", "1e-13", "--reionisation-redshift", "90"], "--reionisation-redshift"),
+        (["--mass-values", "1e-13", "--helium-fraction", "1.5"], "--helium-fraction"),
     ],
 )
 def test_bad_input_exits_2_with_one_line_naming_the_flag(capsys, argv, flag):
@@ -153,7 +166,7 @@ def test_unreadable_table_names_the_file(capsys, tmp_path):
     for path, content in [(tmp_path / "missing.txt", None), (tmp_path / "broken.txt", "0 1\n1\n")]:
         if content is not None:
             path.write_text(content)
-        code, out, err = _run(capsys, "--mass", "1e-13", "--ionisation-table", str(path))
+        code, out, err = _run(capsys, "--mass-values", "1e-13", "--ionisation-table", str(path))
         assert code == 2
         lines = err.strip().splitlines()
         assert len(lines) == 1 and str(path) in lines[0]
@@ -162,11 +175,10 @@ def test_unreadable_table_names_the_file(capsys, tmp_path):
 @pytest.mark.parametrize(
     "argv, flag",
     [
-        (["--mass", "abc"], "--mass"),
-        ([], "--mass"),
-        (["--mass", "1e-13", "--z-max", "x"], "--z-max"),
+        (["--mass-values", "abc"], "--mass-values"),
+        (["--mass-values", "1e-13", "--z-max", "x"], "--z-max"),
         # argparse takes "-1e-13" for an option (its negative-number pattern has no exponent).
-        (["--mass", "-1e-13"], "--mass"),
+        (["--mass-values", "-1e-13"], "--mass-values"),
     ],
 )
 def test_unparseable_arguments_exit_2(capsys, argv, flag):

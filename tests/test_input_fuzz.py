@@ -436,12 +436,12 @@ def case(argv, named):
 
 # (command line, what the one error line must name)
 BAD_COMMAND_LINES = [
-    case(["background", "--mass", "1e-13", "--ionisation-table", "{folder}/missing.txt"], "{folder}/missing.txt"),
-    case(["background", "--mass", "1e-13", "--ionisation-table", "{box}"], "{box}"),
-    case(["background", "--mass", "1e-13", "--ionisation-table", "{sub}"], "{sub}"),
-    case(["background", "--mass", "inf"], "--mass"),
-    case(["background", "--mass", "1e-13", "--helium-fraction", "nan"], "--helium-fraction"),
-    case(["background", "--mass-range", "1e-14", "1e-12", "1e12"], "--mass-range"),
+    case(["background", "--mass-values", "1e-13", "--ionisation-table", "{folder}/missing.txt"], "{folder}/missing.txt"),
+    case(["background", "--mass-values", "1e-13", "--ionisation-table", "{box}"], "{box}"),
+    case(["background", "--mass-values", "1e-13", "--ionisation-table", "{sub}"], "{sub}"),
+    case(["background", "--mass-values", "inf"], "--mass-values"),
+    case(["background", "--mass-values", "1e-13", "--helium-fraction", "nan"], "--helium-fraction"),
+    case(["background", "--mass-min", "1e-12", "--mass-max", "1e-14"], "--mass-min"),
     case(["inspect", "{folder}/missing.h5"], "{folder}/missing.h5"),
     case(["inspect", "{text}"], "{text}"),
     case(["inspect", "{sub}"], "{sub}"),
@@ -481,12 +481,12 @@ BAD_COMMAND_LINES = [
     case(["sightlines", "{good}", "--photon-energy", "0"], "--photon-energy"),
     case(["sightlines", "{good}", "--jobs", "0"], "--jobs"),
     case(["sightlines", "{good}", "--plot", "{folder}/kernel.xyz"], "{folder}/kernel.xyz"),
-    case(["limits", "--mass", "1e-13", "--confidence", "nan"], "--confidence"),
-    case(["limits", "--mass", "1e-13", "--spectrum", "{folder}/missing.txt"], "{folder}/missing.txt"),
-    case(["limits", "--mass", "1e-13", "--spectrum", "{box}"], "{box}"),
-    case(["limits", "--mass", "1e-13", "--output", "{folder}/limits.txt"], "{folder}/limits.txt"),
-    case(["limits", "--mass", "1e-13", "--output", "{box}"], "{box}"),
-    case(["limits", "--mass", "1e-13", "--plot", "{folder}/limits.xyz"], "{folder}/limits.xyz"),
+    case(["limits", "--mass-values", "1e-13", "--confidence", "nan"], "--confidence"),
+    case(["limits", "--mass-values", "1e-13", "--spectrum", "{folder}/missing.txt"], "{folder}/missing.txt"),
+    case(["limits", "--mass-values", "1e-13", "--spectrum", "{box}"], "{box}"),
+    case(["limits", "--mass-values", "1e-13", "--output", "{folder}/limits.txt"], "{folder}/limits.txt"),
+    case(["limits", "--mass-values", "1e-13", "--output", "{box}"], "{box}"),
+    case(["limits", "--mass-values", "1e-13", "--plot", "{folder}/limits.xyz"], "{folder}/limits.xyz"),
 ]
 
 
@@ -511,11 +511,11 @@ def test_bad_input_on_the_command_line_is_one_line_and_status_2(files, capsys, a
 
 
 @pytest.mark.parametrize("argv, flag", [
-    (["background", "--mass", "1e-13", "--z-min", "abc"], "--z-min"),
+    (["background", "--mass-values", "1e-13", "--z-min", "abc"], "--z-min"),
     (["inspect", "{box}", "--z-max", "abc"], "--z-max"),
     (grid_argv(cells="many"), "--cells"),
     (["sightlines", "--rays"], "--rays"),
-    (["limits", "--mass", "1e-13", "--confidence", "x"], "--confidence"),
+    (["limits", "--mass-values", "1e-13", "--confidence", "x"], "--confidence"),
 ])
 def test_unparseable_flags_exit_2_naming_the_flag(files, capsys, argv, flag):
     # argparse's own errors (Python documentation): usage, then one error line naming the flag, status 2.

@@ -326,7 +326,7 @@ def parse(argv):
 
 def test_cli_homogeneous_limits(tmp_path, capsys):
     csv_path, h5, png = tmp_path / "l.csv", tmp_path / "l.h5", tmp_path / "l.png"
-    args = parse(["--mass-range", "1e-15", "1e-12", "7", "--output", str(csv_path), str(h5), "--plot", str(png)])
+    args = parse(["--mass-min", "1e-15", "--mass-max", "1e-12", "--mass-count", "7", "--output", str(csv_path), str(h5), "--plot", str(png)])
     with pytest.warns(UnconstrainedMassWarning):
         assert limits_cli.run(args) == 0
     printed = capsys.readouterr().out
@@ -341,13 +341,13 @@ def test_cli_homogeneous_limits(tmp_path, capsys):
     # Existing outputs are refused before any work, and replaced with --overwrite.
     with pytest.raises(InputError, match="exists"):
         limits_cli.run(args)
-    assert limits_cli.run(parse(["--mass", "1e-13", "--output", str(csv_path), "--overwrite"])) == 0
+    assert limits_cli.run(parse(["--mass-values", "1e-13", "--output", str(csv_path), "--overwrite"])) == 0
     assert read_csv(csv_path)["mass_eV"].tolist() == [1e-13]
 
 
 def test_cli_hook_with_sightline_kernels(tmp_path):
     h5 = tmp_path / "hook.h5"
-    args = parse(["--mass", "1e-13", "--output", str(h5), "--confidence", "0.99"])
+    args = parse(["--mass-values", "1e-13", "--output", str(h5), "--confidence", "0.99"])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UnconstrainedMassWarning)
         limits = limits_cli.report(args, MASS, MEAN, SPREAD, BACKGROUND)
@@ -360,11 +360,11 @@ def test_cli_hook_with_sightline_kernels(tmp_path):
 @pytest.mark.parametrize("confidence", ["0.3", "1.2"])
 def test_cli_bad_confidence(confidence):
     with pytest.raises(InputError, match="--confidence"):
-        limits_cli.run(parse(["--mass", "1e-13", "--confidence", confidence]))
+        limits_cli.run(parse(["--mass-values", "1e-13", "--confidence", confidence]))
 
 
 def test_cli_bad_spectrum(tmp_path):
     path = tmp_path / "nounits.txt"
     path.write_text("1 2 3\n4 5 6\n7 8 9\n1 2 3\n")
     with pytest.raises(InputError, match="nounits.txt"):
-        limits_cli.run(parse(["--mass", "1e-13", "--spectrum", str(path)]))
+        limits_cli.run(parse(["--mass-values", "1e-13", "--spectrum", str(path)]))

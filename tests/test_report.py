@@ -220,16 +220,19 @@ def test_limits_cli_from_a_result_file(run_files, stored, capsys):
 def test_limits_cli_sky_options_need_matching_masses(run_files):
     _, _, sky_path = run_files
     with pytest.raises(InputError, match=r"--sky .*sky\.h5.* not those of --mass"):
-        limits_cli.run(parse(limits_cli, ["--mass", "1e-13", "--sky", str(sky_path)]))
+        limits_cli.run(parse(limits_cli, ["--mass-values", "1e-13", "--sky", str(sky_path)]))
     with pytest.raises(InputError, match="--isotropy-threshold: only meaningful with --sky"):
-        limits_cli.run(parse(limits_cli, ["--mass", "1e-13", "--isotropy-threshold", "1e-6"]))
+        limits_cli.run(parse(limits_cli, ["--mass-values", "1e-13", "--isotropy-threshold", "1e-6"]))
     with pytest.raises(InputError, match="--isotropy-threshold: expected a positive"):
         limits_cli.run(parse(limits_cli, ["--sky", str(sky_path), "--isotropy-threshold", "-1"]))
 
 
-def test_limits_cli_needs_some_masses():
-    with pytest.raises(InputError, match="--result"):
-        limits_cli.run(parse(limits_cli, []))
+def test_limits_cli_without_masses_takes_the_documented_grid(capsys):
+    # The grid --help documents (1e-15 to 1e-12 eV, 64 masses), log-spaced as numpy.geomspace spaces it.
+    with pytest.warns(UnconstrainedMassWarning):
+        assert limits_cli.run(parse(limits_cli, ["--all"])) == 0
+    rows = [line.split() for line in capsys.readouterr().out.splitlines() if not line.startswith("#")]
+    np.testing.assert_allclose([float(row[0]) for row in rows], np.geomspace(1e-15, 1e-12, 64), rtol=1e-4)
 
 
 # -- the anisotropy curve ---------------------------------------------------------------------------

@@ -314,7 +314,8 @@ def test_fits_maps_read_back_with_healpy(structured_box, plasma, tmp_path, order
     assert header["BOXSUM1"] == structured_box.checksum.removeprefix("sha256:")
     assert header["SEED"] == 5 and header["ZMAX"] == pytest.approx(STRUCTURED_Z_MAX)
     assert header["EPSILON"] == pytest.approx(1e-7) and header["OMEGA0"] == pytest.approx(omega0, rel=1e-12)
-    assert "COORDSYS" in header
+    # The frame is the boxes' axes: no celestial COORDSYS (HEALPix FITS convention), SKYFRAME says so.
+    assert "COORDSYS" not in header and header["SKYFRAME"] == "box axes"
     # healpy's default read gives RING order whatever the file holds.
     ring = healpy.read_map(str(path), field=0)
     expected = sky.kernel[:, 1] if ordering == "RING" else healpy.reorder(sky.kernel[:, 1], n2r=True)

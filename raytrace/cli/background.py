@@ -4,36 +4,50 @@ from contextlib import contextmanager
 
 import numpy as np
 
+from ..runfile import VOCABULARY, add_deprecated, add_option
+
 NAME = "background"
 HELP = "Conversion kernel K(m) and probability P(m) of the homogeneous universe (no boxes)."
 
 
 def add_arguments(parser):
-    masses = parser.add_mutually_exclusive_group(required=True)
-    masses.add_argument("--mass", nargs="+", type=float, metavar="EV", help="dark-photon masses in eV")
-    masses.add_argument(
-        "--mass-range", nargs=3, metavar=("MIN", "MAX", "COUNT"),
-        help="log-spaced masses: lowest and highest in eV, and how many",
-    )
-    parser.add_argument("--epsilon", type=float, default=1e-7, help="kinetic mixing (default 1e-7)")
-    parser.add_argument(
-        "--frequency", default=None,
-        help="observed photon frequency or energy with a unit, e.g. '160 GHz' or '5.45 1/cm' "
-        "(default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)",
-    )
-    parser.add_argument("--z-min", type=float, default=0.0, help="lowest redshift (default 0)")
-    parser.add_argument("--z-max", type=float, default=1100.0, help="highest redshift (default 1100)")
+    add_mass_arguments(parser)
+    add_option(parser, "output.epsilon", default=1e-7, type=float, help="kinetic mixing of P")
+    add_option(parser, "output.frequency")
+    parser.add_argument("--z-min", type=float, default=0.0, metavar="Z", help="lowest redshift (default: 0)")
+    add_option(parser, "rays.z_max", default=1100.0, type=float, help="highest redshift (last scattering)")
     add_ionisation_arguments(parser)
+
+
+def add_mass_arguments(parser, title="masses: a list, or a log-spaced grid"):
+    """The mass grid in the run files' vocabulary: --mass-values, or --mass-min/--mass-max/--mass-count
+    (the schema's defaults fill in, see :func:`masses_from_args`)."""
+    group = parser.add_argument_group(title)
+    add_option(group, "masses.list_eV", type=float)
+    for key in ("masses.min_eV", "masses.max_eV", "masses.count"):
+        add_option(group, key, shown=f"{VOCABULARY[key].default:g}")
+
+    def store_range(namespace, values):
+        try:
+            namespace.mass_min, namespace.mass_max, namespace.mass_count = float(values[0]), float(values[1]), int(values[2])
+        except ValueError:
+            parser.error("--mass-range: expected MIN MAX COUNT, two numbers in eV and a whole number")
+
+    add_deprecated(group, "--mass-range", "--mass-min MIN --mass-max MAX --mass-count COUNT", nargs=3,
+                   store=store_range)
 
 
 def add_ionisation_arguments(parser):
     """Options choosing the mean ionisation history; shared by every command that needs one."""
     group = parser.add_argument_group("ionisation history (default: CAMB, Planck 2018, tau = 0.0561)")
     choice = group.add_mutually_exclusive_group()
-    choice.add_argument("--optical-depth", type=float, default=None, help="optical depth to reionisation")
-    choice.add_argument("--reionisation-redshift", type=float, default=None, help="tanh reionisation redshift")
+    choice.add_argument("--optical-depth", type=float, default=None, metavar="X",
+                        help="optical depth to reionisation (default: 0.0561)")
+    choice.add_argument("--reionisation-redshift", type=float, default=None, metavar="Z",
+                        help="tanh reionisation redshift (default: from the optical depth)")
     choice.add_argument("--ionisation-table", default=None, metavar="FILE", help="two-column text table z, x_e")
-    group.add_argument("--helium-fraction", type=float, default=None, help="helium mass fraction Y_p")
+    group.add_argument("--helium-fraction", type=float, default=None, metavar="X",
+                       help="helium mass fraction Y_p (default: CAMB's BBN value; 0.2454 with a table)")
 
 
 # Parameter names in the library's messages and the flags a user typed.
@@ -74,27 +88,33 @@ def ionisation_from_args(args, cosmology=None):
         )
 
 
-def masses_from_args(args):
-    from ..errors import InputError
+def masses_from_args(args, required=True):
+    """The masses of --mass-values or of --mass-min/--mass-max/--mass-count (the schema's defaults fill in);
+    None when none is given and ``required`` is False."""
+    from ..errors import InputError, require_positive_finite
 
-    if args.mass is not None:
-        return np.asarray(args.mass, dtype=float)
-    try:
-        low, high, count = float(args.mass_range[0]), float(args.mass_range[1]), int(args.mass_range[2])
-    except ValueError:
-        raise InputError("--mass-range: expected MIN MAX COUNT, two numbers in eV and a whole number") from None
-    if not (0 < low < high) or count < 1:
-        raise InputError("--mass-range: expected 0 < MIN < MAX and COUNT >= 1")
+    grid = (args.mass_min, args.mass_max, args.mass_count)
+    if args.mass_values is not None:
+        if any(value is not None for value in grid):
+            raise InputError("--mass-values: give either the masses or --mass-min/--mass-max/--mass-count, not both")
+        return require_positive_finite(np.asarray(args.mass_values, dtype=float), "--mass-values")
+    if not required and all(value is None for value in grid):
+        return None
+    low, high, count = (VOCABULARY[key].default if value is None else value
+                        for key, value in zip(("masses.min_eV", "masses.max_eV", "masses.count"), grid))
+    if not (np.isfinite(low) and np.isfinite(high) and 0 < low and (low < high or count == 1)) or count < 1:
+        raise InputError(f"--mass-min, --mass-max, --mass-count: expected 0 < min < max and count >= 1, "
+                         f"got {low!r}, {high!r}, {count!r}")
     return np.geomspace(low, high, count)
 
 
 def run(args):
     from ..background import MeanPlasma
     from ..conversion import probability_from_kernel
-    from ..errors import InputError, require_positive_finite
+    from ..errors import InputError
     from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
-    masses = require_positive_finite(masses_from_args(args), "--mass-range" if args.mass is None else "--mass")
+    masses = masses_from_args(args)
     if not (np.isfinite(args.epsilon) and args.epsilon >= 0):
         raise InputError(f"--epsilon: expected a finite value >= 0, got {args.epsilon!r}")
     if not (np.isfinite(args.z_min) and np.isfinite(args.z_max) and 0 <= args.z_min < args.z_max):

@@ -8,6 +8,8 @@ no extra flags, and the electron totals before and after deposition on stdout.
 every other subcommand; hydrogen's own n_HII / n_H is ``--hydrogen-ionised-fraction``.
 """
 
+from ..runfile import add_option
+
 NAME = "grid"
 HELP = ("Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths), or any snapshot yt loads "
         "(--yt), onto an N^3 box of n_e.")
@@ -29,8 +31,9 @@ def add_arguments(parser):
     parser.add_argument("particles", metavar="PARTICLES.h5", nargs="?", help="HDF5 file of gas particles")
     parser.add_argument("--cells", type=int, required=True, metavar="N", help="cells along each side of the grid")
     parser.add_argument("--output", required=True, metavar="BOX.h5", help="box file to write")
-    parser.add_argument("--overwrite", action="store_true", help="replace --output if it exists")
-    parser.add_argument("--compress", action="store_true", help="gzip the box (smaller; cannot be memory-mapped)")
+    add_option(parser, "output.overwrite")
+    parser.add_argument("--compress", action="store_true",
+                        help="gzip the box (smaller; cannot be memory-mapped) (default: off)")
 
     where = parser.add_argument_group("positions and box")
     where.add_argument("--positions", metavar="DATASET", help="dataset of positions, shape (N, 3) (required "
@@ -40,22 +43,23 @@ def add_arguments(parser):
         help="unit of positions and smoothing lengths: [c|p](pc|kpc|Mpc|Gpc)[/h], 'c' comoving, 'p' proper, "
         "e.g. ckpc/h",
     )
-    where.add_argument("--box-size", metavar="SIZE", help="box side with a unit, e.g. '25 cMpc/h'")
-    where.add_argument("--redshift", type=float, help="snapshot redshift")
+    where.add_argument("--box-size", metavar="LENGTH", help="box side with a unit, e.g. '25 cMpc/h'")
+    where.add_argument("--redshift", type=float, metavar="Z", help="snapshot redshift")
     where.add_argument("--hubble-h", type=float, metavar="H", help="H0 / (100 km/s/Mpc); needed by any '/h' unit")
     where.add_argument(
         "--not-periodic", dest="periodic", action="store_false",
-        help="the box is not periodic: positions outside it are an error instead of being wrapped",
+        help="the box is not periodic: positions outside it are an error instead of being wrapped "
+        "(default: periodic)",
     )
 
     mass = parser.add_argument_group("gas mass: --masses, or --densities with --volumes (mass = density * volume)")
-    mass.add_argument("--masses", type=dataset_or_number, metavar="DATASET|VALUE", help="particle masses")
+    mass.add_argument("--masses", type=dataset_or_number, metavar="X|DATASET", help="particle masses")
     mass.add_argument("--densities", metavar="DATASET", help="densities, in mass unit per position unit^3")
     mass.add_argument("--volumes", metavar="DATASET", help="volumes, in position unit^3")
     mass.add_argument("--mass-unit", metavar="UNIT", help="e.g. '1e10 Msun/h', 'Msun' or 'g'")
     mass.add_argument(
         "--hydrogen-fraction", type=float, default=0.76, metavar="X_H",
-        help="hydrogen mass fraction (default 0.76)",
+        help="hydrogen mass fraction (default: 0.76)",
     )
 
     electrons = parser.add_argument_group(
@@ -86,10 +90,50 @@ def add_arguments(parser):
         "--kernel-support", type=float, metavar="FACTOR",
         help="kernel support radius / stored smoothing length: 2 for Monaghan's h, 1 for a stored support radius",
     )
-    kernel.add_argument("--method", choices=("auto", "cic", "sph"), default="auto", help="deposit scheme")
+    kernel.add_argument("--method", choices=("auto", "cic", "sph"), default="auto",
+                        help="deposit scheme (default: auto, SPH with --smoothing-lengths, else CIC)")
+
+
+#: Grids of this many cells a side and more say on stderr what grid is doing.
+LARGE_CELLS = 128
+#: More empty cells than this share of the grid get a warning: the grid is too fine for the particles.
+EMPTY_WARNING = 0.10
+
+
+def _check_memory(cells):
+    """A grid larger than the machine's memory is refused before the notice and the work (main says: memory)."""
+    import os
+
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # not a POSIX system: the deposit finds out itself
+        return
+    needed = 8.0 * cells**3  # the float64 grid alone
+    if cells > 0 and needed > total:
+        raise MemoryError(f"--cells {cells}: the grid alone needs {needed / 2**30:.3g} GiB, "
+                          f"this machine has {total / 2**30:.3g} GiB")
+
+
+def _warn_empty(density, written, cells):
+    """Warn when more than EMPTY_WARNING of the written cells hold no electrons."""
+    import warnings
+
+    import numpy as np
+
+    from ..errors import RaytraceWarning
+
+    empty = float(np.mean(np.asarray(density) <= 0))
+    if empty > EMPTY_WARNING:
+        warnings.warn(RaytraceWarning(
+            f"{100 * empty:.0f} % of the {cells}^3 cells of {written} are empty (nothing deposited there): "
+            "the grid is finer than the particles sample the gas; fewer --cells, or smoothing lengths for SPH, "
+            "fill it"), stacklevel=2)
 
 
 def run(args):
+    import sys
+    import time
+
     from ..errors import InputError
     from ..gridding import grid_particles
     from ..provenance import check_writable
@@ -104,6 +148,12 @@ def run(args):
             raise InputError(f"--{name.replace('_', '-')}: applies with --yt SNAPSHOT only")
     if args.positions is None:
         raise InputError("--positions: required for a particle file: the dataset of positions, shape (N, 3)")
+    large = args.cells >= LARGE_CELLS
+    _check_memory(args.cells)
+    start = time.perf_counter()
+    if large:
+        print(f"raytrace grid: depositing the particles of {args.particles} on {args.cells}^3 cells ...",
+              file=sys.stderr, flush=True)
     result = grid_particles(
         args.particles, args.cells,
         positions=args.positions, position_unit=args.position_unit, box_size=args.box_size,
@@ -114,7 +164,11 @@ def run(args):
         helium_electrons=args.helium_electrons,
         smoothing_lengths=args.smoothing_lengths, kernel_support=args.kernel_support, method=args.method,
     )
+    if large:
+        print(f"raytrace grid: deposited in {time.perf_counter() - start:.1f} s; writing {args.output} ...",
+              file=sys.stderr, flush=True)
     written = result.write(args.output, overwrite=args.overwrite, compression="gzip" if args.compress else None)
+    _warn_empty(result.density, written, args.cells)
     print(f"# {result.n_particles} particles from {args.particles}, deposit {result.method}", end="")
     print(f" ({result.kernel_fallbacks} by CIC: kernel under one cell)" if result.method == "sph" else "")
     print(
@@ -142,6 +196,7 @@ def _run_yt(args):
                      hydrogen_fraction=args.hydrogen_fraction, particle_type=args.yt_particle_type,
                      redshift=args.redshift, hubble_h=args.hubble_h)
     written = result.write(args.output, overwrite=args.overwrite, compression="gzip" if args.compress else None)
+    _warn_empty(result.density, written, args.cells)
     print(f"# {args.yt} through yt: {result.n_particles} particles or cells, {result.method}")
     print(f"# electrons: {result.electrons_read:.10e} in the dataset, {result.electrons_gridded:.10e} on the grid "
           f"(relative difference {result.relative_difference:.2e})")

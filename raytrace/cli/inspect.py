@@ -26,16 +26,15 @@ def add_box_arguments(parser):
 
 
 def add_arguments(parser):
+    from ..runfile import add_option
     from .background import add_ionisation_arguments
 
     parser.add_argument("files", nargs="+", metavar="FILE", help="HDF5 box files, or quoted glob patterns")
     add_box_arguments(parser)
-    parser.add_argument(
-        "--z-max", type=float, default=None,
-        help="highest redshift of the coverage shown (default: the highest snapshot redshift)",
-    )
+    add_option(parser, "rays.z_max", type=float,
+               help="highest redshift of the coverage shown (default: the highest snapshot redshift)")
     parser.add_argument("--plot", default=None, metavar="FILE", help="write a figure: density PDF and a slice per box")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing --plot file")
+    add_option(parser, "output.overwrite")
     parser.add_argument("--json", action="store_true", help="print JSON instead of text")
     add_ionisation_arguments(parser)
 
@@ -58,7 +57,7 @@ def run(args):
     values = settings(args, BOX_SETTINGS)
     plasma = MeanPlasma(None, ionisation_from_args(args))
     boxes = load_boxes(args.files, **box_arguments(values, plasma))
-    statistics = [box.statistics(plasma) for box in boxes]
+    statistics = [_timed_statistics(box, plasma, number, len(boxes)) for number, box in enumerate(boxes, 1)]
 
     series, series_error = None, None
     try:
@@ -93,6 +92,25 @@ def run(args):
     if series_error is not None:
         raise series_error
     return 0
+
+
+#: Boxes of this many cells a side and more say on stderr what inspect is doing (seconds of work each).
+LARGE_CELLS = 128
+
+
+def _timed_statistics(box, plasma, number, count):
+    """box.statistics, with a line on stderr before and after for a large box (a sign of life)."""
+    import sys
+    import time
+
+    if box.n_cells < LARGE_CELLS:
+        return box.statistics(plasma)
+    print(f"raytrace inspect: box {number} of {count} ({box.n_cells}^3 cells): statistics ...", file=sys.stderr,
+          flush=True)
+    start = time.perf_counter()
+    stats = box.statistics(plasma)
+    print(f"raytrace inspect: box {number} of {count}: done in {time.perf_counter() - start:.1f} s", file=sys.stderr)
+    return stats
 
 
 def _coverage(series, z_stop):
@@ -150,13 +168,24 @@ def _box_text(box, stats, number, count):
         f"  plasma mass    mean density {masses['mean_density']:.4e} eV; cells {masses['lowest_cell']:.4e} .. "
         f"{masses['highest_cell']:.4e} eV; {masses['percentile_range'][0]:g}-{masses['percentile_range'][1]:g} %: "
         f"{masses['percentile_low']:.4e} .. {masses['percentile_high']:.4e} eV",
-        f"  probes         dark-photon masses {masses['lowest_cell']:.4e} .. {masses['highest_cell']:.4e} eV "
-        f"at z = {box.redshift:g} (a resonance needs m between the lowest and highest cell's plasma mass)",
+        _probes_line(box, stats),
         f"  checksum       {info['checksum']}",
     ]
     if info["provenance"]:
         lines.append(f"  provenance     {info['provenance']}")
     return "\n".join(lines)
+
+
+def _probes_line(box, stats):
+    """Which masses can resonate: between the lowest and highest cell, or below too where cells are empty."""
+    masses = stats["plasma_mass_eV"]
+    zero = stats["zero_cells"]
+    if not zero:
+        return (f"  probes         dark-photon masses {masses['lowest_cell']:.4e} .. {masses['highest_cell']:.4e} eV "
+                f"at z = {box.redshift:g} (a resonance needs m between the lowest and highest cell's plasma mass)")
+    return (f"  probes         dark-photon masses up to {masses['highest_cell']:.4e} eV at z = {box.redshift:g}; "
+            f"{zero} cells ({100 * zero / box.n_cells**3:.1f} %) are empty, so below the lowest non-empty cell "
+            f"({masses['lowest_cell']:.4e} eV) masses resonate only at the edges of empty regions")
 
 
 def _series_text(series, coverage):
@@ -218,7 +247,8 @@ def _plot(boxes, statistics, path, overwrite):
         pdf = axes[row, 0]
         pdf.hist(np.log10(positive), bins=100, density=True, histtype="step", color="k")
         for p in (16.0, 50.0, 84.0):
-            pdf.axvline(np.log10(stats["percentiles"][p]), ls=":", color="0.5")
+            if stats["percentiles"][p] > 0:  # a percentile in the empty cells has no place on a log axis
+                pdf.axvline(np.log10(stats["percentiles"][p]), ls=":", color="0.5")
         pdf.set_xlabel(r"$\log_{10}(n_e / \bar n_e)$")
         pdf.set_ylabel("probability density")
         pdf.set_title(f"{name} {box.dataset or ''}, z = {box.redshift:g} (dotted: 16, 50, 84 %)", fontsize=9)

@@ -15,7 +15,8 @@ curves, computes the limits and writes what the options ask for.
 
 import numpy as np
 
-from .background import add_ionisation_arguments, ionisation_from_args, masses_from_args
+from ..runfile import add_option
+from .background import add_ionisation_arguments, add_mass_arguments, ionisation_from_args, masses_from_args
 from .background import flags_named as background_flags_named
 
 NAME = "limits"
@@ -23,34 +24,27 @@ HELP = "Upper limits on the kinetic mixing epsilon versus mass from the CMB spec
 
 
 def add_arguments(parser):
-    masses = parser.add_mutually_exclusive_group()
-    masses.add_argument(
-        "--result", default=None, metavar="RESULT.h5",
-        help="sightline result (raytrace sightlines): limits from its mean kernel and 16-84 %% sightline band, "
-        "beside the homogeneous universe to the same z_max; or a one-point-PDF mean (raytrace onepoint-mean): "
-        "its mean alone; its masses are the grid",
-    )
-    masses.add_argument("--mass", nargs="+", type=float, metavar="EV", help="dark-photon masses in eV")
-    masses.add_argument(
-        "--mass-range", nargs=3, metavar=("MIN", "MAX", "COUNT"),
-        help="log-spaced masses: lowest and highest in eV, and how many",
-    )
+    add_option(parser, "inputs.result", help="sightline result (raytrace sightlines --output): limits from its mean "
+               "kernel and 16-84 %% sightline band, beside the homogeneous universe to the same z_max; or a "
+               "one-point-PDF mean (raytrace onepoint-mean): its mean alone; its masses are the grid")
+    add_mass_arguments(parser, "masses: a list, or a log-spaced grid (default with --sky: the sky's grid)")
     add_spectrum_arguments(parser)
     add_sky_arguments(parser)
     parser.add_argument(
         "--output", nargs="+", default=(), metavar="FILE",
-        help="write the limits as a table: .csv and/or .h5 (both may be given)",
+        help="write the limits as a table: .csv and/or .h5 (both may be given; '' writes none)",
     )
     parser.add_argument("--plot", default=None, metavar="FILE", help="write a log-log plot (.png, .pdf)")
-    parser.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    parser.add_argument("--all", action="store_true", help="print every mass of the grid, not a handful")
+    add_option(parser, "output.overwrite")
     add_ionisation_arguments(parser)
 
 
 def add_spectrum_arguments(parser):
     """Options of the spectral fit; shared with ``raytrace report``."""
     parser.add_argument(
-        "--confidence", type=float, default=0.95,
-        help="confidence level of the one-sided upper limit (default 0.95, Delta chi^2 = 2.71)",
+        "--confidence", type=float, default=0.95, metavar="X",
+        help="confidence level of the one-sided upper limit (default: 0.95, Delta chi^2 = 2.71)",
     )
     parser.add_argument(
         "--spectrum", default=None, metavar="FILE",
@@ -60,25 +54,19 @@ def add_spectrum_arguments(parser):
     )
     parser.add_argument(
         "--fit-galaxy", action="store_true",
-        help="fit the amplitude of the spectrum's Galaxy template as well as T",
+        help="fit the amplitude of the spectrum's Galaxy template as well as T (default: off)",
     )
 
 
 def add_sky_arguments(parser):
     """Options of the sky's anisotropy limit; shared with ``raytrace report``."""
     group = parser.add_argument_group("anisotropy limit from a sky result")
-    group.add_argument("--sky", default=None, metavar="SKY.h5", help="sky result (raytrace.cast_sky): "
-                       "adds the limit from the isotropy of its dT/T map")
-    group.add_argument(
-        "--frequency", default=None,
-        help="observed photon frequency or energy with a unit for dT/T (and for P in the report), "
-        "e.g. '160 GHz' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)",
-    )
+    add_option(group, "inputs.sky")
+    add_option(group, "output.frequency", help="observed photon frequency or energy with a unit for dT/T (and for P "
+               "in the report), e.g. '160 GHz' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)")
     test = group.add_mutually_exclusive_group()
-    test.add_argument("--isotropy-threshold", type=float, default=None, metavar="DT_T",
-                      help="the dT/T rms the map must stay below (default 1e-5)")
-    test.add_argument("--cl-limits", default=None, metavar="FILE",
-                      help="two-column table (l, C_l upper limit in (dT/T)^2): the C_l test instead of the rms")
+    add_option(test, "anisotropy.threshold", shown="1e-05", type=float)
+    add_option(test, "anisotropy.cl_limits")
 
 
 # Parameter names in the library's messages and the flags a user typed.
@@ -150,7 +138,7 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     )
     for curve in extra_curves:
         limits = limits.with_curve(curve)
-    _print(limits)
+    _print(limits, getattr(args, "all", False))
     for path in args.output:
         limit_table(path, limits, overwrite=args.overwrite)
     if args.plot:
@@ -160,7 +148,8 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
 
 def run(args):
     from ..background import MeanPlasma
-    from ..errors import InputError, require_positive_finite
+    from ..crosscheck import warn_differences
+    from ..errors import InputError
     from ..limits import result_kernels, same_mass_grid
     from ..onepoint import load_mean_result
     from ..sky import SkyResult
@@ -168,19 +157,24 @@ def run(args):
     check_confidence(args)
     refuse_unused_sky_options(args)
     _check_outputs(args)
-    if args.result is None and args.mass is None and args.mass_range is None and args.sky is None:
-        raise InputError("give the masses: --result RESULT.h5, --mass, --mass-range, or --sky SKY.h5 for its grid")
+    masses = masses_from_args(args, required=False)
+    if args.result is not None and masses is not None:
+        raise InputError("--result: its masses are the grid; leave out --mass-values and --mass-min/--mass-max/--mass-count")
+    if args.result is None and args.sky is None and masses is None:
+        masses = masses_from_args(args)  # the schema's default grid
     sky = SkyResult.load(args.sky) if args.sky else None
     plasma = MeanPlasma(None, ionisation_from_args(args))
     if args.result is not None:
-        kernels = result_kernels(load_mean_result(args.result), plasma)
+        result = load_mean_result(args.result)
+        if sky is not None:
+            warn_differences(result, sky, f"--result {args.result}", f"--sky {args.sky}")
+        kernels = result_kernels(result, plasma)
         grid = f"--result {args.result}"
     else:
-        if args.mass is None and args.mass_range is None:
+        if masses is None:
             masses, grid = sky.mass_eV, None
         else:
-            masses = require_positive_finite(masses_from_args(args), "--mass-range" if args.mass is None else "--mass")
-            grid = "--mass-range" if args.mass is None else "--mass"
+            grid = "--mass-values" if args.mass_values is not None else "--mass-min/--mass-max/--mass-count"
         kernels = {"mass_eV": masses, "background_kernel_eV": plasma.kernel(masses)}
     extra = ()
     if sky is not None:
@@ -199,11 +193,17 @@ def _check_outputs(args):
     """Refuse existing outputs before any work is done."""
     from ..provenance import check_writable
 
+    args.output = [path for path in args.output if path]  # '' switches the table off
     for path in (*args.output, *([args.plot] if args.plot else [])):
         check_writable(path, args.overwrite)
 
 
-def _print(limits):
+# Rows printed without --all: a handful of masses spread over the grid, plus the tightest limit.
+_ROWS = 12
+
+
+def _print(limits, every_mass=False):
+    """The limits as a table that fits 100 columns: a handful of masses, or all with ``every_mass``."""
     curves = limits.all_curves()
     first = curves[0]
     galaxy = "" if first.galaxy_amplitude is None else (
@@ -218,11 +218,28 @@ def _print(limits):
     for curve in curves:
         if not hasattr(curve, "kernel_eV"):  # a limit of another kind (the sky's): say what it is
             print(f"# {curve.name}: {curve.label}")
-    columns = {"mass_eV": first.mass_eV}
-    for curve in curves:
-        if hasattr(curve, "kernel_eV"):
-            columns[f"{curve.name}_K_eV"] = curve.kernel_eV
-        columns[f"{curve.name}_eps_max"] = curve.epsilon_max
-    print("# " + " ".join(f"{name:>22}" for name in columns))
-    for row in np.column_stack(list(columns.values())):
-        print("  " + " ".join(f"{value:22.4e}" for value in row))
+    mass = first.mass_eV
+    with_kernel = [curve for curve in curves if hasattr(curve, "kernel_eV")]
+    columns = {"mass_eV": mass}
+    columns.update({f"K_{_short(curve.name)}": curve.kernel_eV for curve in with_kernel[:2]})
+    columns.update({f"eps_{_short(curve.name)}": curve.epsilon_max for curve in curves})
+    rows = np.arange(mass.size)
+    if not every_mass and mass.size > _ROWS:
+        tightest = np.nanargmin(np.where(np.isfinite(first.epsilon_max), first.epsilon_max, np.nan)) \
+            if np.isfinite(first.epsilon_max).any() else 0
+        rows = np.unique(np.append(np.round(np.linspace(0, mass.size - 1, _ROWS)).astype(int), tightest))
+        print(f"# {rows.size} of {mass.size} masses (--all prints every one); eps: epsilon_max, "
+              "'-': not constrained")
+    else:
+        print("# eps: epsilon_max, '-': not constrained")
+    width = 11 if len(columns) <= 8 else 9
+    print("#" + " ".join(f"{name[:width]:>{width}}" for name in columns)[1:])
+    for k in rows:
+        cells = [f"{values[k]:.{3 if width == 9 else 4}e}" if np.isfinite(values[k]) else "-"
+                 for values in columns.values()]
+        print(" ".join(f"{cell:>{width}}" for cell in cells))
+
+
+def _short(name):
+    """A column name's curve part that fits a narrow column (sightline_p16 -> p16)."""
+    return {"background": "homog", "anisotropy": "sky"}.get(name, name.replace("sightline_", ""))

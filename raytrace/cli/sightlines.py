@@ -2,7 +2,7 @@
 
 import numpy as np
 
-from ..runfile import SIGHTLINE_OPTIONS, add_flags, settings
+from ..runfile import SIGHTLINE_OPTIONS, VOCABULARY, add_flags, settings
 
 NAME = "sightlines"
 HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
@@ -54,18 +54,28 @@ def cluster_executor(values):
     return DaskExecutor(scheduler, workers=values["rays.workers"], numba_threads=values["rays.jobs"])
 
 
+def note_without_outputs(command, values, keys):
+    """Say on stderr that a run asked for no output file: it printed a summary and saved nothing."""
+    import sys
+
+    if not any(values[key] for key in keys):
+        flags = ", ".join(next(o.flag for o in VOCABULARY.values() if o.key == key) for key in keys)
+        print(f"raytrace {command}: note: no output file requested ({flags}): the summary above is all "
+              "this run kept", file=sys.stderr)
+
+
 def run(args):
+    from ..companions import check_outputs, owner_name
     from ..engine import cast_sightlines
-    from ..provenance import check_writable
     from ..results import HDF5Backend, MemoryBackend
 
     values = settings(args, SIGHTLINE_OPTIONS)
     output = values["output.path"]
     plot = values["output.plot"]
+    check_outputs({plot: "--plot (TOML output.plot)"}, values["output.overwrite"], output)
     if plot:
         from ..plots import check_figure_path
 
-        check_writable(plot, values["output.overwrite"])
         check_figure_path(plot, "--plot (TOML output.plot)")
     series = load_boxes(values)
     mass = masses(values)
@@ -88,9 +98,10 @@ def run(args):
         plt = _pyplot()
         figure, ax = plt.subplots(figsize=(6.4, 4.4))
         kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
-        save_figure(figure, plot, overwrite=values["output.overwrite"])
+        save_figure(figure, plot, overwrite=values["output.overwrite"], owner=owner_name(output))
         plt.close(figure)
         print(f"plot: {plot}")
+    note_without_outputs("sightlines", values, ("output.path", "output.plot"))
     return 0
 
 

@@ -3,7 +3,7 @@
 import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, observed_energy
+from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy
 
 NAME = "sky"
 HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
@@ -15,23 +15,22 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..plots import check_figure_path
-    from ..provenance import check_writable
+    from ..companions import check_outputs, owner_name
+    from ..plots import check_figure_path, shown_mass_index
     from ..results import HDF5Backend, MemoryBackend
     from ..sky import anisotropy_limit, cast_sky, read_cl_limits
 
     values = settings(args, SKY_OPTIONS)
     overwrite = values["output.overwrite"]
-    for key in ("output.fits", "output.plot"):
-        if values[key]:
-            check_writable(values[key], overwrite)
+    output = values["output.path"]
+    check_outputs({values["output.fits"]: "--fits (TOML output.fits)", values["output.plot"]: "--plot (TOML output.plot)"},
+                  overwrite, output)
     if values["output.plot"]:
         check_figure_path(values["output.plot"], "--plot (TOML output.plot)")
     cl_limits = read_cl_limits(values["anisotropy.cl_limits"]) if values["anisotropy.cl_limits"] else None
     series = load_boxes(values)
     mass = masses(values)
     omega0 = observed_energy(values)
-    output = values["output.path"]
     backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
     with cluster_executor(values) as executor:
         sky = cast_sky(
@@ -39,32 +38,30 @@ def run(args):
             rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
-            randomise_copies=values["sky.randomise_copies"], batch_pixels=values["sky.batch_pixels"],
+            randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
             backend=backend, progress=True, executor=executor,
         )
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
-    print_summary(sky, limit, values["anisotropy.threshold"], omega0)
+    shown = shown_mass_index(sky, values["output.mass_eV"])
+    print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
     if output:
         print(f"result: {output}")
+    owner = owner_name(output)
     if values["output.fits"]:
-        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"],
-                       omega0_eV=omega0, overwrite=overwrite)
-        print(f"maps: {values['output.fits']}")
+        # The shown mass first: healpy.read_map gives it by default.
+        order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
+        sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
+                       omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        print(f"maps: {values['output.fits']} (first map: m = {sky.mass_eV[shown]:.4g} eV)")
     if values["output.plot"]:
-        sky.plot_mollweide(most_varied_mass(sky), values["output.plot"], epsilon=values["output.epsilon"],
-                           omega0_eV=omega0, overwrite=overwrite)
+        sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
+                           omega0_eV=omega0, overwrite=overwrite, owner=owner)
         print(f"plot: {values['output.plot']}")
+    note_without_outputs("sky", values, ("output.path", "output.fits", "output.plot"))
     return 0
 
 
-def most_varied_mass(sky):
-    """The grid mass whose map varies most from pixel to pixel (relative rms)."""
-    mean = sky.kernel.mean(axis=0)
-    spread = np.where(mean > 0, sky.kernel.std(axis=0) / np.where(mean > 0, mean, 1.0), 0.0)
-    return float(sky.mass_eV[int(np.argmax(spread))])
-
-
-def print_summary(sky, limit, threshold, omega0):
+def print_summary(sky, limit, threshold, omega0, shown):
     from ..spread import robust_spread, sky_rms_interval
 
     mean = sky.kernel.mean(axis=0)
@@ -94,3 +91,6 @@ def print_summary(sky, limit, threshold, omega0):
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
           "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
     _warn_spread(sky)
+    resonating = (sky.crossings[:, shown] > 0).mean()
+    print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "
+          "(--mass chooses; default: the middle of the masses resonating in most pixels)")
