@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import RaytraceWarning, require_positive_finite
+from .errors import InputError, RaytraceWarning, require_positive_finite
 from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
                      same_mass_grid, sightline_limits)
 from .crosscheck import warn_differences
@@ -44,7 +44,8 @@ _LEGEND_ROOM = 0.3
 
 
 def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, spectrum=None, confidence=0.95,
-                overwrite=False, fit_galaxy=False, threshold=None, cl_limits=None, plasma=None, mass_eV=None):
+                overwrite=False, fit_galaxy=False, threshold=None, cl_limits=None, plasma=None, mass_eV=None,
+                kinds=KINDS):
     """Write the one-page report of a run: ``<path_stem>.png``, ``.pdf`` and ``.txt``.
 
     ``sightlines``, ``sky``: result objects or their HDF5 files. ``epsilon``
@@ -56,10 +57,13 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     the MeanPlasma of the homogeneous comparison (default CAMB, Planck 2018).
     ``mass_eV``: the sky map's mass (default: :func:`raytrace.plots.shown_mass_index`,
     the rule the sky figure follows). A sky from another set-up (boxes, masses,
-    history, seed) is warned about, one line per difference.
-    Returns a dict kind -> path.
+    history, seed) is warned about, one line per difference. ``kinds``: which of
+    png, pdf and txt to write. Returns a dict kind -> path.
     """
-    paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS}
+    unknown = set(kinds) - set(KINDS)
+    if unknown or not kinds:
+        raise InputError(f"kinds (--formats): expected some of {', '.join(KINDS)}, got {', '.join(kinds) or 'none'}")
+    paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS if kind in kinds}
     for path in paths.values():  # refuse before any work
         check_writable(path, overwrite)
     result = _load(sightlines, SightlineResult)
@@ -80,14 +84,15 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     plt = _pyplot()
     figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
     try:
-        for kind in ("png", "pdf"):
+        for kind in [kind for kind in ("png", "pdf") if kind in paths]:
             # Not plots.save_figure: a page keeps its size (no tight bounding box).
             with atomic_output(paths[kind], overwrite) as temporary:
                 figure.savefig(temporary, format=kind, dpi=DPI)
     finally:
         plt.close(figure)
-    with atomic_output(paths["txt"], overwrite) as temporary:
-        temporary.write_text(text)
+    if "txt" in paths:
+        with atomic_output(paths["txt"], overwrite) as temporary:
+            temporary.write_text(text)
     return paths
 
 

@@ -392,3 +392,12 @@ def test_limit_plot_legend_lists_only_curves_it_draws():
     labels = [text.get_text() for text in ax.get_legend().get_texts()]
     drawn = [curve.label for curve in limits.all_curves() if np.isfinite(curve.epsilon_max).any()]
     assert labels == drawn and len(drawn) < len(limits.all_curves())
+
+
+def test_report_writes_only_the_formats_asked_for(runs, tmp_path, capsys):
+    stem = tmp_path / "only"
+    status, out, err = run_cli(capsys, "report", runs["lines"], "--output", stem, "--formats", "txt")
+    assert status == 0, err
+    assert sorted(path.name for path in tmp_path.iterdir()) == ["only.txt"]
+    status, _, err = run_cli(capsys, "report", runs["lines"], "--output", stem, "--formats", "gif")
+    assert status == 2 and "--formats" in err

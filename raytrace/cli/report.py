@@ -18,7 +18,9 @@ HELP = ("One page (PNG and PDF) and a text summary of a sightline run: the kerne
 def add_arguments(parser):
     parser.add_argument("result", metavar="RESULT.h5", help="sightline result (raytrace sightlines --output)")
     parser.add_argument("--output", required=True, metavar="STEM",
-                        help="write STEM.png, STEM.pdf and STEM.txt")
+                        help="write STEM.png, STEM.pdf and STEM.txt (those of --formats)")
+    parser.add_argument("--formats", default="png,pdf,txt", metavar="LIST",
+                        help="which of png, pdf, txt to write, comma-separated (default: png,pdf,txt)")
     add_option(parser, "output.epsilon", type=float,
                help="kinetic mixing: show P = epsilon^2 K / omega_0 and the sky's dT/T instead of K")
     add_spectrum_arguments(parser)
@@ -39,14 +41,16 @@ def run(args):
     # --frequency is also the photon energy of P with --epsilon.
     refuse_unused_sky_options(args, ("--isotropy-threshold", "--cl-limits", "--mass") if args.epsilon is not None else
                               ("--frequency", "--isotropy-threshold", "--cl-limits", "--mass"))
-    for kind in KINDS:  # refuse before any work
-        check_writable(f"{args.output}.{kind}", args.overwrite)
+    kinds = tuple(kind.strip() for kind in args.formats.split(",") if kind.strip())
+    for kind in kinds:  # refuse before any work
+        if kind in KINDS:
+            check_writable(f"{args.output}.{kind}", args.overwrite)
     with flags_named():
         paths = make_report(
             args.result, args.output, sky=args.sky, epsilon=args.epsilon, omega0_eV=photon_energy_from_args(args),
             spectrum=read_spectrum(args.spectrum), confidence=args.confidence, overwrite=args.overwrite,
             fit_galaxy=args.fit_galaxy, threshold=args.isotropy_threshold, cl_limits=args.cl_limits, mass_eV=args.mass,
-            plasma=MeanPlasma(None, ionisation_from_args(args)),
+            plasma=MeanPlasma(None, ionisation_from_args(args)), kinds=kinds,
         )
     for kind, path in paths.items():
         print(f"{kind}: {path}")
