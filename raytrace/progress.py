@@ -1,14 +1,12 @@
 """Signs of life for long runs: the numba compile notice and the size of a progress step.
 
-In: the kernels package, a batch of rows. Out: whether the ray kernels still have
-to be compiled (neither in memory nor in numba's on-disk cache), a one-line
-notice with the time the compilation took, and how many rows one progress step
-traces (a few per thread, so a bar moves per small group of rays, not per
-checkpoint batch).
+In: the kernels package, a batch of rows. Out: a notice while the ray kernels
+compile (numba, on the first run; later runs load them from its cache) and a
+line with the time it took, and how many rows one progress step traces (a few
+per thread, so a bar moves per small group of rays, not per checkpoint batch).
 """
 
 import importlib
-import os
 import pkgutil
 import sys
 import time
@@ -32,32 +30,33 @@ def _dispatchers():
     return found
 
 
-def _cached_on_disk(dispatcher):
-    try:
-        return os.path.exists(dispatcher._cache._cache_file._index_path)
-    except AttributeError:  # a numba without this layout, or a kernel without cache=True: cannot tell
-        return True
-
-
-def needs_compiling():
-    """True when some tracing kernel is neither compiled in this process nor in numba's cache."""
-    return any(not d.signatures and not _cached_on_disk(d) for d in _dispatchers())
-
-
 def _misses():
     return sum(sum(d.stats.cache_misses.values()) for d in _dispatchers())
 
 
+#: Seconds the first traced rows may take before the notice says the kernels are compiling.
+NOTICE_AFTER_S = 1.0
+
+
 @contextmanager
 def compile_notice(enabled, write=None):
-    """Around the first traced rows: say the kernels are compiling (when they must) and, after, how long it took."""
+    """Around the first traced rows of a process: when they take long, say the kernels are compiling,
+    and when numba did compile (a cache miss), say how long it took; silent when loaded from the cache."""
+    import threading
+
     write = write or (lambda text: print(text, file=sys.stderr))
-    if not enabled or not needs_compiling():
+    if not enabled or all(d.signatures for d in _dispatchers()):
         yield
         return
-    write("raytrace: compiling the ray kernels (first run only: numba caches them for later runs) ...")
     before, start = _misses(), time.perf_counter()
-    yield
+    timer = threading.Timer(NOTICE_AFTER_S, write,
+                            ("raytrace: compiling the ray kernels (first run only: numba caches them) ...",))
+    timer.daemon = True
+    timer.start()
+    try:
+        yield
+    finally:
+        timer.cancel()
     if _misses() > before:
         write(f"raytrace: compiled the ray kernels in {time.perf_counter() - start:.1f} s")
 
