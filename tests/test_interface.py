@@ -53,7 +53,7 @@ def test_every_help_lists_the_default_of_every_option_that_has_one():
         for action in visible_options(parser):
             # Run-file commands keep argparse's default None (the run file's value stands): the schema has it.
             default = schema[action.dest].default if action.dest in schema else action.default
-            if default in (None, False, (), []):
+            if default is None or default is False or (isinstance(default, (tuple, list)) and not default):
                 continue
             assert "default" in action.help, f"raytrace {name} {action.option_strings[0]}: no default in its help"
             assert _flat(action.help) in shown
