@@ -81,8 +81,8 @@ def test_one_flag_and_one_metavar_per_concept_in_every_subcommand():
                 assert flag not in old_spellings or vocabulary_by_flag.get(flag), (name, flag)
                 metavars.setdefault(flag, set()).add(str(action.metavar))
                 option = vocabulary_by_flag.get(flag)
-                # Box options: inspect takes lists (several datasets, a redshift per file) where the run-file
-                # schema takes one value; their unification is the box options' own issue.
+                # Box options: the schema takes one value or a list per file ("Z[,Z...]") where grid, which
+                # writes one box, takes one value ("Z"); same flag and concept, the list marks differ.
                 if (option is not None and option.kind is not bool and not option.key.startswith("boxes.")
                         and flag != "--output"):
                     assert action.metavar == runfile._metavar(option), (name, flag, action.metavar)
@@ -318,7 +318,7 @@ def test_grid_warns_when_more_than_a_tenth_of_the_cells_are_empty(tmp_path, caps
     box = tmp_path / "box.h5"
     status, out, err = run_cli(capsys, "grid", particles, "--cells", "16", "--positions", "pos", "--position-unit",
                                "cMpc", "--box-size", "5 cMpc", "--redshift", "1", "--masses", "m", "--mass-unit",
-                               "Msun", "--electron-abundance", "1", "--method", "cic", "--output", box)
+                               "Msun", "--ionised-fraction", "1", "--method", "cic", "--output", box)
     assert status == 0, err
     with h5py.File(box, "r") as handle:
         empty = np.mean(handle["electron_density"][...] == 0)  # counted from the file
