@@ -107,14 +107,14 @@ class PdfMean:
         import h5py
 
         from .provenance import atomic_output
-        from .results import _check_finite, _write_header
+        from .results import _check_finite, _describe, _write_header
 
         with atomic_output(path, overwrite=overwrite) as temporary:
             with h5py.File(temporary, "w") as handle:
                 _write_header(handle, FORMAT, self.mass_eV, self.run)
                 for name in ("kernel_boxes", "kernel_background", "error"):
                     handle[name] = getattr(self, name)
-                    handle[name].attrs["unit"] = "eV"
+                    _describe(handle[name], f"pdf_mean/{name}", FORMAT)
                 handle.attrs["complete"] = True
                 _check_finite(handle, path)
         return path

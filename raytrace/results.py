@@ -52,6 +52,9 @@ DATASETS = {
     "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
     "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
     "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+    "pdf_mean/kernel_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per mass, over the run's redshifts"),
+    "pdf_mean/kernel_background": ("eV", "the homogeneous background's kernel per mass in the one-point-PDF mean"),
+    "pdf_mean/error": ("eV", "error estimate of the one-point-PDF mean of the boxes' kernel per mass"),
 }
 # Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
 # a sky's are means over a pixel's rays).
@@ -240,6 +243,8 @@ def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attr
                 from .meancheck import write_pdf_check
 
                 write_pdf_check(handle, source.pdf_check)
+                for name in handle["pdf_mean"]:
+                    _describe(handle["pdf_mean"][name], f"pdf_mean/{name}", format_name)
             if "dispersion_measure_background" in attributes:
                 handle.attrs["dispersion_measure_background_unit"] = "pc cm^-3"
             handle.attrs["complete"] = True

@@ -6,14 +6,16 @@ HELP = ("Bootstrap intervals of std/mean (and, for a sky, of the dT/T rms and th
 
 
 def add_arguments(parser):
+    from ..runfile import add_option
+
     parser.add_argument("result", metavar="RESULT.h5", help="sightline or sky result file")
-    parser.add_argument("--resamples", type=int, default=1000, help="bootstrap resamples (default 1000)")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the bootstrap resamples (default 0)")
-    parser.add_argument("--level", type=float, default=0.68, help="level of the intervals (default 0.68)")
-    parser.add_argument("--frequency", default=None,
-                        help="observed photon frequency with a unit for a sky's dT/T (default k T_0)")
-    parser.add_argument("--isotropy-threshold", type=float, default=None, metavar="DT_T",
-                        help="the dT/T rms a sky map must stay below (default 1e-5)")
+    parser.add_argument("--resamples", type=int, default=1000, metavar="N", help="bootstrap resamples (default: 1000)")
+    add_option(parser, "rays.seed", default=0, type=int, help="seed of the bootstrap resamples")
+    parser.add_argument("--level", type=float, default=0.68, metavar="X", help="level of the intervals (default: 0.68)")
+    add_option(parser, "output.frequency", help="observed photon frequency or energy with a unit for a sky's dT/T "
+               "(default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)")
+    add_option(parser, "anisotropy.threshold", shown="1e-05", type=float,
+               help="the dT/T rms a sky map must stay below (CMB isotropy ~1e-5)")
 
 
 def run(args):
