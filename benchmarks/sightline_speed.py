@@ -196,7 +196,7 @@ def main():
     rate_user = args.rays * cells_per_ray / t_user
     reference = np.maximum(half_result["kernel_boxes"].max(axis=0), 1e-300)
     agreement = np.max(np.abs(user_kernel - half_result["kernel_boxes"]) / reference)
-    (rate_exact, cpu_exact), (rate_half, cpu_half), (rate_two, _) = rates["a"], rates["b"], rates["d"]
+    (rate_exact, cpu_exact), (rate_half, cpu_half), (rate_two, cpu_two) = rates["a"], rates["b"], rates["d"]
 
     print(f"(a) exact engine, 1 thread:               {rate_exact / 1e6:8.3f} M cells/s "
           f"({cpu_exact / 1e6:.3f} per CPU second)")
@@ -208,7 +208,10 @@ def main():
     print(f"ratios: a/b = {rate_exact / rate_half:.2f} (target >= 1, aim 2), a/c = {rate_exact / rate_user:.2f}, "
           f"d = {rate_two / rate_exact:.2f} (target >= 1.8)")
     # On a shared machine a neighbour's load takes wall time from (d) above all; say how busy it was.
-    print(f"by CPU time: a/b = {cpu_exact / cpu_half:.2f}; load average {load_before:.2f} before the timings, "
+    # CPU seconds per cell on 2 threads against 1: near 1 when threading adds no work (no
+    # spinning, no false sharing), the part of d that a busy machine cannot hide.
+    print(f"by CPU time: a/b = {cpu_exact / cpu_half:.2f}, CPU per cell 2 threads / 1 thread = "
+          f"{cpu_exact / cpu_two:.2f}; load average {load_before:.2f} before the timings, "
           f"{os.getloadavg()[0]:.2f} after, on {os.cpu_count()} cores")
     if args.compare_rays:
         compare_means(exact, half_cell, mass, args.compare_rays)
