@@ -157,7 +157,7 @@ def test_summary_table_holds_the_limits(report_paths, stored):
     assert len(rows) >= 3 and all(len(row) == 9 for row in rows)
     for row in rows:
         k = int(np.argmin(np.abs(mass / float(row[0]) - 1)))
-        assert float(row[0]) == pytest.approx(mass[k], rel=1e-3)
+        assert float(row[0]) == pytest.approx(mass[k], rel=1e-3, abs=0)
         assert float(row[1]) == pytest.approx(stored["kernel"][:, k].mean(), rel=1e-3)
         assert float(row[2].rstrip("%")) == pytest.approx(100 * boxes_share[k], abs=0.05)
         assert float(row[3].rstrip("%")) == pytest.approx(100 * np.mean(stored["crossings"][:, k] > 0), abs=0.05)
