@@ -258,12 +258,17 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
 
     Batches the backend already holds (a resumed checkpoint) are skipped; the rest
     run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
-    written to the backend as it completes.
+    written to the backend as it completes. The box files must not change meanwhile:
+    their size and modification time are compared after every batch, their
+    checksums once at the end (InputError naming the file).
     """
     from tqdm.auto import tqdm
 
+    from .provenance import InputWatch
+
     if executor is not None and hasattr(executor, "prepare"):
         executor.prepare(tracer)
+    watch = InputWatch([(box.path, box.checksum) for box in tracer.boxes if box.path is not None])
     starts = list(range(0, n_rows, batch_size))
     backend.open(mass, n_rows, run, len(starts), layout, format_name)
     done = backend.completed_batches()
@@ -273,13 +278,17 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
         if executor is None:
             with numba_threads(n_jobs):
                 for b, start, stop in todo:
-                    backend.write_batch(b, start, tracer.trace(range(start, stop)))
+                    arrays = tracer.trace(range(start, stop))
+                    watch.quick()  # before the write: a batch that read a changed box is never stored
+                    backend.write_batch(b, start, arrays)
                     bar.update(stop - start)
         else:
             finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):
+                watch.quick()
                 backend.write_batch(b, start, arrays)
                 bar.update(finished[b])
+    watch.final()
     return backend.read()
 
 

@@ -17,6 +17,10 @@ class InputError(RaytraceError, ValueError):
     """
 
 
+class WriteError(InputError):
+    """The machine refused a write (full disk, quota, I/O error); the message names the file and the free space."""
+
+
 class RaytraceWarning(UserWarning):
     """Something in a run the user should know about; the run's results are still valid."""
 
