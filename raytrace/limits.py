@@ -16,6 +16,7 @@ curve has ``name`` (an identifier for table columns), ``label`` (legend text),
 ``metadata()`` (dict of scalars).
 """
 
+import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -23,7 +24,7 @@ from pathlib import Path
 import numpy as np
 from scipy import stats
 
-from .errors import InputError, require_positive_finite
+from .errors import InputError, require_number, require_positive_finite
 from .provenance import atomic_output, hdf5_image, provenance_json
 from .spectrum import planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
 from .units import CMB_PHOTON_ENERGY_EV, CMB_TEMPERATURE_K
@@ -47,12 +48,23 @@ class PoorFitWarning(UserWarning):
     """The blackbody fit of the spectrum is too poor for its errors to mean anything."""
 
 
+def as_spectrum(spectrum):
+    """A Spectrum from a Spectrum, a table's path, or None (the shipped FIRAS table)."""
+    from .spectrum import Spectrum
+
+    if spectrum is None or isinstance(spectrum, (str, os.PathLike)):
+        return read_spectrum(spectrum)
+    if not isinstance(spectrum, Spectrum):
+        raise InputError(f"spectrum: expected a Spectrum, a table's path or None, got {spectrum!r}")
+    return spectrum
+
+
 def delta_chi2(confidence):
     """Delta chi^2 of a one-sided upper limit at ``confidence``: chi2.ppf(2 CL - 1, 1) = Phi^-1(CL)^2.
 
     2.71 at 95 %, 5.41 at 99 %.
     """
-    confidence = float(confidence)
+    confidence = require_number(confidence, "confidence", expected="a value between 0.5 and 1 (e.g. 0.95)")
     if not 0.5 < confidence < 1.0:
         raise InputError(f"confidence: expected a value between 0.5 and 1 (e.g. 0.95), got {confidence!r}")
     return float(stats.chi2.ppf(2.0 * confidence - 1.0, df=1))
@@ -182,7 +194,7 @@ def spectral_limit(mass_eV, kernel_eV, spectrum=None, confidence=0.95, fit_galax
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
     kernel = _kernel_array(kernel_eV, mass, name)
     threshold = delta_chi2(confidence)
-    spectrum = read_spectrum() if spectrum is None else spectrum
+    spectrum = as_spectrum(spectrum)
     fit = _distortion_fit(spectrum, fit_galaxy)
     # The limit assumes the model fits; judge it with the distortion free (a real one must not warn).
     best_chi2 = fit["chi2"] - (fit["q_hat"] / fit["q_sigma"]) ** 2
@@ -226,7 +238,7 @@ def sightline_limits(mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, sprea
     (CAMB, Planck 2018). Returns a :class:`LimitSet`.
     """
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
-    spectrum = read_spectrum() if spectrum is None else spectrum
+    spectrum = as_spectrum(spectrum)
     if background_kernel_eV is None:
         from .background import background_kernel
 

@@ -22,9 +22,12 @@ def load_boxes(values):
 
 
 def masses(values):
+    from ..engine import check_run_memory
+
     low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
     if not low < high and count > 1:
         raise InputError(f"masses: expected min_eV < max_eV, got {low:g} and {high:g}")
+    check_run_memory(1, count, "--mass-count (TOML masses.count)")  # the grid alone, before it is made
     return np.geomspace(low, high, count)
 
 
