@@ -27,7 +27,7 @@ import threading
 import time
 import warnings
 
-from .errors import InputError, RaytraceWarning
+from .errors import InputError, RaytraceWarning, require_number
 
 _WHAT = "scheduler (--scheduler, TOML rays.scheduler)"
 _WAIT_S = 30.0     # seconds without a worker (or any finished batch) before saying so
@@ -118,11 +118,13 @@ class DaskExecutor:
         distributed = _distributed()
         if not isinstance(scheduler, (str, distributed.Client)) or scheduler == "":
             raise InputError(f"{_WHAT}: expected a scheduler address or 'local', got {scheduler!r}")
-        for name, value in (("workers", workers), ("max_in_flight", max_in_flight)):
-            if value is not None and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
-                raise InputError(f"{name}: expected a whole number >= 1, got {value!r}")
-        if isinstance(numba_threads, bool) or not isinstance(numba_threads, int) or not (numba_threads >= 1 or numba_threads == -1):
-            raise InputError(f"numba_threads: expected a whole number >= 1 or -1 (all cores), got {numba_threads!r}")
+        workers, max_in_flight = (None if value is None else require_number(value, name, whole=True, at_least=1)
+                                  for name, value in (("workers", workers), ("max_in_flight", max_in_flight)))
+        numba_threads = require_number(numba_threads, "numba_threads", whole=True, at_least=-1,
+                                       expected="a whole number >= 1 or -1 (all cores)")
+        if numba_threads == 0:
+            raise InputError("numba_threads: expected a whole number >= 1 or -1 (all cores), got 0")
+        connect_timeout = require_number(connect_timeout, "connect_timeout", above=0)
         if workers is not None and scheduler != "local":
             raise InputError(f"workers (--workers, TOML rays.workers): sizes a local cluster only (--scheduler local), "
                              f"not the cluster at {scheduler!r}")

@@ -85,6 +85,15 @@ def check_run_memory(n_rows, n_masses, what):
                          f"{total / 1e9:.3g} GB of memory; ask for fewer")
 
 
+def check_background(plasma):
+    """The run's MeanPlasma (None: CAMB with Planck 2018), checked."""
+    if plasma is None:
+        return MeanPlasma()
+    if not isinstance(plasma, MeanPlasma):
+        raise InputError(f"plasma: expected a raytrace.MeanPlasma or None (the default), got {plasma!r}")
+    return plasma
+
+
 def check_masses(mass_eV):
     """Positive, finite, strictly increasing masses as a float array."""
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
@@ -350,7 +359,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     n_rays = require_number(n_rays, "n_rays", whole=True, at_least=1)
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
     check_run_memory(n_rays, mass.size, "n_rays and mass_eV (--rays, --mass-count)")
-    plasma = plasma if plasma is not None else MeanPlasma()
+    plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {
         "raytrace": __version__,

@@ -68,14 +68,21 @@ def require_path(value, name):
     return Path(value)
 
 
+def float_array(values, name):
+    """``values`` as a float numpy array, or InputError naming ``name`` (strings, objects, ragged lists)."""
+    import numpy as np
+
+    try:
+        return np.asarray(values, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError(f"{name}: expected numbers, got {values!r}") from None
+
+
 def require_positive_finite(values, name):
     """Return ``values`` as a float array, or raise InputError naming ``name``."""
     import numpy as np
 
-    try:
-        array = np.asarray(values, dtype=float)
-    except (TypeError, ValueError):
-        raise InputError(f"{name}: expected numbers, got {values!r}") from None
+    array = float_array(values, name)
     if array.size == 0:
         raise InputError(f"{name}: expected at least one value, got none")
     bad = ~np.isfinite(array) | (array <= 0)

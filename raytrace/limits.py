@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 from scipy import stats
 
-from .errors import InputError, require_number, require_positive_finite
+from .errors import InputError, float_array, require_number, require_positive_finite
 from .provenance import atomic_output, hdf5_image, provenance_json
 from .spectrum import planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
 from .units import CMB_PHOTON_ENERGY_EV, CMB_TEMPERATURE_K
@@ -445,7 +445,7 @@ def plot_limits(target, limits, overwrite=False, title=None):
 
 
 def _kernel_array(kernel_eV, mass, name):
-    kernel = np.asarray(kernel_eV, dtype=float)
+    kernel = float_array(kernel_eV, f"{name}: kernel_eV")
     kernel = np.full(mass.shape, float(kernel)) if kernel.ndim == 0 else kernel.ravel()
     if kernel.shape != mass.shape:
         raise InputError(f"kernel_eV ({name}): expected {mass.size} values, one per mass, got {kernel.size}")

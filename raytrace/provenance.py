@@ -210,12 +210,13 @@ def hdf5_image(path):
 
 
 @contextmanager
-def atomic_output(path, overwrite=False):
+def atomic_output(path, overwrite=False, at_once=False):
     """Yield a temporary path beside ``path``; rename it onto ``path`` on success.
 
     On any exception the temporary file is removed and ``path`` is untouched; a
     refused write (full disk, I/O error) becomes an InputError naming ``path`` and
-    the free space. Inside :func:`output_set` the rename waits for the whole set.
+    the free space. Inside :func:`output_set` the rename waits for the whole set,
+    unless ``at_once`` (a checkpoint, which the run needs while it goes on).
     """
     path = Path(path)
     check_writable(path, overwrite)
@@ -230,7 +231,7 @@ def atomic_output(path, overwrite=False):
         umask = os.umask(0)
         os.umask(umask)
         os.chmod(temporary, 0o666 & ~umask)
-        pending = _OUTPUT_SET.get()
+        pending = None if at_once else _OUTPUT_SET.get()
         if pending is not None:
             pending.pending.append((temporary, path))
             return

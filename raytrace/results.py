@@ -22,7 +22,7 @@ import h5py
 import numpy as np
 
 from .conversion import probability_from_kernel
-from .errors import InputError, RaytraceWarning, WriteError
+from .errors import InputError, RaytraceWarning, WriteError, require_path
 from .provenance import (after_outputs, atomic_output, check_writable, hdf5_image, is_write_failure, output_folder,
                          provenance_json, write_failure)
 
@@ -219,7 +219,7 @@ class open_result:
     """Context manager opening a complete result file of ``format_name``, with clear errors."""
 
     def __init__(self, path, format_name, what):
-        self.path, self.format_name, self.what = Path(path), format_name, what
+        self.path, self.format_name, self.what = require_path(path, f"{what} result path"), format_name, what
 
     def __enter__(self):
         if not self.path.exists():
@@ -318,7 +318,7 @@ class HDF5Backend:
     """
 
     def __init__(self, path, resume=False, overwrite=False):
-        self.path = Path(path)
+        self.path = require_path(path, "path (--output)")
         self.checkpoint = self.path.with_name(self.path.name + ".partial")
         self.resume = resume
         self.overwrite = overwrite
@@ -357,7 +357,7 @@ class HDF5Backend:
         allocate.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
         allocate.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
         shapes = {name: shape(n_rows, mass_eV.size) for name, (shape, _) in self.layout.items()}
-        with atomic_output(self.checkpoint, overwrite=True) as temporary:
+        with atomic_output(self.checkpoint, overwrite=True, at_once=True) as temporary:
             with h5py.File(temporary, "w") as handle:
                 _write_header(handle, format_name, mass_eV, run)
                 handle.attrs["header_sha256"] = _header_digest(handle.attrs["run"], shapes)

@@ -24,11 +24,10 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .background import MeanPlasma
 from .constants import K_BOLTZMANN_EV_K
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
-                     check_masses, check_no_other_options, check_run_memory, check_seed, check_trace_options,
-                     run_batches, warn_outside_probed_range)
+                     check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
+                     check_trace_options, run_batches, warn_outside_probed_range)
 from .errors import InputError, require_number
 from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
@@ -139,11 +138,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     seed = check_seed(seed)
     nside = _check_nside(nside)
     level = _sub_pixel_level(rays_per_pixel)
-    if ordering not in ORDERINGS:
+    if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
     check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
-    plasma = plasma if plasma is not None else MeanPlasma()
+    plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
     run = {

@@ -240,7 +240,8 @@ def test_an_existing_output_is_replaced_only_with_overwrite(workspace, reference
     output.write_bytes(b"an earlier result")
     assert main(arguments(run_file, output)) == 2
     message = capsys.readouterr().err.strip().splitlines()[-1]
-    assert message == f"raytrace sightlines: error: {output}: output exists; pass --overwrite (overwrite=True) to replace it"
+    assert message == (f"raytrace sightlines: error: --output (TOML output.path): {output}: output exists; "
+                       "pass --overwrite (overwrite=True) to replace it")
     assert output.read_bytes() == b"an earlier result"
     assert not output.with_name(output.name + ".partial").exists()
 
