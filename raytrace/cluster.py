@@ -202,7 +202,10 @@ class DaskExecutor:
             top_up()
             quiet_since = time.monotonic()
             while where:
-                done, _ = distributed.wait(list(where), timeout=_WAIT_S, return_when="FIRST_COMPLETED")
+                try:
+                    done, _ = distributed.wait(list(where), timeout=_WAIT_S, return_when="FIRST_COMPLETED")
+                except TimeoutError:
+                    done = ()
                 if not done:
                     if not client.nthreads():
                         self._say_waiting(quiet_since)
