@@ -141,8 +141,10 @@ class DaskExecutor:
         if isinstance(self.scheduler, distributed.Client):
             self.client = self.scheduler
         elif self.scheduler == "local":
-            cluster = distributed.LocalCluster(n_workers=self.workers or os.cpu_count(), threads_per_worker=1,
-                                               processes=True)
+            # Started empty and then scaled: a worker that dies while starting is replaced in the
+            # background instead of failing the cluster's start (LocalCluster(n_workers=...) raises).
+            cluster = distributed.LocalCluster(n_workers=0, threads_per_worker=1, processes=True)
+            cluster.scale(self.workers or os.cpu_count())
             self._owned.append(cluster)
             self.client = distributed.Client(cluster)
             self._owned.insert(0, self.client)

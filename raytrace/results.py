@@ -323,8 +323,24 @@ class HDF5Backend:
         self.resume = resume
         self.overwrite = overwrite
 
+    def refuse_if_finished(self):
+        """With --resume, a result already in place beside its checkpoint means a kill came between the
+        final save and the checkpoint's removal: the run is done. Remove the leftover and say so."""
+        if not (self.resume and self.path.is_file() and self.checkpoint.is_file()):
+            return
+        try:
+            with h5py.File(self.path, "r") as result, h5py.File(self.checkpoint, "r") as checkpoint:
+                finished = bool(result.attrs.get("complete", False)) and result.attrs["run"] == checkpoint.attrs["run"]
+        except (OSError, KeyError):
+            return
+        if finished:
+            os.unlink(self.checkpoint)
+            raise InputError(f"{self.path}: this run is already complete (a kill after its final save left "
+                             f"{self.checkpoint.name}, now removed); nothing to resume")
+
     def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
         self.layout = layout
+        self.refuse_if_finished()
         check_writable(self.path, self.overwrite)
         if self.checkpoint.is_dir():
             raise InputError(f"{self.checkpoint}: is a folder where the run's checkpoint goes; move it away")

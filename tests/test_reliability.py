@@ -294,19 +294,24 @@ def test_workers_killed_early_and_mid_run_do_not_change_the_result(cluster_input
     files, mass, arguments, serial = cluster_inputs
 
     class KillingBackend(MemoryBackend):
-        """Kills a worker process as the run starts (before any batch is back) and another mid-run."""
+        """Kills a worker process as the run starts (the moment the executor has its workers,
+        before it sends them anything) and another mid-run."""
 
         def __init__(self, client):
             self.client, self.written, self.killed = client, 0, []
+            wait = client.wait_for_workers
+
+            def wait_then_kill(*arguments, **keywords):
+                wait(*arguments, **keywords)
+                if not self.killed:
+                    self.kill()
+
+            client.wait_for_workers = wait_then_kill
 
         def kill(self):
             address, pid = sorted(self.client.run(os.getpid).items())[len(self.killed) % 2]
             os.kill(pid, signal.SIGKILL)
             self.killed.append(address)
-
-        def open(self, *arguments):
-            super().open(*arguments)
-            self.kill()
 
         def write_batch(self, *batch):
             super().write_batch(*batch)
