@@ -94,7 +94,9 @@ def kill_and_resume(folder, reference, args, rng, max_delay):
     output = folder / "killed.h5"
     checkpoint = output.with_name(output.name + ".partial")
     landed, damaged, reported, between_save_and_cleanup = [], [], 0, []
-    for kill in range(args.kills):
+    kill = -1
+    while len(landed) < args.kills and kill < 3 * args.kills:  # until that many kills landed mid-run
+        kill += 1
         flags = ["--resume"] if checkpoint.exists() else []
         process = subprocess.Popen(command(folder, output, *flags), stdout=subprocess.DEVNULL,
                                    stderr=subprocess.PIPE, text=True)
@@ -123,13 +125,13 @@ def kill_and_resume(folder, reference, args, rng, max_delay):
             print(f"  kill {kill}: exit {process.returncode}: {stderr.strip().splitlines()[-1:]}")
             return False
         # Damage after args.corrupt of the landed kills, spread at random over the run.
-        needed, left = args.corrupt - len(damaged), args.kills - kill
+        needed, left = args.corrupt - len(damaged), args.kills - len(landed) + 1
         if needed > 0 and batches_done(checkpoint).size and rng.random() < max(needed / left, 0.15):
             damaged.append(damage_a_finished_batch(checkpoint, rng, args.batch))
     final = subprocess.run(command(folder, output, *(["--resume"] if checkpoint.exists() else [])),
                            capture_output=True, text=True)
     reported += final.stderr.count("fail their checksum")
-    print(f"  kills landed: {len(landed)} of {args.kills} (delay s, batches done): {landed}")
+    print(f"  kills landed mid-run: {len(landed)} in {kill + 1} starts (delay s, batches done): {landed}")
     print(f"  damaged batches: {damaged}; resumes that reported a checksum failure: {reported}; "
           f"kills between the final save and the checkpoint's removal: {len(between_save_and_cleanup)}")
     ok = final.returncode == 0 and same(output, reference) and reported >= len(damaged)
@@ -164,9 +166,8 @@ def cluster_with_worker_kills(folder, reference, args, rng):
         deadline = time.monotonic() + 60
         while process.poll() is None and time.monotonic() < deadline:
             workers = worker_processes(process.pid)
-            ready = len(workers) >= 2 and (moment == "first second"
-                                           or len(batches_done(output.with_name(output.name + ".partial")))
-                                           > args.rays // args.batch // 3)
+            done = len(batches_done(output.with_name(output.name + ".partial")))
+            ready = workers and (len(workers) >= 2 if moment == "first second" else done > args.rays // args.batch // 3)
             if ready:
                 if moment == "first second":
                     time.sleep(rng.uniform(0.0, 1.0))
