@@ -11,7 +11,6 @@ reported apart). Ray i draws its random numbers from a stream fixed by
 bit-identical for any ``n_jobs`` and ``batch_size``.
 """
 
-import math
 import os
 import warnings
 from contextlib import contextmanager
