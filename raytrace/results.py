@@ -12,6 +12,7 @@ finished batch with its checksum to a checkpoint file and flushes it, so that
 an interrupted run resumes from its complete, intact batches.
 """
 
+import errno
 import hashlib
 import json
 import os
@@ -304,6 +305,21 @@ def _header_digest(run_json, layout_shapes):
     return hashlib.sha256(json.dumps([run_json, layout_shapes], sort_keys=True).encode()).hexdigest()
 
 
+def _reserve_blocks(path):
+    """Reserve the disk blocks of ``path``'s holes (early allocation leaves a sparse file), so that a
+    full disk refuses the checkpoint when it is made and never a batch later. Where the system
+    cannot (no posix_fallocate, or a file system without it), a refused batch write still stops
+    the run cleanly."""
+    if not hasattr(os, "posix_fallocate"):
+        return
+    with open(path, "r+b") as raw:
+        try:
+            os.posix_fallocate(raw.fileno(), 0, os.fstat(raw.fileno()).st_size)
+        except OSError as error:
+            if error.errno not in (errno.EOPNOTSUPP, errno.EINVAL):
+                raise
+
+
 class HDF5Backend:
     """Appends each finished batch to ``<path>.partial`` and flushes it.
 
@@ -383,10 +399,7 @@ class HDF5Backend:
                 handle.create_dataset("batch_sha256", shape=(n_batches, 32), dtype=np.uint8, dcpl=allocate)
                 handle.create_dataset("batch_done", shape=(n_batches,), dtype=bool, dcpl=allocate)
                 handle["batch_done"][...] = False
-            # Early allocation leaves holes (a sparse file); reserve the blocks now, so
-            # that a full disk refuses the checkpoint here and never a batch later.
-            with open(temporary, "r+b") as raw:
-                os.posix_fallocate(raw.fileno(), 0, os.fstat(raw.fileno()).st_size)
+            _reserve_blocks(temporary)
 
     def _reopen(self, run):
         # Compared read-only first: a refused resume leaves the checkpoint's bytes as they were.
