@@ -58,10 +58,10 @@ def output_paths(values, keys):
     """The run's output paths among ``keys``, each checked before any work (all or nothing, see output_set)."""
     from ..provenance import check_writable
 
-    if values["output.path"]:
+    if values["output.path"] and values.get("output.resume"):
         from ..results import HDF5Backend
 
-        HDF5Backend(values["output.path"], resume=values["output.resume"]).refuse_if_finished()
+        HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
     paths = [values[key] for key in keys if values[key]]
     for key in keys:
         if values[key]:
