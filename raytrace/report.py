@@ -19,7 +19,7 @@ from .errors import RaytraceWarning, require_positive_finite
 from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
                      same_mass_grid, sightline_limits)
 from .plots import _pyplot, kernel_bands
-from .provenance import atomic_output, check_writable
+from .provenance import atomic_output, check_outputs, output_set
 from .results import SightlineResult
 from .sky import SkyResult
 from .spectrum import Spectrum, read_spectrum
@@ -56,8 +56,7 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     Returns a dict kind -> path.
     """
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS}
-    for path in paths.values():  # refuse before any work
-        check_writable(path, overwrite)
+    check_outputs(paths.values(), overwrite)  # refuse before any work
     result = _load(sightlines, SightlineResult)
     sky = None if sky is None else _load(sky, SkyResult)
     omega0 = CMB_PHOTON_ENERGY_EV if omega0_eV is None else float(require_positive_finite(omega0_eV, "omega0_eV"))
@@ -71,15 +70,16 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, threshold)
     plt = _pyplot()
     figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
-    try:
-        for kind in ("png", "pdf"):
-            # Not plots.save_figure: a page keeps its size (no tight bounding box).
-            with atomic_output(paths[kind], overwrite) as temporary:
-                figure.savefig(temporary, format=kind, dpi=DPI)
-    finally:
-        plt.close(figure)
-    with atomic_output(paths["txt"], overwrite) as temporary:
-        temporary.write_text(text)
+    with output_set(paths.values(), overwrite):  # the three files, or none
+        try:
+            for kind in ("png", "pdf"):
+                # Not plots.save_figure: a page keeps its size (no tight bounding box).
+                with atomic_output(paths[kind], overwrite) as temporary:
+                    figure.savefig(temporary, format=kind, dpi=DPI)
+        finally:
+            plt.close(figure)
+        with atomic_output(paths["txt"], overwrite) as temporary:
+            temporary.write_text(text)
     return paths
 
 

@@ -262,7 +262,10 @@ def read_csv(path):
     # Python's csv module, '#' lines being the header comments.
     with open(path, newline="") as handle:
         rows = list(csv.reader(line for line in handle if not line.startswith("#")))
-    return {name: np.array([float(row[i]) for row in rows[1:]]) for i, name in enumerate(rows[0])}
+    # Reason columns stay text; an empty number field (an unconstrained mass) reads as NaN here.
+    return {name: [row[i] for row in rows[1:]] if name.endswith("_unconstrained")
+            else np.array([float(row[i]) if row[i] else np.nan for row in rows[1:]])
+            for i, name in enumerate(rows[0])}
 
 
 def test_csv_table(tmp_path):
@@ -271,9 +274,17 @@ def test_csv_table(tmp_path):
     table = read_csv(path)
     assert np.allclose(table["mass_eV"], MASS, rtol=1e-9)
     for curve in limits.all_curves():
-        assert np.allclose(table[f"{curve.name}_epsilon_max"], curve.epsilon_max, rtol=1e-9)
-        assert np.allclose(table[f"{curve.name}_kernel_eV"], curve.kernel_eV, rtol=1e-9)
+        free = curve.kernel_eV == 0  # K = 0: epsilon unconstrained, fields empty and the reason given
+        assert np.allclose(table[f"{curve.name}_epsilon_max"][~free], curve.epsilon_max[~free], rtol=1e-9)
+        assert np.isnan(table[f"{curve.name}_epsilon_max"][free]).all()
+        assert np.allclose(table[f"{curve.name}_kernel_eV"][~free], curve.kernel_eV[~free], rtol=1e-9)
+        assert [bool(r) for r in table[f"{curve.name}_unconstrained"]] == free.tolist()
     assert "temperature_K" in path.read_text()
+    # Every number field is finite: float() would read 'inf' or 'nan' text as such (issue 14, item 6).
+    for curve in limits.all_curves():
+        free = curve.kernel_eV == 0
+        for key in curve.columns():
+            assert np.isfinite(table[f"{curve.name}_{key}"][~free]).all(), (curve.name, key)
     with pytest.raises(InputError, match="exists"):
         limit_table(path, limits)
     limit_table(path, limits, overwrite=True)
@@ -285,7 +296,12 @@ def test_hdf5_table(tmp_path):
     with h5py.File(path, "r") as handle:
         assert np.array_equal(handle["mass_eV"][...], MASS)
         for curve in limits.all_curves():
-            assert np.array_equal(handle[curve.name]["epsilon_max"][...], curve.epsilon_max)
+            free = curve.kernel_eV == 0
+            stored = handle[curve.name]["epsilon_max"]
+            assert np.array_equal(stored[...][~free], curve.epsilon_max[~free])
+            assert np.all(stored[...][free] == stored.attrs["_FillValue"])  # no inf or NaN stored
+            reasons = handle[curve.name]["unconstrained"].asstr()[...]
+            assert [bool(r) for r in reasons] == free.tolist()
             assert handle[curve.name].attrs["confidence"] == 0.95
         assert "sightline spread" in handle.attrs["provenance"]
     assert [p.name for p in tmp_path.iterdir()] == ["limits.h5"]  # no temporary left behind
@@ -361,7 +377,9 @@ def test_cli_homogeneous_limits(tmp_path, capsys, shared_data):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UnconstrainedMassWarning)
         expected = spectral_limit(mass, background_kernel(mass)).epsilon_max
-    assert np.allclose(table["background_epsilon_max"], expected, rtol=1e-9)
+    # Unconstrained masses (inf in memory) are empty fields in the table.
+    assert np.allclose(table["background_epsilon_max"], np.where(np.isinf(expected), np.nan, expected), rtol=1e-9,
+                       equal_nan=True)
     assert h5.exists() and png.exists()
     # Existing outputs are refused before any work, and replaced with --overwrite.
     with pytest.raises(InputError, match="exists"):

@@ -140,6 +140,7 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     :class:`~raytrace.limits.LimitSet`.
     """
     from ..limits import limit_table, plot_limits, sightline_limits
+    from ..provenance import output_set
     from ..spectrum import read_spectrum
 
     check_confidence(args)
@@ -151,10 +152,11 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     for curve in extra_curves:
         limits = limits.with_curve(curve)
     _print(limits)
-    for path in args.output:
-        limit_table(path, limits, overwrite=args.overwrite)
-    if args.plot:
-        plot_limits(args.plot, limits, overwrite=args.overwrite)
+    with output_set():  # all the tables and the plot, or none of them
+        for path in args.output:
+            limit_table(path, limits, overwrite=args.overwrite)
+        if args.plot:
+            plot_limits(args.plot, limits, overwrite=args.overwrite)
     return limits
 
 
@@ -196,11 +198,16 @@ def run(args):
 
 
 def _check_outputs(args):
-    """Refuse existing outputs before any work is done."""
-    from ..provenance import check_writable
+    """Refuse, before any work is done, outputs that exist, are folders, or cannot be made."""
+    from ..errors import InputError
+    from ..provenance import check_outputs
 
-    for path in (*args.output, *([args.plot] if args.plot else [])):
-        check_writable(path, args.overwrite)
+    for flag, paths in (("--output", args.output), ("--plot", [args.plot] if args.plot else [])):
+        try:
+            check_outputs(paths, args.overwrite)
+        except InputError as error:
+            raise InputError(f"{flag}: {error}") from None
+    check_outputs([*args.output, *([args.plot] if args.plot else [])], args.overwrite)
 
 
 def _print(limits):

@@ -2,7 +2,8 @@
 
 import numpy as np
 
-from ..runfile import SIGHTLINE_OPTIONS, add_flags, settings
+from ..errors import InputError
+from ..runfile import SIGHTLINE_OPTIONS, SKY_OPTIONS, add_flags, settings
 
 NAME = "sightlines"
 HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
@@ -21,11 +22,12 @@ def load_boxes(values):
 
 
 def masses(values):
-    from ..errors import InputError
+    from ..engine import check_run_memory
 
     low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
     if not low < high and count > 1:
         raise InputError(f"masses: expected min_eV < max_eV, got {low:g} and {high:g}")
+    check_run_memory(1, count, "--mass-count (TOML masses.count)")  # the grid alone, before it is made
     return np.geomspace(low, high, count)
 
 
@@ -41,8 +43,6 @@ def cluster_executor(values):
     """The dask executor of --scheduler, connected for the run (None, in a null context, without one)."""
     from contextlib import nullcontext
 
-    from ..errors import InputError
-
     scheduler = values["rays.scheduler"]
     if scheduler is None:
         if values["rays.workers"] is not None:
@@ -54,19 +54,53 @@ def cluster_executor(values):
     return DaskExecutor(scheduler, workers=values["rays.workers"], numba_threads=values["rays.jobs"])
 
 
-def run(args):
-    from ..engine import cast_sightlines
+def output_paths(values, keys):
+    """The run's output paths among ``keys``, each checked before any work (all or nothing, see output_set)."""
     from ..provenance import check_writable
-    from ..results import HDF5Backend, MemoryBackend
+
+    if values["output.path"] and values.get("output.resume"):
+        from ..results import HDF5Backend
+
+        HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
+    paths = [values[key] for key in keys if values[key]]
+    for key in keys:
+        if values[key]:
+            try:
+                check_writable(values[key], values["output.overwrite"])
+            except InputError as error:
+                raise InputError(f"{_flag(key)}: {error}") from None
+    if values.get("output.plot"):
+        from ..plots import check_figure_path
+
+        check_figure_path(values["output.plot"], "--plot (TOML output.plot)")
+    return paths
+
+
+def _flag(key):
+    option = {o.key: o for o in SIGHTLINE_OPTIONS + SKY_OPTIONS}[key]
+    return f"{option.flag} (TOML {key})"
+
+
+def run(args):
+    from ..provenance import output_set
 
     values = settings(args, SIGHTLINE_OPTIONS)
     output = values["output.path"]
     plot = values["output.plot"]
+    with output_set(output_paths(values, ("output.path", "output.plot")), values["output.overwrite"]):
+        run_outputs(values, output, plot)
+    if output:
+        print(f"result: {output}")
     if plot:
-        from ..plots import check_figure_path
+        print(f"plot: {plot}")
+    return 0
 
-        check_writable(plot, values["output.overwrite"])
-        check_figure_path(plot, "--plot (TOML output.plot)")
+
+def run_outputs(values, output, plot):
+    """Trace, print the summary and write the outputs (inside the run's output set)."""
+    from ..engine import cast_sightlines
+    from ..results import HDF5Backend, MemoryBackend
+
     series = load_boxes(values)
     mass = masses(values)
     omega0 = observed_energy(values)
@@ -80,8 +114,6 @@ def run(args):
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
         )
     print_summary(result, values["output.epsilon"], omega0)
-    if output:
-        print(f"result: {output}")
     if plot:
         from ..plots import _pyplot, kernel_bands, save_figure
 
@@ -90,8 +122,6 @@ def run(args):
         kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
         save_figure(figure, plot, overwrite=values["output.overwrite"])
         plt.close(figure)
-        print(f"plot: {plot}")
-    return 0
 
 
 def print_summary(result, epsilon, omega0):

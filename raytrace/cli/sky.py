@@ -3,7 +3,9 @@
 import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, observed_energy
+from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, observed_energy, output_paths
+
+FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
 
 NAME = "sky"
 HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
@@ -15,18 +17,36 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..plots import check_figure_path
-    from ..provenance import check_writable
+    from ..provenance import output_set
+
+    values = settings(args, SKY_OPTIONS)
+    keys = ("output.path", "output.fits", "output.plot")
+    paths = output_paths(values, keys)
+    if values["output.fits"]:
+        check_fits_path(values["output.fits"])
+    with output_set(paths, values["output.overwrite"]):
+        run_outputs(values)
+    for key, what in zip(keys, ("result", "maps", "plot")):
+        if values[key]:
+            print(f"{what}: {values[key]}")
+    return 0
+
+
+def check_fits_path(path):
+    """A FITS map needs a FITS name: healpy and other readers go by the suffix."""
+    from ..errors import InputError
+
+    if not str(path).lower().endswith(FITS_SUFFIXES):
+        raise InputError(f"--fits (TOML output.fits): {path}: expected a FITS file name ending in "
+                         f"{', '.join(FITS_SUFFIXES)}")
+
+
+def run_outputs(values):
+    """Trace, print the summary and write the outputs (inside the run's output set)."""
     from ..results import HDF5Backend, MemoryBackend
     from ..sky import anisotropy_limit, cast_sky, read_cl_limits
 
-    values = settings(args, SKY_OPTIONS)
     overwrite = values["output.overwrite"]
-    for key in ("output.fits", "output.plot"):
-        if values[key]:
-            check_writable(values[key], overwrite)
-    if values["output.plot"]:
-        check_figure_path(values["output.plot"], "--plot (TOML output.plot)")
     cl_limits = read_cl_limits(values["anisotropy.cl_limits"]) if values["anisotropy.cl_limits"] else None
     series = load_boxes(values)
     mass = masses(values)
@@ -44,17 +64,12 @@ def run(args):
         )
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
     print_summary(sky, limit, values["anisotropy.threshold"], omega0)
-    if output:
-        print(f"result: {output}")
     if values["output.fits"]:
         sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"],
                        omega0_eV=omega0, overwrite=overwrite)
-        print(f"maps: {values['output.fits']}")
     if values["output.plot"]:
         sky.plot_mollweide(most_varied_mass(sky), values["output.plot"], epsilon=values["output.epsilon"],
                            omega0_eV=omega0, overwrite=overwrite)
-        print(f"plot: {values['output.plot']}")
-    return 0
 
 
 def most_varied_mass(sky):
