@@ -165,7 +165,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
                          progress, unit="pixel", description="sky")
     if ordering == "RING":
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
-        arrays = {name: values[ring_to_nest] for name, values in arrays.items()}
+        for values in arrays.values():  # in place, one array at a time: no second set of maps
+            values[...] = values[ring_to_nest]
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run,
                        tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
