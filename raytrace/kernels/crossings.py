@@ -63,6 +63,18 @@ def _count_below(ln_targets, value, uniform, first, inverse_spacing):
 
 
 @numba.njit(cache=True, inline="always")
+def _count_below_near(targets, value, hint):
+    """Number of targets < value, stepping from ``hint`` (a count for a nearby value)."""
+    k = hint
+    n = targets.shape[0]
+    while k < n and targets[k] < value:
+        k += 1
+    while k > 0 and targets[k - 1] >= value:
+        k -= 1
+    return k
+
+
+@numba.njit(cache=True, inline="always")
 def _lookup(table, chi_step_inverse, chi):
     """Linear interpolation in a table sampled at chi = 0, 1/chi_step_inverse, ..."""
     x = chi * chi_step_inverse
@@ -219,6 +231,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     opz_a = _lookup(opz_table, chi_step_inverse, chi0)
     h_a = _lookup(hubble_table, chi_step_inverse, chi0)
     previous_end = -1.0  # P at the end of the previous piece (the field is continuous inside a segment)
+    below_end = -1  # the number of targets below it
     dm = 0.0
     pi = math.pi
     sigma_rate = rate_unit / cell_mpc
@@ -283,9 +296,11 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                 for j in range(n_bp):
                     claim_low[j] = 0
                     claim_high[j] = 0
-            below_a = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing)
+            # Counts of targets below each breakpoint, stepped from the last one (the field moves by
+            # little per piece): comparisons in n_e, no logarithm.
+            below_a = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
             for j in range(n_bp - 1):
-                below_b = _count_below(ln_targets, bv[j + 1], uniform, first, inverse_spacing)
+                below_b = _count_below_near(targets, bv[j + 1], below_a)
                 if below_b != below_a:
                     for k in range(min(below_a, below_b), max(below_a, below_b)):
                         if (claim_low[j] <= k < claim_high[j]) or (claim_low[j + 1] <= k < claim_high[j + 1]):
@@ -306,6 +321,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                             kernel[k] += pi * mass2[k] / (opz * opz * rate_unit * log_rate)
                         count[k] += 1
                 below_a = below_b
+            below_end = below_a
             opz_a, h_a = opz_b, h_b
         if s_end >= length:
             break
