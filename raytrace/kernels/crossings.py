@@ -159,9 +159,12 @@ def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, s
         a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
         omega = omega0 * opz
         abs_a = abs(a)
-        half_width = XI_CUT * _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs_a ** (1.0 / 3.0) / m2_per_density
-        k_start = _count_below(ln_targets, pe - half_width, uniform, first, inverse_spacing)
-        k_stop = _count_below(ln_targets, pe + half_width, uniform, first, inverse_spacing)
+        # omega^(2/3) |a|^(1/3) in one cube root; the window is narrow (~1e-3 of P), so its
+        # edges' counts step from the count at the extremum.
+        half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
+        k_centre = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
+        k_start = _count_below_near(targets, pe - half_width, k_centre)
+        k_stop = _count_below_near(targets, pe + half_width, k_centre)
         if k_start == k_stop:
             continue
         # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
