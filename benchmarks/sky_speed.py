@@ -1,13 +1,20 @@
-"""Benchmark of the sky-map stage (issue "Sky maps"), measured in one run.
+"""Benchmark of the sky-map stage (issues "Sky maps" and 10), measured in one run.
 
 nside = 64 (49 152 pixels), 4 rays per pixel, to z = 3 through the 64^3 demo
 series, 64 masses, 2 threads: the wall time after compilation (target < 120 s),
-the sample rate, and 2 threads against 1 on a smaller map.
+the ray length traced per second in box cells, and 2 threads against 1 on a
+smaller map. Then the peak memory of an nside-32 sky of the demo series (z_max
+6, 128 masses, default batch_pixels, 2 threads), measured in a child process
+that loads the boxes as a user's run would, against 1.3 x the boxes' bytes +
+300 MB (issue 10; the half-cell engine of commit 8dc5f14 needed 1.99 GB).
 
 Usage: python benchmarks/sky_speed.py [--nside 64] [--rays-per-pixel 4]
 """
 
 import argparse
+import json
+import subprocess
+import sys
 import time
 import warnings
 from pathlib import Path
@@ -17,9 +24,42 @@ import numpy as np
 import raytrace
 from raytrace.background import MeanPlasma
 from raytrace.boxes import load_series
+from raytrace.engine import DEFAULT_PHOTON_ENERGY_EV
 from raytrace.errors import ProbedRangeWarning
+from raytrace.meancheck import MeanCheckWarning
+from raytrace.sky import SkyTracer
 
 REPOSITORY = Path(__file__).resolve().parents[1]
+DEMO = str(REPOSITORY / "cubes_demo" / "demo_z*.h5")
+
+
+def peak_rss_mb():
+    """This process's peak resident memory (VmHWM, which does not carry over across exec)."""
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith("VmHWM:"):
+                return float(line.split()[1]) / 1024.0
+    raise RuntimeError("no VmHWM in /proc/self/status")
+
+
+def cells_per_ray(series, z_max, plasma):
+    """Ray length from z = 0 to ``z_max`` in cells of the boxes that serve each span."""
+    tracer = SkyTracer(series, np.array([1e-13]), 1, 1, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology)
+    plan = tracer.plan
+    cell = np.array([series.boxes[int(b)].cell_size_cMpc for b in plan.span_box])
+    return float(np.sum((plan.span_chi_b - plan.span_chi_a) / cell))
+
+
+def memory_child(nside):
+    """In a fresh process: load the demo series, cast an nside sky to z = 6 with defaults, report peak RSS."""
+    plasma = MeanPlasma()
+    series = load_series(DEMO)
+    start_mb = peak_rss_mb()
+    mass = np.geomspace(3e-15, 3e-12, 128)
+    sky = raytrace.cast_sky(series, mass, nside, z_max=6.0, n_jobs=2, plasma=plasma)
+    print(json.dumps({"peak_mb": peak_rss_mb(), "after_imports_mb": start_mb, "npix": int(sky.npix),
+                      "boxes_mb": sum(box.data.nbytes for box in series.boxes) / 2**20,
+                      "memory_mapped": all(isinstance(box.data, np.memmap) for box in series.boxes)}))
 
 
 def main():
@@ -27,14 +67,21 @@ def main():
     parser.add_argument("--nside", type=int, default=64)
     parser.add_argument("--rays-per-pixel", type=int, default=4)
     parser.add_argument("--z-max", type=float, default=3.0)
+    parser.add_argument("--memory-nside", type=int, default=32)
+    parser.add_argument("--memory-child", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
     warnings.simplefilter("ignore", ProbedRangeWarning)
+    if args.memory_child:
+        memory_child(args.memory_child)
+        return
 
-    series = load_series(str(REPOSITORY / "cubes_demo" / "demo_z*.h5"))
+    series = load_series(DEMO)
     plasma = MeanPlasma()
     mass = np.geomspace(1e-14, 1e-12, 64)
     options = dict(z_max=args.z_max, include_background=False, plasma=plasma)
-    raytrace.cast_sky(series, mass, 2, rays_per_pixel=1, n_jobs=2, **options)  # compile
+    with warnings.catch_warnings():  # 48 rays are too few for the built-in mean check; only compiling here
+        warnings.simplefilter("ignore", MeanCheckWarning)
+        raytrace.cast_sky(series, mass, 2, rays_per_pixel=1, n_jobs=2, **options)  # compile
 
     timings = {}
     for jobs in (1, 2):
@@ -45,11 +92,21 @@ def main():
     sky = raytrace.cast_sky(series, mass, args.nside, rays_per_pixel=args.rays_per_pixel, n_jobs=2, **options)
     wall = time.perf_counter() - start
     n_rays = sky.npix * args.rays_per_pixel
-    samples = n_rays * raytrace.sky.SkyTracer(series, mass, 2, 1, args.z_max, 0, 0.5, plasma.cosmology).plan.n_samples
+    cells = n_rays * cells_per_ray(series, args.z_max, plasma)
     print(f"nside {args.nside}, {args.rays_per_pixel} rays/pixel ({n_rays} rays), z = 0 to {args.z_max:g}, "
-          f"{mass.size} masses, demo series (64^3), 2 threads")
-    print(f"wall time {wall:.1f} s (target < 120 s); {samples / wall / 1e6:.1f} M samples/s")
-    print(f"2 threads / 1 thread speed-up on nside 8: {timings[1] / timings[2]:.2f}")
+          f"{mass.size} masses, demo series (64^3), exact engine, 2 threads")
+    print(f"wall time {wall:.1f} s (target < 120 s); {cells / wall / 1e6:.2f} M cells/s on 2 threads")
+    print(f"2 threads / 1 thread speed-up on nside 8: {timings[1] / timings[2]:.2f} (target >= 1.8)")
+
+    child = subprocess.run([sys.executable, __file__, "--memory-child", str(args.memory_nside)],
+                           capture_output=True, text=True, check=True)
+    memory = json.loads(child.stdout.strip().splitlines()[-1])
+    target = 1.3 * memory["boxes_mb"] + 300
+    print(f"peak memory, nside {args.memory_nside} sky ({memory['npix']} pixels), demo series to z = 6, "
+          f"128 masses, default batch_pixels, 2 threads, boxes "
+          f"{'memory-mapped' if memory['memory_mapped'] else 'in memory'} ({memory['boxes_mb']:.0f} MB): "
+          f"{memory['peak_mb']:.0f} MB in all, {memory['after_imports_mb']:.0f} MB of it before tracing "
+          f"(target <= 1.3 x boxes + 300 MB = {target:.0f} MB; the half-cell engine needed 1.99 GB)")
 
 
 if __name__ == "__main__":

@@ -16,7 +16,7 @@ import numpy as np
 
 from .constants import PLASMA_MASS2_PER_DENSITY
 from .cosmology import Cosmology
-from .errors import InputError, require_positive_finite
+from .errors import InputError, float_array, require_positive_finite
 from .ionisation import IonisationHistory
 
 _BRACKET_STEP = 2.0e-4  # in ln(1+z): finer than any feature of x_e (reionisation width ~ 0.05)
@@ -119,7 +119,7 @@ class MeanPlasma:
 
     def kernel(self, mass_eV, z_min=0.0, z_max=1100.0):
         """K(m) in eV summed over every resonance between z_min and z_max."""
-        mass = np.atleast_1d(np.asarray(mass_eV, dtype=float))
+        mass = np.atleast_1d(float_array(mass_eV, "mass_eV"))
         found = self.crossings(mass, z_min, z_max)
         return np.bincount(found.mass_index, weights=found.kernel_eV, minlength=mass.size)
 

@@ -14,18 +14,24 @@ file system) and keeps the rebuilt tracer for the run's later batches. Ray i's
 numbers depend on (seed, i) alone and the tracer's arrays are the client's own,
 so the result is bit-identical to the serial run.
 
+A worker may leave at any time: the recipe is a task's result (recomputed when
+its holder leaves), a batch lost with its worker is submitted again, and a run
+left with no worker waits for one, saying so every 30 s.
+
 dask and distributed are optional (``pip install 'raytrace[dist]'``); this
 module imports them only when an executor is made.
 """
 
-import itertools
 import os
 import threading
 import time
+import warnings
 
-from .errors import InputError
+from .errors import InputError, RaytraceWarning, require_number
 
 _WHAT = "scheduler (--scheduler, TOML rays.scheduler)"
+_WAIT_S = 30.0     # seconds without a worker (or any finished batch) before saying so
+_MAX_LOSSES = 5    # times one batch may be lost with its worker before the run stops
 
 # Per worker process: the tracer of the latest run, keyed by the token of its recipe.
 # One run at a time is kept so that a long-lived worker does not hold old boxes.
@@ -112,11 +118,13 @@ class DaskExecutor:
         distributed = _distributed()
         if not isinstance(scheduler, (str, distributed.Client)) or scheduler == "":
             raise InputError(f"{_WHAT}: expected a scheduler address or 'local', got {scheduler!r}")
-        for name, value in (("workers", workers), ("max_in_flight", max_in_flight)):
-            if value is not None and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
-                raise InputError(f"{name}: expected a whole number >= 1, got {value!r}")
-        if isinstance(numba_threads, bool) or not isinstance(numba_threads, int) or not (numba_threads >= 1 or numba_threads == -1):
-            raise InputError(f"numba_threads: expected a whole number >= 1 or -1 (all cores), got {numba_threads!r}")
+        workers, max_in_flight = (None if value is None else require_number(value, name, whole=True, at_least=1)
+                                  for name, value in (("workers", workers), ("max_in_flight", max_in_flight)))
+        numba_threads = require_number(numba_threads, "numba_threads", whole=True, at_least=-1,
+                                       expected="a whole number >= 1 or -1 (all cores)")
+        if numba_threads == 0:
+            raise InputError("numba_threads: expected a whole number >= 1 or -1 (all cores), got 0")
+        connect_timeout = require_number(connect_timeout, "connect_timeout", above=0)
         if workers is not None and scheduler != "local":
             raise InputError(f"workers (--workers, TOML rays.workers): sizes a local cluster only (--scheduler local), "
                              f"not the cluster at {scheduler!r}")
@@ -133,8 +141,10 @@ class DaskExecutor:
         if isinstance(self.scheduler, distributed.Client):
             self.client = self.scheduler
         elif self.scheduler == "local":
-            cluster = distributed.LocalCluster(n_workers=self.workers or os.cpu_count(), threads_per_worker=1,
-                                               processes=True)
+            # Started empty and then scaled: a worker that dies while starting is replaced in the
+            # background instead of failing the cluster's start (LocalCluster(n_workers=...) raises).
+            cluster = distributed.LocalCluster(n_workers=0, threads_per_worker=1, processes=True)
+            cluster.scale(self.workers or os.cpu_count())
             self._owned.append(cluster)
             self.client = distributed.Client(cluster)
             self._owned.insert(0, self.client)
@@ -173,13 +183,11 @@ class DaskExecutor:
         distributed = _distributed()
         client = self.client
         token = tokenize(recipe)
-        # A batch-system cluster may still be waiting for its first job to start.
-        client.wait_for_workers(1)
-        shared = client.scatter([recipe], broadcast=True)[0]
-        queue = iter(batches)
+        self._wait_for_workers(client)
+        shared = self._submit_recipe(client, recipe, token)
+        queue = list(reversed(batches))  # popped from the end: batches go out in order, lost ones first
         where = {}
-        running = distributed.as_completed()
-
+        losses = {}
         recount = [0.0, 0]  # when to re-read the cluster's size, and the limit it gave
 
         def top_up():
@@ -187,20 +195,86 @@ class DaskExecutor:
             if time.monotonic() >= recount[0]:
                 recount[:] = [time.monotonic() + 10.0,
                               self.max_in_flight or max(4, 2 * sum(client.nthreads().values()))]
-            for batch, start, stop in itertools.islice(queue, max(0, recount[1] - len(where))):
+            while queue and len(where) < recount[1]:
+                batch, start, stop = queue.pop()
                 future = client.submit(trace_batch, token, shared, start, stop, self.numba_threads, pure=False)
-                where[future] = (batch, start)
-                running.add(future)
+                where[future] = (batch, start, stop)
 
         try:
             top_up()
-            for future in running:
-                arrays = future.result()
-                batch, start = where.pop(future)
+            quiet_since = time.monotonic()
+            while where:
+                try:
+                    done, _ = distributed.wait(list(where), timeout=_WAIT_S, return_when="FIRST_COMPLETED")
+                except TimeoutError:
+                    done = ()
+                if not done:
+                    if not client.nthreads():
+                        self._say_waiting(quiet_since)
+                    continue
+                quiet_since = time.monotonic()
+                for future in done:
+                    batch, start, stop = where.pop(future)
+                    try:
+                        arrays = future.result()
+                    except _lost_errors(distributed) as error:
+                        shared = self._resubmit(client, recipe, token, shared, batch, losses, error)
+                        queue.append((batch, start, stop))
+                        continue
+                    yield batch, start, arrays
                 top_up()
-                yield batch, start, arrays
         finally:
             # A failed batch or an abandoned run must not leave the cluster busy.
             if where:
                 client.cancel(list(where))
             client.cancel([shared])
+
+    @staticmethod
+    def _submit_recipe(client, recipe, token):
+        # The recipe goes out as a task's result, not as scattered data: when the worker
+        # holding it leaves, the scheduler recomputes it from the task (a broadcast
+        # scatter fails, or retries replication forever, when a worker leaves early).
+        return client.submit(_recipe, recipe, key=f"raytrace-recipe-{token}-{time.monotonic_ns()}", pure=False)
+
+    def _resubmit(self, client, recipe, token, shared, batch, losses, error):
+        """Count a batch lost with its worker; refuse after too many; return the recipe future to use."""
+        losses[batch] = losses.get(batch, 0) + 1
+        if losses[batch] > _MAX_LOSSES:
+            raise InputError(
+                f"{_WHAT}: batch {batch} was lost with its worker {losses[batch]} times "
+                f"({type(error).__name__}); the workers keep dying (out of memory?); the finished batches "
+                "are kept: rerun with --resume"
+            )
+        if shared.status in ("error", "cancelled", "lost"):
+            return self._submit_recipe(client, recipe, token)
+        return shared
+
+    def _wait_for_workers(self, client):
+        """Block until a worker is there, saying so every while: a cluster may be waiting for its jobs."""
+        started = time.monotonic()
+        while True:
+            try:
+                client.wait_for_workers(1, timeout=_WAIT_S)
+                return
+            except (TimeoutError, OSError):
+                self._say_waiting(started)
+
+    def _say_waiting(self, since):
+        warnings.warn(RaytraceWarning(
+            f"{_WHAT}: no dask worker at {self._address()} for {time.monotonic() - since:.0f} s; waiting for "
+            "one to join (the run goes on when one does; interrupt to stop, the finished batches are kept)"))
+
+    def _address(self):
+        return self.scheduler if isinstance(self.scheduler, str) else "the given client's scheduler"
+
+
+def _recipe(recipe):
+    """The recipe itself, as a task's result that the scheduler can recompute."""
+    return recipe
+
+
+def _lost_errors(distributed):
+    """Errors of a batch whose worker left (not of the batch itself): it is submitted again."""
+    from distributed.comm.core import CommClosedError
+
+    return (distributed.KilledWorker, CommClosedError, distributed.client.FutureCancelledError)

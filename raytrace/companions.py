@@ -68,21 +68,21 @@ def read_owner(path):
 def check_outputs(paths, overwrite, result_path):
     """Refuse, before any work, outputs that exist (without ``overwrite``) or belong to another run.
 
-    ``paths`` maps each output path to the flag that names it; ``result_path`` is
-    this run's result file (None: the run writes none).
+    ``paths``: (path, flag) pairs, the flag naming the option of each output (a
+    path of None or '' is switched off); ``result_path`` is this run's result file
+    (None: the run writes none). Each path is checked by
+    :func:`raytrace.provenance.check_outputs` (writable, no path twice), then for
+    another run's mark.
     """
-    from .provenance import check_writable
+    from .provenance import check_outputs as check_writable_set
 
+    named = [(path, flag) for path, flag in paths if path]
+    check_writable_set([path for path, _ in named], overwrite, [flag for _, flag in named])
     owner = owner_name(result_path)
+    own_result = Path(result_path).resolve() if result_path else None
     foreign = []
-    for path, flag in paths.items():
-        if path is None:
-            continue
-        try:
-            check_writable(path, overwrite)
-        except InputError as error:
-            raise InputError(f"{flag}: {error}") from None
-        if Path(path).exists() and Path(path).resolve() != (Path(result_path).resolve() if result_path else None):
+    for path, flag in named:
+        if Path(path).exists() and Path(path).resolve() != own_result:
             marked = read_owner(path)
             if marked is not None and marked != owner:
                 foreign.append(f"{path} ({flag}, written with {marked})")

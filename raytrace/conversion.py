@@ -11,19 +11,19 @@ serves every epsilon and every observed photon energy omega_0.
 
 import numpy as np
 
-from .errors import InputError
+from .errors import InputError, float_array
 
 
 def crossing_kernel(mass_eV, z_crossing, dln_m2_dt_eV):
     """K = pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) in eV (rate in eV, i.e. hbar/s)."""
-    mass = np.asarray(mass_eV, dtype=float)
-    rate = np.abs(np.asarray(dln_m2_dt_eV, dtype=float))
-    return np.pi * mass**2 / ((1.0 + np.asarray(z_crossing, dtype=float)) * rate)
+    mass = float_array(mass_eV, "mass_eV")
+    rate = np.abs(float_array(dln_m2_dt_eV, "dln_m2_dt_eV"))
+    return np.pi * mass**2 / ((1.0 + float_array(z_crossing, "z_crossing")) * rate)
 
 
 def landau_zener_exponent(epsilon, mass_eV, omega_eV, dln_m2_dt_eV):
     """gamma = pi epsilon^2 m^2 / (omega |d ln m_gamma^2/dt|) (Landau 1932; Zener 1932)."""
-    rate = np.abs(np.asarray(dln_m2_dt_eV, dtype=float))
+    rate = np.abs(float_array(dln_m2_dt_eV, "dln_m2_dt_eV"))
     return np.pi * np.asarray(epsilon, float) ** 2 * np.asarray(mass_eV, float) ** 2 / (
         np.asarray(omega_eV, float) * rate
     )
@@ -31,7 +31,7 @@ def landau_zener_exponent(epsilon, mass_eV, omega_eV, dln_m2_dt_eV):
 
 def crossing_probability(gamma, saturate=False):
     """Conversion probability of one crossing: gamma (linear) or 1 - exp(-gamma)."""
-    gamma = np.asarray(gamma, dtype=float)
+    gamma = float_array(gamma, "gamma")
     if np.any(gamma < 0) or np.any(~np.isfinite(gamma)):
         raise InputError("gamma: expected finite values >= 0")
     return -np.expm1(-gamma) if saturate else gamma
@@ -43,7 +43,7 @@ def combine_crossings(probabilities, saturate=False, axis=-1):
     Linear: P = sum p_i (valid while P << 1). Saturating: P = (1 - prod(1 - 2 p_i)) / 2,
     the incoherent composition of two-level steps with random phases.
     """
-    p = np.asarray(probabilities, dtype=float)
+    p = float_array(probabilities, "probabilities")
     if saturate:
         return 0.5 * (1.0 - np.prod(1.0 - 2.0 * p, axis=axis))
     return np.sum(p, axis=axis)
@@ -56,13 +56,13 @@ def probability_from_kernel(kernel_eV, epsilon, omega0_eV, saturate=False):
     composition is used, P = (1 - exp(-2 epsilon^2 K / omega_0)) / 2; it is exact
     where each crossing is small, which is what a summed kernel can support.
     """
-    epsilon = np.asarray(epsilon, dtype=float)
-    omega0 = np.asarray(omega0_eV, dtype=float)
+    epsilon = float_array(epsilon, "epsilon")
+    omega0 = float_array(omega0_eV, "omega0_eV")
     if np.any(epsilon < 0) or np.any(~np.isfinite(epsilon)):
         raise InputError("epsilon: expected finite values >= 0")
     if np.any(omega0 <= 0) or np.any(~np.isfinite(omega0)):
         raise InputError("omega0_eV: expected positive photon energies in eV")
-    linear = epsilon**2 * np.asarray(kernel_eV, dtype=float) / omega0
+    linear = epsilon**2 * float_array(kernel_eV, "kernel_eV") / omega0
     if saturate:
         return -0.5 * np.expm1(-2.0 * linear)
     return linear

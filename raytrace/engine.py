@@ -11,7 +11,7 @@ reported apart). Ray i draws its random numbers from a stream fixed by
 bit-identical for any ``n_jobs`` and ``batch_size``.
 """
 
-import math
+import os
 import sys
 import warnings
 from contextlib import contextmanager
@@ -23,7 +23,7 @@ from . import __version__
 from .background import MeanPlasma
 from .boxes import as_series
 from .constants import C_MPC_S, HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
-from .errors import InputError, ProbedRangeWarning, require_positive_finite
+from .errors import InputError, ProbedRangeWarning, RaytraceWarning, require_number, require_positive_finite
 from .kernels.sightlines import trace_pieces
 from .progress import compile_notice, step_rows
 from .rays import draw_rays, plan_rays
@@ -53,13 +53,8 @@ def refuse_removed(options):
 
 def check_seed(seed):
     """A seed the counter-based streams take: a whole number in [0, 2^63)."""
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= int(seed) < 2**63:
-        raise InputError(f"seed (--seed): expected a whole number from 0 to 2^63 - 1, got {seed!r}")
-    return int(seed)
-
-
-def _is_real(value):
-    return not isinstance(value, bool) and isinstance(value, (int, float, np.integer, np.floating))
+    return require_number(seed, "seed (--seed)", whole=True, at_least=0, at_most=2**63 - 1,
+                          expected="a whole number from 0 to 2^63 - 1")
 
 
 def check_trace_options(z_max, photon_energy_eV, batch, batch_name):
@@ -67,14 +62,37 @@ def check_trace_options(z_max, photon_energy_eV, batch, batch_name):
 
     Returns (z_max, photon_energy_eV) as floats.
     """
-    if isinstance(batch, bool) or not isinstance(batch, (int, np.integer)) or batch < 1:
-        raise InputError(f"{batch_name}: expected a whole number >= 1, got {batch!r}")
-    if not (_is_real(photon_energy_eV) and math.isfinite(photon_energy_eV) and photon_energy_eV > 0):
-        raise InputError(f"photon_energy_eV (--photon-energy): expected a positive photon energy in eV, "
-                         f"got {photon_energy_eV!r}")
-    if not (_is_real(z_max) and math.isfinite(z_max) and z_max > 0):
-        raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
-    return float(z_max), float(photon_energy_eV)
+    require_number(batch, batch_name, whole=True, at_least=1)
+    photon_energy_eV = require_number(photon_energy_eV, "photon_energy_eV (--photon-energy)", above=0,
+                                      expected="a positive photon energy in eV")
+    z_max = require_number(z_max, "z_max", above=0, expected="a positive redshift")
+    return z_max, photon_energy_eV
+
+
+#: Bytes a run holds per row (ray or pixel) and mass: the kernel and the near-tangent kernel
+#: (float64), the crossing and tangent counts (int32), and as much again while the backend hands them over.
+RUN_BYTES_PER_ROW_AND_MASS = 48
+
+
+def check_run_memory(n_rows, n_masses, what):
+    """Refuse, naming ``what``, a run whose per-row arrays could not fit in this machine's memory."""
+    need = float(n_rows) * n_masses * RUN_BYTES_PER_ROW_AND_MASS
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return  # no way to know here: let the run try
+    if need > total:
+        raise InputError(f"{what}: the run's arrays would need {need / 1e9:.3g} GB, more than this machine's "
+                         f"{total / 1e9:.3g} GB of memory; ask for fewer")
+
+
+def check_background(plasma):
+    """The run's MeanPlasma (None: CAMB with Planck 2018), checked."""
+    if plasma is None:
+        return MeanPlasma()
+    if not isinstance(plasma, MeanPlasma):
+        raise InputError(f"plasma: expected a raytrace.MeanPlasma or None (the default), got {plasma!r}")
+    return plasma
 
 
 def check_masses(mass_eV):
@@ -95,7 +113,7 @@ def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
     from .cosmology import Z_TABLE_MAX
 
     if not include_background:
-        if z_boxes is not None and float(z_boxes) != z_max:
+        if z_boxes is not None and require_number(z_boxes, "z_boxes (--z-boxes)") != z_max:
             raise InputError("z_boxes (--z-boxes): only meaningful with the background included")
         if z_max > Z_TABLE_MAX:
             raise InputError(f"z_max = {z_max:g} is beyond the distance tables (z <= {Z_TABLE_MAX:g})")
@@ -111,10 +129,14 @@ def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
                 "include_background=False (--no-include-background)"
             )
         z_boxes = series.z_max
-    z_boxes = float(z_boxes)
-    if not (math.isfinite(z_boxes) and z_boxes > 0):
-        raise InputError(f"z_boxes (--z-boxes): expected a positive redshift, got {z_boxes!r}")
-    return min(z_boxes, float(z_max))
+    else:
+        z_boxes = require_number(z_boxes, "z_boxes (--z-boxes)", above=0, expected="a positive redshift")
+        if z_boxes > z_max:
+            # Meaningful (boxes all the way), so a warning: the rays end at z_max.
+            warnings.warn(RaytraceWarning(f"z_boxes (--z-boxes) = {z_boxes:g} is beyond z_max = {z_max:g}: the boxes "
+                                          f"serve all of z = 0 to {z_max:g} and there is no background part"),
+                          stacklevel=3)
+    return min(float(z_boxes), float(z_max))
 
 
 def warn_outside_probed_range(series, mass, z_boxes):
@@ -226,10 +248,12 @@ class RayTracer(Tracer):
 @contextmanager
 def numba_threads(n_jobs):
     """Run numba's parallel loops on ``n_jobs`` threads (-1: all cores), then restore."""
+    wanted = None if n_jobs is None else require_number(
+        n_jobs, "n_jobs (--jobs)", whole=True, at_least=-1, expected="a positive number of threads or -1 (all cores)")
+    if wanted == 0:
+        raise InputError("n_jobs (--jobs): expected a positive number of threads or -1 (all cores), got 0")
+    wanted = numba.config.NUMBA_NUM_THREADS if wanted in (-1, None) else wanted
     previous = numba.get_num_threads()
-    wanted = numba.config.NUMBA_NUM_THREADS if n_jobs in (-1, None) else int(n_jobs)
-    if wanted < 1:
-        raise InputError(f"n_jobs: expected a positive number of workers or -1, got {n_jobs!r}")
     numba.set_num_threads(min(wanted, numba.config.NUMBA_NUM_THREADS))
     try:
         yield
@@ -260,12 +284,17 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
 
     Batches the backend already holds (a resumed checkpoint) are skipped; the rest
     run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
-    written to the backend as it completes.
+    written to the backend as it completes. The box files must not change meanwhile:
+    their size and modification time are compared after every batch, their
+    checksums once at the end (InputError naming the file).
     """
     from tqdm.auto import tqdm
 
+    from .provenance import InputWatch
+
     if executor is not None and hasattr(executor, "prepare"):
         executor.prepare(tracer)
+    watch = InputWatch([(box.path, box.checksum) for box in tracer.boxes if box.path is not None])
     starts = list(range(0, n_rows, batch_size))
     backend.open(mass, n_rows, run, len(starts), layout, format_name)
     done = backend.completed_batches()
@@ -285,13 +314,16 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
                                             lambda text: bar.write(text, file=sys.stderr)):
                             parts.append(tracer.trace(range(first, min(first + step, stop))))
                         bar.update(min(first + step, stop) - first)
-                    backend.write_batch(b, start, {name: np.concatenate([part[name] for part in parts])
-                                                   for name in parts[0]})
+                    arrays = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
+                    watch.quick()  # before the write: a batch that read a changed box is never stored
+                    backend.write_batch(b, start, arrays)
         else:
             finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):
+                watch.quick()
                 backend.write_batch(b, start, arrays)
                 bar.update(finished[b])
+    watch.final()
     return backend.read()
 
 
@@ -334,10 +366,10 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
-    if isinstance(n_rays, bool) or not isinstance(n_rays, (int, np.integer)) or n_rays < 1:
-        raise InputError(f"n_rays: expected a whole number >= 1, got {n_rays!r}")
+    n_rays = require_number(n_rays, "n_rays", whole=True, at_least=1)
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
-    plasma = plasma if plasma is not None else MeanPlasma()
+    check_run_memory(n_rays, mass.size, "n_rays and mass_eV (--rays, --mass-count)")
+    plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {
         "raytrace": __version__,

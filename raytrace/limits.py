@@ -16,6 +16,7 @@ curve has ``name`` (an identifier for table columns), ``label`` (legend text),
 ``metadata()`` (dict of scalars).
 """
 
+import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -23,8 +24,8 @@ from pathlib import Path
 import numpy as np
 from scipy import stats
 
-from .errors import InputError, require_positive_finite
-from .provenance import atomic_output, provenance_json
+from .errors import InputError, float_array, require_number, require_positive_finite
+from .provenance import atomic_output, hdf5_image, provenance_json
 from .spectrum import planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
 from .units import CMB_PHOTON_ENERGY_EV, CMB_TEMPERATURE_K
 
@@ -47,12 +48,23 @@ class PoorFitWarning(UserWarning):
     """The blackbody fit of the spectrum is too poor for its errors to mean anything."""
 
 
+def as_spectrum(spectrum):
+    """A Spectrum from a Spectrum, a table's path, or None (the shipped FIRAS table)."""
+    from .spectrum import Spectrum
+
+    if spectrum is None or isinstance(spectrum, (str, os.PathLike)):
+        return read_spectrum(spectrum)
+    if not isinstance(spectrum, Spectrum):
+        raise InputError(f"spectrum: expected a Spectrum, a table's path or None, got {spectrum!r}")
+    return spectrum
+
+
 def delta_chi2(confidence):
     """Delta chi^2 of a one-sided upper limit at ``confidence``: chi2.ppf(2 CL - 1, 1) = Phi^-1(CL)^2.
 
     2.71 at 95 %, 5.41 at 99 %.
     """
-    confidence = float(confidence)
+    confidence = require_number(confidence, "confidence", expected="a value between 0.5 and 1 (e.g. 0.95)")
     if not 0.5 < confidence < 1.0:
         raise InputError(f"confidence: expected a value between 0.5 and 1 (e.g. 0.95), got {confidence!r}")
     return float(stats.chi2.ppf(2.0 * confidence - 1.0, df=1))
@@ -102,6 +114,10 @@ class SpectralLimit:
         """Per-mass arrays for a table."""
         return {"kernel_eV": self.kernel_eV, "epsilon_max": self.epsilon_max,
                 "s_hat": self.s_hat, "s_sigma": self.s_sigma}
+
+    def unconstrained(self):
+        """Per mass: why epsilon is not constrained there ('' where it is)."""
+        return np.where(self.kernel_eV > 0, "", "no resonance at this mass (K = 0)")
 
     def metadata(self):
         """Scalars describing the fit, for a table's header."""
@@ -178,7 +194,7 @@ def spectral_limit(mass_eV, kernel_eV, spectrum=None, confidence=0.95, fit_galax
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
     kernel = _kernel_array(kernel_eV, mass, name)
     threshold = delta_chi2(confidence)
-    spectrum = read_spectrum() if spectrum is None else spectrum
+    spectrum = as_spectrum(spectrum)
     fit = _distortion_fit(spectrum, fit_galaxy)
     # The limit assumes the model fits; judge it with the distortion free (a real one must not warn).
     best_chi2 = fit["chi2"] - (fit["q_hat"] / fit["q_sigma"]) ** 2
@@ -222,7 +238,7 @@ def sightline_limits(mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, sprea
     (CAMB, Planck 2018). Returns a :class:`LimitSet`.
     """
     mass = require_positive_finite(np.atleast_1d(mass_eV), "mass_eV")
-    spectrum = read_spectrum() if spectrum is None else spectrum
+    spectrum = as_spectrum(spectrum)
     if background_kernel_eV is None:
         from .background import background_kernel
 
@@ -308,6 +324,10 @@ class AnisotropyLimit:
         """Per-mass arrays for a table."""
         return {"epsilon_max": self.epsilon_max}
 
+    def unconstrained(self):
+        """Per mass: why epsilon is not constrained there ('' where it is)."""
+        return np.where(np.isfinite(self.epsilon_max), "", "no anisotropy at this mass (flat dT/T map)")
+
     def metadata(self):
         """Scalars describing the test, for a table's header."""
         return {"label": self.label, "kind": "CMB anisotropy", "test": self.test, "threshold": self.threshold,
@@ -366,6 +386,12 @@ def limit_table(path, limits, overwrite=False):
     mass, columns mass_eV and <curve>_<column>. HDF5: dataset mass_eV, one
     group per curve (its columns as datasets, metadata as attributes) and a
     provenance attribute.
+
+    No table holds NaN or inf: where a curve does not constrain epsilon (K = 0,
+    a flat map) its column ``<curve>_unconstrained`` (HDF5: dataset
+    ``<curve>/unconstrained``) says why, empty where it is constrained, and the
+    numbers there are empty CSV fields, or :data:`FILL_VALUE` in HDF5 (each
+    dataset's ``_FillValue`` attribute, as CF readers expect).
     """
     path = Path(path)
     kind = _TABLE_SUFFIXES.get(path.suffix.lower())
@@ -419,7 +445,7 @@ def plot_limits(target, limits, overwrite=False, title=None):
 
 
 def _kernel_array(kernel_eV, mass, name):
-    kernel = np.asarray(kernel_eV, dtype=float)
+    kernel = float_array(kernel_eV, f"{name}: kernel_eV")
     kernel = np.full(mass.shape, float(kernel)) if kernel.ndim == 0 else kernel.ravel()
     if kernel.shape != mass.shape:
         raise InputError(f"kernel_eV ({name}): expected {mass.size} values, one per mass, got {kernel.size}")
@@ -502,33 +528,66 @@ def _as_limit_set(limits):
     return LimitSet(tuple(limits))
 
 
+def _table_columns(curves):
+    """(name, values, reason) per table column: numbers with the reason, per mass, where they are not finite.
+
+    Where a curve does not constrain epsilon its numbers are no numbers (inf, NaN in
+    memory); a table holds none of them but an explicit reason column instead.
+    """
+    columns = []
+    for curve in curves:
+        reasons = np.asarray(curve.unconstrained(), dtype=str)
+        for key, values in curve.columns().items():
+            values = np.asarray(values, dtype=float)
+            # Only an unconstrained mass may lack a number: anything else would be a bug to show, not hide.
+            if np.any(~np.isfinite(values) & (reasons == "")):
+                raise RuntimeError(f"limit curve {curve.name!r}: column {key} is not finite at a constrained mass")
+            columns.append((f"{curve.name}_{key}", values, reasons))
+        columns.append((f"{curve.name}_unconstrained", None, reasons))
+    return columns
+
+
 def _write_csv(temporary, mass, curves, bands):
-    names = ["mass_eV"]
-    columns = [mass]
+    columns = _table_columns(curves)
     with open(temporary, "w") as handle:
         handle.write("# raytrace epsilon_max(m) upper limits\n")
         handle.write(f"# provenance: {provenance_json(bands=bands)}\n")
         for curve in curves:
             for key, value in curve.metadata().items():
                 handle.write(f"# {curve.name}.{key}: {'none' if value is None else value}\n")
-            for key, values in curve.columns().items():
-                names.append(f"{curve.name}_{key}")
-                columns.append(np.asarray(values, dtype=float))
-        handle.write(",".join(names) + "\n")
-        for row in np.column_stack(columns):
-            handle.write(",".join(f"{value:.10g}" for value in row) + "\n")
+        handle.write("# fields of a mass where a curve does not constrain epsilon are empty; its "
+                     "<curve>_unconstrained column says why (empty where it is constrained)\n")
+        handle.write(",".join(["mass_eV"] + [name for name, _, _ in columns]) + "\n")
+        for row in range(mass.size):
+            fields = [f"{mass[row]:.10g}"]
+            for _, values, reasons in columns:
+                if values is None:
+                    fields.append(reasons[row])
+                else:
+                    fields.append("" if reasons[row] else f"{values[row]:.10g}")
+            handle.write(",".join(fields) + "\n")
+
+
+#: What an HDF5 table holds where a curve does not constrain epsilon (netCDF's default fill
+#: of a double, so CF readers such as netCDF4 and xarray mask it); the 'unconstrained' dataset says why.
+FILL_VALUE = 9.969209968386869e36
 
 
 def _write_hdf5(temporary, mass, curves, bands):
     import h5py
 
-    with h5py.File(temporary, "w") as handle:
+    columns = dict((name, (values, reasons)) for name, values, reasons in _table_columns(curves))
+    with hdf5_image(temporary) as handle:
         handle.attrs["provenance"] = provenance_json(bands=bands)
         handle.create_dataset("mass_eV", data=mass)
         for curve in curves:
             group = handle.create_group(curve.name)
-            for key, values in curve.columns().items():
-                group.create_dataset(key, data=np.asarray(values, dtype=float))
+            reasons = columns[f"{curve.name}_unconstrained"][1]
+            for key in curve.columns():
+                values = np.where(reasons == "", columns[f"{curve.name}_{key}"][0], FILL_VALUE)
+                dataset = group.create_dataset(key, data=values, fillvalue=FILL_VALUE)
+                dataset.attrs["_FillValue"] = FILL_VALUE
+            group.create_dataset("unconstrained", data=reasons.astype(object), dtype=h5py.string_dtype())
             for key, value in curve.metadata().items():
                 if value is not None:
                     group.attrs[key] = value

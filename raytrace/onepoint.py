@@ -55,6 +55,7 @@ BINS = 1 << 16
 POINTS = 1 << 24
 #: Relative error bound of the arithmetic (tabulated F, float32 box values): always added.
 NUMERICAL = 1e-6
+_MASS_CHUNK = 8  # masses per pass over the bins: 8 x 2^16 doubles, 4 MB
 _TABLE = 4097  # nodes of the tabulated F(s) per interval: relative error ~1e-7
 
 
@@ -232,9 +233,13 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
     pooled = counts.sum(axis=0)
     filled = np.flatnonzero(pooled)
     ln_n = sums[:, filled].sum(axis=0) / pooled[filled]
-    s = target[:, None] - ln_n[None, :]
-    values = np.where((s >= s_a) & (s < s_b), np.interp(s, s_table, f_table), 0.0)
-    out = counts[:, filled] @ values.T / n_points
+    # Masses in chunks: a (masses x bins) array at once would be 64 MB per copy for 128 masses.
+    out = np.empty((groups, target.size))
+    filled_counts = counts[:, filled]
+    for first in range(0, target.size, _MASS_CHUNK):
+        s = target[first:first + _MASS_CHUNK, None] - ln_n[None, :]
+        values = np.where((s >= s_a) & (s < s_b), np.interp(s, s_table, f_table), 0.0)
+        out[:, first:first + _MASS_CHUNK] = filled_counts @ values.T / n_points
     # A bin cut by an edge of the piece may hold points on either side: bound their share.
     total = pooled / drawn.sum()
     bound = np.zeros(target.size)

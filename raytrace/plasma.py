@@ -7,7 +7,7 @@ m_gamma^2 = omega_p^2 = 4 pi alpha n_e / m_e.
 import numpy as np
 
 from .constants import PLASMA_MASS2_PER_DENSITY
-from .errors import InputError
+from .errors import InputError, float_array
 
 #: Coefficient of the neutral-hydrogen term, in units of the ionised one per (omega/eV)^2
 #: (Mirizzi, Redondo & Sigl 2009, JCAP 03, 026).
@@ -15,7 +15,7 @@ NEUTRAL_HYDROGEN_COEFFICIENT = 7.3e-3
 
 
 def _densities(n_e, name="electron density"):
-    array = np.asarray(n_e, dtype=float)
+    array = float_array(n_e, name)
     if np.any(~np.isfinite(array)) or np.any(array < 0):
         raise InputError(f"{name}: expected finite values >= 0 in cm^-3")
     return array
@@ -33,7 +33,7 @@ def plasma_mass(n_e_cm3):
 
 def electron_density(mass_eV):
     """Physical electron density (cm^-3) at which the plasma mass is ``mass_eV``."""
-    mass = np.asarray(mass_eV, dtype=float)
+    mass = float_array(mass_eV, "mass_eV")
     if np.any(~np.isfinite(mass)) or np.any(mass < 0):
         raise InputError("mass_eV: expected finite values >= 0 in eV")
     return mass**2 / PLASMA_MASS2_PER_DENSITY
@@ -47,10 +47,10 @@ def plasma_mass2_with_neutral_hydrogen(n_H_cm3, ionised_fraction, omega_eV):
     lowers the photon's effective mass at high frequency.
     """
     n_H = _densities(n_H_cm3, "hydrogen density")
-    x = np.asarray(ionised_fraction, dtype=float)
+    x = float_array(ionised_fraction, "ionised_fraction")
     if np.any((x < 0) | (x > 1) | ~np.isfinite(x)):
         raise InputError("ionised_fraction: expected values in [0, 1]")
-    omega = np.asarray(omega_eV, dtype=float)
+    omega = float_array(omega_eV, "omega_eV")
     return PLASMA_MASS2_PER_DENSITY * n_H * (
         x - NEUTRAL_HYDROGEN_COEFFICIENT * omega**2 * (1.0 - x)
     )

@@ -20,7 +20,7 @@ from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, re
                      same_mass_grid, sightline_limits)
 from .crosscheck import warn_differences
 from .plots import _pyplot, fit_log_limits, kernel_bands, shown_mass_index
-from .provenance import atomic_output, check_writable
+from .provenance import atomic_output, check_outputs, output_set
 from .results import SightlineResult
 from .sky import SkyResult
 from .spectrum import Spectrum, read_spectrum
@@ -64,8 +64,7 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     if unknown or not kinds:
         raise InputError(f"kinds (--formats): expected some of {', '.join(KINDS)}, got {', '.join(kinds) or 'none'}")
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS if kind in kinds}
-    for path in paths.values():  # refuse before any work
-        check_writable(path, overwrite)
+    check_outputs(paths.values(), overwrite)  # refuse before any work
     result = _load(sightlines, SightlineResult)
     sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
@@ -83,16 +82,17 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, threshold)
     plt = _pyplot()
     figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
-    try:
-        for kind in [kind for kind in ("png", "pdf") if kind in paths]:
-            # Not plots.save_figure: a page keeps its size (no tight bounding box).
-            with atomic_output(paths[kind], overwrite) as temporary:
-                figure.savefig(temporary, format=kind, dpi=DPI)
-    finally:
-        plt.close(figure)
-    if "txt" in paths:
-        with atomic_output(paths["txt"], overwrite) as temporary:
-            temporary.write_text(text)
+    with output_set():  # the chosen files, or none (checked above)
+        try:
+            for kind in [kind for kind in ("png", "pdf") if kind in paths]:
+                # Not plots.save_figure: a page keeps its size (no tight bounding box).
+                with atomic_output(paths[kind], overwrite) as temporary:
+                    figure.savefig(temporary, format=kind, dpi=DPI)
+        finally:
+            plt.close(figure)
+        if "txt" in paths:
+            with atomic_output(paths["txt"], overwrite) as temporary:
+                temporary.write_text(text)
     return paths
 
 

@@ -362,26 +362,30 @@ def _convert(option, value, where, from_flag=False):
         elif from_flag and isinstance(value, str) and "," in value:
             items = [item.strip() for item in value.split(",")]
         else:
-            return _convert_one(option, value, where)
+            return _convert_one(option, value, where, from_flag)
         if not items:
             raise InputError(f"{where}: expected one value or a non-empty list, got {value!r}")
-        converted = [_convert_one(option, item, where) for item in items]
+        converted = [_convert_one(option, item, where, from_flag) for item in items]
         return converted[0] if len(converted) == 1 else converted
-    return _convert_one(option, value, where)
+    return _convert_one(option, value, where, from_flag)
 
 
-def _convert_one(option, value, where):
-    value = _checked_kind(option, value, where)
+def _convert_one(option, value, where, from_flag):
+    value = _checked_kind(option, value, where, from_flag)
     if option.choices and value not in option.choices:
         raise InputError(f"{where}: {value!r} is not one of {', '.join(str(c) for c in option.choices)}")
     return value
 
 
-def _checked_kind(option, value, where):
+def _checked_kind(option, value, where, from_flag):
+    """``value`` as ``option``'s kind. A flag's text is parsed; a run file's value must already be of
+    the kind (TOML has numbers: "1e-14" or 7.0 for a count is a mistake, not a number to guess)."""
     kind = option.kind
     if option.path and kind is str and value == "":
         return None  # an output switched off (a run file's, from the command line)
     try:
+        if not from_flag and kind in (int, float) and (isinstance(value, str) or (kind is int and isinstance(value, float))):
+            raise TypeError
         if kind is bool:
             if isinstance(value, bool):
                 return value

@@ -24,12 +24,11 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .background import MeanPlasma
 from .constants import K_BOLTZMANN_EV_K
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
-                     check_masses, check_no_other_options, check_seed, check_trace_options, run_batches,
-                     warn_outside_probed_range)
-from .errors import InputError
+                     check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
+                     check_trace_options, run_batches, warn_outside_probed_range)
+from .errors import InputError, require_number
 from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
@@ -57,15 +56,18 @@ def _healpy():
 
 
 def _check_nside(nside):
-    if isinstance(nside, bool) or not isinstance(nside, (int, np.integer)) or nside < 1 or nside & (nside - 1):
-        raise InputError(f"nside: expected a power of 2 (1, 2, 4, ..., 8192), got {nside!r}")
-    return int(nside)
+    what = "nside (--nside)"
+    expected = "a power of 2 (1, 2, 4, ..., 2^29)"
+    nside = require_number(nside, what, whole=True, at_least=1, at_most=2**29, expected=expected)
+    if nside & (nside - 1):
+        raise InputError(f"{what}: expected {expected}, got {nside!r}")
+    return nside
 
 
 def _sub_pixel_level(rays_per_pixel):
     """rays_per_pixel = 4^k: the rays follow the centres of the pixels at nside * 2^k inside each pixel."""
-    if isinstance(rays_per_pixel, bool) or not isinstance(rays_per_pixel, (int, np.integer)) or rays_per_pixel < 1:
-        raise InputError(f"rays_per_pixel: expected 1, 4, 16, 64 ..., got {rays_per_pixel!r}")
+    rays_per_pixel = require_number(rays_per_pixel, "rays_per_pixel", whole=True, at_least=1,
+                                    expected="1, 4, 16, 64 ...")
     level = round(math.log(rays_per_pixel, 4))
     if 4**level != rays_per_pixel:
         raise InputError(f"rays_per_pixel: expected a power of 4 (1, 4, 16, 64 ...) so the rays sit at the "
@@ -136,10 +138,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     seed = check_seed(seed)
     nside = _check_nside(nside)
     level = _sub_pixel_level(rays_per_pixel)
-    if ordering not in ORDERINGS:
+    if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
-    plasma = plasma if plasma is not None else MeanPlasma()
+    check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
+    plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
     run = {
@@ -162,7 +165,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
                          progress, unit="pixel", description="sky")
     if ordering == "RING":
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
-        arrays = {name: values[ring_to_nest] for name, values in arrays.items()}
+        for values in arrays.values():  # in place, one array at a time: no second set of maps
+            values[...] = values[ring_to_nest]
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run,
                        tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])

@@ -53,7 +53,7 @@ import astropy.units as u
 import numpy as np
 
 from .constants import H_PLANCK_EV_S, K_BOLTZMANN_EV_K
-from .errors import InputError
+from .errors import InputError, require_path
 
 #: The shipped copy of the published FIRAS monopole table.
 DEFAULT_SPECTRUM = "cmb_monopole_fixsen1996.txt"
@@ -141,7 +141,7 @@ def read_spectrum(path=None):
     """
     if path is None:
         return _shipped_spectrum()
-    return _read(Path(path))
+    return _read(require_path(path, "spectrum (--spectrum)"))
 
 
 @lru_cache(maxsize=1)

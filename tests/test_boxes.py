@@ -24,6 +24,8 @@ from raytrace.boxes import Box, BoxSeries, as_series, load_box, load_series
 from raytrace.errors import InputError
 from raytrace.ionisation import IonisationHistory
 
+from reference_tracer import PLASMA_M2_PER_DENSITY
+
 HELIUM = 0.245
 X_E = 1.08
 H_SIM = 0.6766
@@ -34,6 +36,11 @@ def plasma():
     """Planck18 with a constant x_e, so that nbar_e has a closed form below."""
     return MeanPlasma(Planck18, IonisationHistory.constant(X_E, helium_fraction=HELIUM))
 
+
+ROOT_PLASMA_MASS = np.sqrt(PLASMA_M2_PER_DENSITY)  # eV per sqrt(cm^-3), exact CODATA (PHYSICS.md section 1)
+# Boxes hold float32 and n_e is formed from them in float32: half a float32 unit (6e-8) in n_e is 3e-8
+# in m (measured up to 2.3e-8); 1e-7 leaves a factor 3 and sees the NRL constant's 1.5e-4 in m.
+MASS_RTOL = 1e-7
 
 def hydrogen_density0():
     # n_H0 = (1 - Y_p) Omega_b rho_crit / m_p (PHYSICS.md section 5), all from astropy.
@@ -514,13 +521,14 @@ def test_statistics_of_a_log_normal_box(plasma):
     reference = stats.lognorm(s=sigma, scale=np.exp(-0.5 * sigma**2))
     for p in (16.0, 50.0, 84.0):
         assert result["percentiles"][p] == pytest.approx(reference.ppf(p / 100), rel=0.03)
-    # m_gamma = h * 8.98 kHz * sqrt(n_e / cm^-3) (NRL Plasma Formulary; PHYSICS.md section 1).
-    per_root_density = (const.h * 8.98 * u.kHz).to_value(u.eV)
+    # m_gamma = sqrt(4 pi alpha n_e / m_e) (PHYSICS.md section 1; the NRL Plasma Formulary's 8.98 kHz
+    # sqrt(n_e) is its 3-digit check), from the exact CODATA constants (tests/reference_tracer.py).
+    per_root_density = ROOT_PLASMA_MASS
     masses = result["plasma_mass_eV"]
     n_e = stored.astype(np.float64) * mean_electron_density(z)
-    assert masses["mean_density"] == pytest.approx(per_root_density * np.sqrt(mean_electron_density(z)), rel=2e-3)
-    assert masses["lowest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e.min()), rel=2e-3)
-    assert masses["highest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e.max()), rel=2e-3)
+    assert masses["mean_density"] == pytest.approx(per_root_density * np.sqrt(mean_electron_density(z)), rel=MASS_RTOL, abs=0)
+    assert masses["lowest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e.min()), rel=MASS_RTOL, abs=0)
+    assert masses["highest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e.max()), rel=MASS_RTOL, abs=0)
     sampled = box.statistics(plasma, max_cells=8192)
     assert sampled["percentile_cells"] == 8192
     assert sampled["percentiles"][50.0] == pytest.approx(result["percentiles"][50.0], rel=0.05)
@@ -532,8 +540,10 @@ def test_plasma_mass_range_scales_as_the_three_halves_power_of_one_plus_z():
     values[1, 1, 1] = 9.0
     box = Box.from_array(values * 1e-7, "10 cMpc", 1.0, "n_e_comoving")
     low, high = box.plasma_mass_range(0.5, 3.0)
-    # n_e physical = comoving (1+z)^3 (PHYSICS.md section 3); m = 3.71e-11 eV sqrt(n_e) (section 1).
-    per_root_density = (const.h * 8.98 * u.kHz).to_value(u.eV)
-    assert low == pytest.approx(per_root_density * np.sqrt(1e-7 * 1.5**3), rel=2e-3)
-    assert high == pytest.approx(per_root_density * np.sqrt(9e-7 * 4.0**3), rel=2e-3)
+    # n_e physical = comoving (1+z)^3 (PHYSICS.md section 3); m = sqrt(4 pi alpha n_e / m_e) (section 1),
+    # exact CODATA constants (tests/reference_tracer.py).
+    per_root_density = ROOT_PLASMA_MASS
+    stored = (values * 1e-7).astype(np.float32).astype(np.float64)  # as the box holds them
+    assert low == pytest.approx(per_root_density * np.sqrt(stored[0, 0, 1] * 1.5**3), rel=MASS_RTOL, abs=0)
+    assert high == pytest.approx(per_root_density * np.sqrt(stored[1, 1, 1] * 4.0**3), rel=MASS_RTOL, abs=0)
     assert box.statistics(MeanPlasma(Planck18, IonisationHistory.constant(1.0)))["zero_cells"] == 1

@@ -15,6 +15,8 @@ import pytest
 
 import raytrace.cli as cli
 
+from reference_tracer import PLASMA_M2_PER_DENSITY
+
 H_SIM = 0.6766
 
 
@@ -24,6 +26,17 @@ def registered(monkeypatch):
     if "inspect" not in cli._SUBCOMMANDS:
         monkeypatch.setattr(cli, "_SUBCOMMANDS", cli._SUBCOMMANDS + ("inspect",))
 
+
+ROOT_PLASMA_MASS = np.sqrt(PLASMA_M2_PER_DENSITY)  # eV per sqrt(cm^-3), exact CODATA (PHYSICS.md section 1)
+# Boxes hold float32 and n_e is formed from them in float32: half a float32 unit (6e-8) in n_e is 3e-8
+# in m (measured up to 2.3e-8); 1e-7 leaves a factor 3 and sees the NRL constant's 1.5e-4 in m.
+MASS_RTOL = 1e-7
+
+
+def half_unit_in_last_digit(printed):
+    """Half a unit in the last printed digit of a number printed as d.dddde+XX, relative to it."""
+    mantissa = printed.lower().split("e")[0]
+    return 0.5 * 10.0 ** -len(mantissa.split(".")[1]) / abs(float(mantissa))
 
 def write(path, values, dataset="density", **attrs):
     with h5py.File(path, "a") as handle:
@@ -59,16 +72,17 @@ def test_json_report_of_a_series(tmp_path, capsys):
     for p in ("0.1", "1.0", "16.0", "50.0", "84.0", "99.0", "99.9"):
         assert statistics["percentiles"][p] == pytest.approx(np.percentile(values, float(p)), rel=1e-5)
     assert statistics["mean_overdensity"] == pytest.approx(values.mean(dtype=np.float64), rel=1e-6)
-    # m_gamma = h * 8.98 kHz * sqrt(n_e / cm^-3) (NRL Plasma Formulary; PHYSICS.md section 1).
-    per_root_density = (const.h * 8.98 * u.kHz).to_value(u.eV)
+    # m_gamma = sqrt(4 pi alpha n_e / m_e) (PHYSICS.md section 1; the NRL Plasma Formulary's 8.98 kHz
+    # sqrt(n_e) is its 3-digit check), from the exact CODATA constants (tests/reference_tracer.py).
+    per_root_density = ROOT_PLASMA_MASS
     n_e_max = values.max() * statistics["mean_electron_density_cm3"]
-    assert statistics["plasma_mass_eV"]["highest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e_max), rel=2e-3)
+    assert statistics["plasma_mass_eV"]["highest_cell"] == pytest.approx(per_root_density * np.sqrt(n_e_max), rel=MASS_RTOL, abs=0)
     coverage = report["series"]["coverage"]
     # Nearest snapshot serves: the boundary sits half-way, z = 1 (issue 3 item 2).
     assert [(c["z_start"], c["z_end"], c["box"]) for c in coverage] == [(0.0, 1.0, 0), (1.0, 1.5, 1)]
     # Over z = 0 .. 1 the z = 0.5 box's densest cell grows as (1+z)^3 (PHYSICS.md section 3).
     comoving_max = values.max() * statistics["mean_electron_density_cm3"] / 1.5**3
-    assert coverage[0]["mass_high_eV"] == pytest.approx(per_root_density * np.sqrt(comoving_max * 2.0**3), rel=2e-3)
+    assert coverage[0]["mass_high_eV"] == pytest.approx(per_root_density * np.sqrt(comoving_max * 2.0**3), rel=MASS_RTOL, abs=0)
 
 
 def test_text_report_and_flags_for_a_file_without_attributes(tmp_path, capsys):
@@ -80,12 +94,15 @@ def test_text_report_and_flags_for_a_file_without_attributes(tmp_path, capsys):
     assert "8^3 cells, stored as int64" in out and "/gas/ne" in out
     assert "50 cMpc, as '50 Mpc'  [given: --box-size" in out
     assert "series" not in out
-    # n_e = 3 cm^-3 everywhere: m = h 8.98 kHz sqrt(3) = 6.43e-11 eV (NRL Plasma Formulary).
-    expected = (const.h * 8.98 * u.kHz).to_value(u.eV) * np.sqrt(3.0)
+    # n_e = 3 cm^-3 everywhere: m = sqrt(4 pi alpha 3 / m_e) = 6.43e-11 eV (PHYSICS.md section 1, exact CODATA),
+    # printed with 5 digits: to half a unit in the last printed digit.
+    expected = ROOT_PLASMA_MASS * np.sqrt(3.0)
     probes = re.search(r"probes\s+dark-photon masses (\S+) \.\. (\S+) eV at z = 2", out)
     assert probes, out
-    assert float(probes[1]) == pytest.approx(expected, rel=2e-3)
-    assert float(probes[2]) == pytest.approx(expected, rel=2e-3)
+    for printed in (probes[1], probes[2]):
+        assert float(printed) == pytest.approx(expected, rel=half_unit_in_last_digit(printed), abs=0)
+    # A 1e-3 slip in the constant (half the old 2e-3) would be seen.
+    assert not float(probes[1]) * 1.001 == pytest.approx(expected, rel=half_unit_in_last_digit(probes[1]), abs=0)
 
 
 def test_plot_is_written_once_and_replaced_only_when_asked(tmp_path, capsys):

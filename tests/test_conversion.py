@@ -135,7 +135,7 @@ def test_saturating_form_values():
     # p = 1 - exp(-gamma) (Zener 1932) and its limits.
     gamma = np.array([0.0, 1e-12, 0.5, 50.0])
     np.testing.assert_allclose(crossing_probability(gamma, saturate=True), -np.expm1(-gamma), rtol=1e-12, atol=0)
-    assert float(crossing_probability(1e-12, saturate=True)) == pytest.approx(1e-12, rel=1e-9)
+    assert float(crossing_probability(1e-12, saturate=True)) == pytest.approx(1e-12, rel=1e-9, abs=0)
     assert float(crossing_probability(50.0, saturate=True)) == pytest.approx(1.0, abs=1e-15)
 
 

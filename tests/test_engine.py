@@ -3,13 +3,15 @@
 Sources: PHYSICS.md sections 3, 4 and 7 (homogeneous kernel, one-point-PDF
 mean of Caputo, Liu, Mishra-Sharma & Ruderman 2020, PRL 125, 221303, and the
 dispersion measure of Deng & Zhang 2014, ApJL 783, L35); distances and H(z)
-from astropy; the reference sampling of the box from scipy.ndimage.
+from astropy; the one-point PDF of the interpolated box from tests/reference_tracer.py
+(scipy.ndimage.map_coordinates at random points, with its own standard error).
 """
 
+import astropy.constants as const
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
-from scipy import integrate, ndimage, optimize
+from scipy import integrate, ndimage
 
 import raytrace
 from raytrace.background import MeanPlasma
@@ -17,12 +19,11 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError, ProbedRangeWarning
 from raytrace.ionisation import IonisationHistory
 
-from reference_tracer import PLASMA_M2_PER_DENSITY
+from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, one_point_pdf_mean  # exact CODATA (astropy)
 
 # 4 pi alpha / m_e in eV^2 per cm^-3 (PHYSICS.md section 1, whose NRL Plasma Formulary check value
 # 8.98 kHz sqrt(n_e / cm^-3) has 3 digits), from the exact CODATA constants in astropy.
 M2_PER_DENSITY = PLASMA_M2_PER_DENSITY
-HBAR_EV_S = 6.582119569e-16  # CODATA 2018
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 
 
@@ -45,38 +46,67 @@ def homogeneous_kernel(mass, n_com):
     return np.pi * mass**2 / (3 * one_plus_z * hubble_eV), one_plus_z - 1
 
 
-def test_uniform_series_gives_the_homogeneous_kernel_on_every_ray(constant_plasma):
+@pytest.fixture(scope="module")
+def uniform_run(constant_plasma):
     series = uniform_series(constant_plasma)
     n_com = float(constant_plasma.mean_comoving_electron_density_cm3(0.0))
     mass = np.geomspace(2.0e-14, 3.0e-13, 24)
     # Masses resonating beyond z = 3 are outside what the boxes span: the run says so.
     with pytest.warns(ProbedRangeWarning, match="outside the plasma masses the boxes span"):
         result = raytrace.cast_sightlines(series, mass, 40, z_max=20.0, plasma=constant_plasma, seed=3)
-    expected, z_r = homogeneous_kernel(mass, n_com)
-    # Measured 2e-6 (the engine's linear 1+z over a cell and its tables); 1e-4 is the issue's tolerance.
+    return result, *homogeneous_kernel(mass, n_com)
+
+
+def check_homogeneous_kernel(kernel_boxes, kernel_background, expected, z_r):
+    """The uniform-box kernel inside the boxes and the background's beyond them against PHYSICS.md s.3."""
     inside = (z_r > 0.05) & (z_r < 2.95)
     assert inside.sum() > 5
-    np.testing.assert_allclose(result.kernel_boxes[:, inside], np.broadcast_to(expected[inside], (40, inside.sum())), rtol=1e-4)
-    assert np.all(result.crossings[:, inside] == 1)
+    # Measured 1.9e-6 (the engine's linear 1+z over a cell and its tables); 1e-5 leaves a factor 5.
+    np.testing.assert_allclose(kernel_boxes[:, inside], np.broadcast_to(expected[inside], (40, inside.sum())),
+                               rtol=1e-5)
     # Beyond the boxes (z > 3) the background part carries the resonance, the boxes nothing.
     beyond = z_r > 3.05
     assert beyond.sum() > 3
-    assert np.all(result.kernel_boxes[:, beyond] == 0)
-    np.testing.assert_allclose(result.kernel_background[beyond], expected[beyond], rtol=0.01)
+    assert np.all(kernel_boxes[:, beyond] == 0)
+    # Measured 4e-15 (8e-11 before the background's rewrite in issue 11; both sides take H(z) from astropy);
+    # 1e-7 leaves room for a root finder's or quadrature's tolerance and still sees the NRL constant's 3e-4.
+    np.testing.assert_allclose(kernel_background[beyond], expected[beyond], rtol=1e-7)
 
 
-def test_mean_dispersion_measure_of_uniform_series(constant_plasma):
-    # Deng & Zhang 2014: DM(z) = integral c n_e,com (1 + z) dz / H(z) for a fully mixed IGM
-    # (f_IGM = 1); n_H0 from astropy's critical density, Omega_b and Y_p = 0.2454; m_p CODATA.
-    series = uniform_series(constant_plasma)
-    result = raytrace.cast_sightlines(series, np.array([1e-13]), 8, z_max=3.0, plasma=constant_plasma,
+def test_uniform_series_gives_the_homogeneous_kernel_on_every_ray(uniform_run):
+    result, expected, z_r = uniform_run
+    check_homogeneous_kernel(result.kernel_boxes, result.kernel_background, expected, z_r)
+    inside = (z_r > 0.05) & (z_r < 2.95)
+    assert np.all(result.crossings[:, inside] == 1)
+
+
+# Y_p = 0.245 (PHYSICS.md section 5), given to the history explicitly so that the reference does not
+# read it back from the object under test.
+HELIUM_FRACTION = 0.245
+
+
+@pytest.fixture(scope="module")
+def dispersion_run():
+    plasma = MeanPlasma(None, IonisationHistory.constant(X_E, helium_fraction=HELIUM_FRACTION))
+    result = raytrace.cast_sightlines(uniform_series(plasma), np.array([1e-13]), 8, z_max=3.0, plasma=plasma,
                                       include_background=False)
-    m_p_g = 1.67262192e-24
-    n_H0 = (1 - constant_plasma.ionisation.helium_fraction) * Planck18.Ob0 * Planck18.critical_density0.to_value("g/cm3") / m_p_g
-    c_km_s = 299792.458
-    integral, _ = integrate.quad(lambda z: (1 + z) / Planck18.H(z).to_value("km/(s Mpc)"), 0, 3.0)
-    expected = X_E * n_H0 * c_km_s * integral * 1e6  # Mpc -> pc
-    assert result.dispersion_measure.mean() == pytest.approx(expected, rel=0.005)
+    # Deng & Zhang 2014: DM(z) = integral c n_e,com (1 + z) dz / H(z) for a fully mixed IGM (f_IGM = 1), with
+    # n_e,com = x_e n_H0, n_H0 = (1 - Y_p) Omega_b rho_crit0 / m_p (PHYSICS.md section 5); rho_crit0, Omega_b and
+    # H(z) from astropy's Planck18, m_p and c CODATA (astropy).
+    n_H0 = (1 - HELIUM_FRACTION) * Planck18.Ob0 * Planck18.critical_density0.to_value("g/cm3") / const.m_p.to_value("g")
+    integral, _ = integrate.quad(lambda z: (1 + z) / Planck18.H(z).to_value("km/(s Mpc)"), 0, 3.0,
+                                 epsabs=0, epsrel=1e-12)
+    expected = X_E * n_H0 * const.c.to_value("km/s") * integral * 1e6  # Mpc -> pc
+    return result.dispersion_measure, expected
+
+
+def check_dispersion_measure(dispersion_measure, expected):
+    # Measured 1.8e-7 (the engine's tables in 1+z), every ray alike to 4e-9; 1e-6 leaves a factor 5.
+    assert dispersion_measure.mean() == pytest.approx(expected, rel=1e-6)
+
+
+def test_mean_dispersion_measure_of_uniform_series(dispersion_run):
+    check_dispersion_measure(*dispersion_run)
 
 
 def smooth_lognormal_box(cells=64, sigma_gauss=0.5, smoothing_cells=2.0, seed=11):
@@ -85,29 +115,6 @@ def smooth_lognormal_box(cells=64, sigma_gauss=0.5, smoothing_cells=2.0, seed=11
     gauss = ndimage.gaussian_filter(rng.standard_normal((cells,) * 3), smoothing_cells, mode="wrap")
     gauss *= sigma_gauss / gauss.std()
     return np.exp(gauss - sigma_gauss**2 / 2).astype(np.float32)
-
-
-def pdf_mean_kernel(box_values, n_com_unit, mass, z_max, samples=2_000_000, seed=5):
-    """<K>(m) = pi m^2 integral dz p_lnD(ln D*) / ((1+z)^2 H(z)), D* = m^2 / (4 pi alpha n_unit(1+z)^3 / m_e)
-    (PHYSICS.md section 4; Caputo et al. 2020), with p_lnD the one-point PDF of the field the rays
-    sample: the trilinear interpolant, here sampled with scipy.ndimage.map_coordinates (order 1,
-    grid-wrap) at uniform random points, cell values at cell centres. The box holds
-    n_e,comoving = box_values * n_com_unit, so D is measured in units of n_com_unit."""
-    cells = box_values.shape[0]
-    rng = np.random.default_rng(seed)
-    points = rng.random((3, samples)) * cells - 0.5
-    values = ndimage.map_coordinates(box_values.astype(np.float64), points, order=1, mode="grid-wrap")
-    ln_d = np.log(values)
-    density, edges = np.histogram(ln_d, bins=400, density=True)
-    centres = 0.5 * (edges[1:] + edges[:-1])
-    z = np.linspace(0.0, z_max, 4001)
-    hubble_eV = Planck18.H(z).to_value("1/s") * HBAR_EV_S
-    out = []
-    for m in mass:
-        ln_d_star = np.log(m**2 / (M2_PER_DENSITY * n_com_unit * (1 + z) ** 3))
-        p = np.interp(ln_d_star, centres, density, left=0.0, right=0.0)
-        out.append(np.pi * m**2 * integrate.trapezoid(p / ((1 + z) ** 2 * hubble_eV), z))
-    return np.array(out)
 
 
 @pytest.fixture(scope="module")
@@ -121,14 +128,47 @@ def lognormal_run(constant_plasma):
     return values, n_com, box, mass, result
 
 
-def test_monte_carlo_mean_matches_one_point_pdf_integral(lognormal_run):
-    values, n_com, box, mass, result = lognormal_run
-    expected = pdf_mean_kernel(values, n_com, mass, 1.0)
+def check_mean_against_one_point_pdf(mean, standard_error, expected, expected_error):
+    """The Monte Carlo mean over rays against the one-point-PDF integral (PHYSICS.md section 4)."""
+    error = np.hypot(standard_error, expected_error)
+    # Sharp enough to see a 1.5 % error: 3000 rays pin the mean to 0.4 % to 1.0 % (measured).
+    assert np.all(error < 0.012 * expected)
+    # Measured pulls within -3.2 .. 1.8 combined standard errors over the 12 masses (which share their
+    # rays, so they are correlated); 4 standard errors leaves a 1e-4 chance per mass of a false alarm.
+    assert np.all(np.abs(mean - expected) < 4 * error), (mean / expected - 1, error / expected)
+
+
+def spread_ratio(kernel, resamples=200, seed=0):
+    """std/mean between rays per mass, and its bootstrap standard error (numpy resampling of the rays)."""
+    rng = np.random.default_rng(seed)
+    ratio = kernel.std(axis=0, ddof=1) / kernel.mean(axis=0)
+    draws = [(pick.std(axis=0, ddof=1) / pick.mean(axis=0))
+             for pick in (kernel[rng.integers(0, kernel.shape[0], kernel.shape[0])] for _ in range(resamples))]
+    return ratio, np.std(draws, axis=0, ddof=1)
+
+
+def check_spread_is_real_and_below_the_mean(kernel):
+    ratio, error = spread_ratio(kernel)
+    # Real: std/mean (measured 0.21 .. 0.56) lies 5 of its bootstrap errors above 1e-3, far above the
+    # rounding by which rays through a field without structure differ (test_sky.py: below 1e-6).
+    assert np.all(ratio - 5 * error > 1e-3), (ratio, error)
+    # Smaller than the mean: rays cross each of these masses 19 to 140 times (measured), so no ray's kernel
+    # strays from the mean by more than the mean on average.
+    assert np.all(ratio + 5 * error < 1.0), (ratio, error)
+
+
+@pytest.fixture(scope="module")
+def lognormal_reference(lognormal_run):
+    values, n_com, _, mass, _ = lognormal_run
+    return one_point_pdf_mean(values.astype(np.float64), n_com, mass, 1.0, 2_000_000, seed=2)
+
+
+def test_monte_carlo_mean_matches_one_point_pdf_integral(lognormal_run, lognormal_reference):
+    result = lognormal_run[-1]
     well_sampled = result.crossings.sum(axis=0) >= 300
-    assert well_sampled.sum() >= 8
-    np.testing.assert_allclose(result.mean()[well_sampled], expected[well_sampled], rtol=0.03)
-    # The spread between rays is real and smaller than the mean (many crossings per ray).
-    assert np.all(result.standard_error()[well_sampled] < 0.05 * result.mean()[well_sampled])
+    assert well_sampled.all()
+    check_mean_against_one_point_pdf(result.mean(), result.standard_error(), *lognormal_reference)
+    check_spread_is_real_and_below_the_mean(result.kernel_boxes)
 
 
 def test_same_seed_same_result_for_any_jobs_or_batch(lognormal_run, constant_plasma):
@@ -172,3 +212,46 @@ def test_bad_input_is_refused(constant_plasma):
         raytrace.cast_sightlines(series, good[::-1], 2, z_max=1.0, plasma=constant_plasma)
     with pytest.raises(InputError, match="n_rays"):
         raytrace.cast_sightlines(series, good, 0, z_max=1.0, plasma=constant_plasma)
+
+
+# -- the tightened checks catch what the old tolerances let through ---------------------------------
+def _scaled(kernel, factor):
+    """Each ray's deviation from the mean over rays multiplied by ``factor`` (0 removes the spread)."""
+    mean = kernel.mean(axis=0)
+    return mean + factor * (kernel - mean)
+
+
+# (name, perturbation of the quantity under test, what the old check allowed)
+PERTURBATIONS = [
+    ("kernel in the boxes x 1.005", "uniform", lambda b, g: (1.005 * b, g)),  # old: rtol 1 %
+    ("background kernel x 1.005", "uniform", lambda b, g: (b, 1.005 * g)),  # old: rtol 1 %
+    ("kernel in the boxes x 1.0005", "uniform", lambda b, g: (1.0005 * b, g)),  # the NRL constant's 3e-4 in m^2
+    ("DM x 1.003", "dm", lambda dm: 1.003 * dm),  # old: rel 0.5 %
+    ("DM x 0.9997", "dm", lambda dm: 0.9997 * dm),  # 3e-4: Y_p = 0.2454 instead of 0.245 moves DM by 5e-4
+    ("mean x 1.015", "mean", 1.015),  # old: rtol 3 % (measured up to 1.2 % off)
+    ("mean x 0.985", "mean", 0.985),
+    ("no spread between rays", "spread", 0.0),  # old: only standard error < 5 % of the mean
+    ("spread doubled", "spread", 2.0),
+]
+
+
+@pytest.mark.parametrize("name, check, perturb", PERTURBATIONS, ids=[p[0] for p in PERTURBATIONS])
+def test_each_tightened_check_fails_on_the_perturbation_the_old_tolerance_let_through(
+        name, check, perturb, request):
+    if check == "uniform":
+        result, expected, z_r = request.getfixturevalue("uniform_run")
+        boxes, background = perturb(result.kernel_boxes, result.kernel_background)
+        run = lambda: check_homogeneous_kernel(boxes, background, expected, z_r)  # noqa: E731
+    elif check == "dm":
+        dispersion_measure, expected = request.getfixturevalue("dispersion_run")
+        run = lambda: check_dispersion_measure(perturb(dispersion_measure), expected)  # noqa: E731
+    elif check == "mean":
+        result = request.getfixturevalue("lognormal_run")[-1]
+        reference = request.getfixturevalue("lognormal_reference")
+        run = lambda: check_mean_against_one_point_pdf(perturb * result.mean(), result.standard_error(),  # noqa: E731
+                                                       *reference)
+    else:
+        kernel = request.getfixturevalue("lognormal_run")[-1].kernel_boxes
+        run = lambda: check_spread_is_real_and_below_the_mean(_scaled(kernel, perturb))  # noqa: E731
+    with pytest.raises(AssertionError):
+        run()

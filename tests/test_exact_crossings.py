@@ -83,9 +83,10 @@ def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
     for r, (kernel, crossings, dm) in enumerate(reference):
         plain = result.tangent_events[r] == 0  # no Airy event: the Landau-Zener sum on both sides
         np.testing.assert_array_equal(result.crossings[r, plain], crossings[plain])
-        # Issue tolerance 1e-3; measured ~1e-6 (the engine's (1+z)^3 is linear over a cell).
-        np.testing.assert_allclose(result.kernel_boxes[r, plain], kernel[plain], rtol=1e-3, atol=0)
-        # DM: the trapezoid at 1/512 cell is good to ~1e-7; the engine integrates the cubic exactly.
+        # Measured 5.1e-6 (the engine's (1+z)^3 is linear over a cell); 5e-5 leaves a factor 10.
+        np.testing.assert_allclose(result.kernel_boxes[r, plain], kernel[plain], rtol=5e-5, atol=0)
+        # DM: measured 1.6e-8 (the reference's trapezoid at 1/512 cell; the engine integrates the cubic
+        # exactly); 1e-6 leaves the trapezoid room on rays with sharper cells.
         np.testing.assert_allclose(result.dispersion_measure_boxes[r], dm, rtol=1e-6)
         compared += int(np.sum(crossings[plain]))
     assert compared > 200
@@ -108,6 +109,7 @@ def test_jumps_between_copies_add_no_crossing(plasma):
     reference = reference_rays(box, series, z_max, mass, 2, rays, plasma)
     for r, (kernel, crossings, _) in enumerate(reference):
         np.testing.assert_array_equal(result.crossings[r], crossings)
+        # Measured 7.8e-8 (linear (1+z)^3 over a cell against the reference's brentq); 1e-6 leaves a factor 10.
         np.testing.assert_allclose(result.kernel_boxes[r], kernel, rtol=1e-6)
     # Each passage through a ramp crosses each of these masses once; a ray crosses ~2 ramps per box length.
     assert result.crossings.min() > 0
@@ -162,7 +164,8 @@ def test_blended_snapshots_follow_the_linear_blend_of_n_e(plasma):
 def two_level_probability(delta, omega=0.5, m2=1.0, curvature=1.0, epsilon=1e-3, half_span=30.0):
     """|photon -> dark photon amplitude|^2 through m_gamma^2 - m^2 = delta + a tau^2 / 2, from the
     two-level equation i psi' = [[(m_gamma^2 - m^2)/(2 omega), eps m^2/(2 omega)], [., 0]] psi in the
-    interaction picture, integrated with solve_ivp (DOP853); truncation at |tau| = 30 costs < 0.3 %."""
+    interaction picture, integrated with solve_ivp (DOP853). Truncation at |tau| = 30 leaves an oscillating
+    error: measured up to 0.7 % (the difference between |tau| = 30 and 60 over the deltas tested)."""
     coupling = epsilon * m2 / (2 * omega)
 
     def rhs(tau, y):
@@ -178,13 +181,17 @@ def two_level_probability(delta, omega=0.5, m2=1.0, curvature=1.0, epsilon=1e-3,
 def test_airy_pair_kernel_matches_the_two_level_equation(delta):
     # PHYSICS.md section 9 units: omega = 0.5, m^2 = 1, a = 1, epsilon = 1e-3, z = 0; P = eps^2 K / omega.
     probability = 1e-6 * pair_kernel(1.0, 1.0, 0.5, 1.0, delta) / 0.5
+    # Measured up to 0.72 % (delta = -2), the reference's own truncation error (see above): 1 % covers it.
     np.testing.assert_allclose(probability, two_level_probability(delta), rtol=0.01)
 
 
 def test_airy_pair_kernel_reproduces_the_published_check_values():
-    # PHYSICS.md section 9 table, "Airy P" column (4 digits): the formula itself.
-    for delta, airy in ((1.0, 6.067e-7), (0.0, 7.899e-6), (-1.0, 1.686e-5), (-2.0, 9.908e-7), (-4.0, 7.092e-6)):
-        assert 1e-6 * pair_kernel(1.0, 1.0, 0.5, 1.0, delta) / 0.5 == pytest.approx(airy, rel=1e-3)
+    # PHYSICS.md section 9 table, "Airy P" column (4 digits): the formula itself, to half a unit in the
+    # table's last digit (measured at most 2.1e-4 relative, delta = -1, against 3.0e-4 allowed there).
+    for delta, airy in ((1.0, "6.067e-7"), (0.0, "7.899e-6"), (-1.0, "1.686e-5"), (-2.0, "9.908e-7"),
+                        (-4.0, "7.092e-6")):
+        half_unit = 0.5e-3 / float(airy.split("e")[0])
+        assert 1e-6 * pair_kernel(1.0, 1.0, 0.5, 1.0, delta) / 0.5 == pytest.approx(float(airy), rel=half_unit)
 
 
 def test_airy_pair_averages_to_the_two_landau_zener_terms():
@@ -198,6 +205,7 @@ def test_airy_pair_averages_to_the_two_landau_zener_terms():
     airy = np.array([pair_kernel(1.0, 1.0, omega, 1.0, d) for d in deltas])
     ai, aip = special.airy(np.array([-8.0, -2.0]))[:2]
     closed = prefactor * ((-2.0 * ai[1] ** 2 - aip[1] ** 2) - (-8.0 * ai[0] ** 2 - aip[0] ** 2))
+    # Measured 1.7e-9 (the trapezoid over 40001 points); 1e-6 leaves room for other platforms' Ai.
     assert np.trapezoid(airy, deltas) == pytest.approx(closed, rel=1e-6)
     # (2) Over the whole window |xi| < XI_CUT (crossings and near misses) the kernel integrates to the
     #     two Landau-Zener terms integrated over the crossing side, 2 sqrt(2) pi sqrt(D) for Delta in
@@ -205,15 +213,16 @@ def test_airy_pair_averages_to_the_two_landau_zener_terms():
     edge = XI_CUT * scale
     deltas = np.linspace(-edge, edge, 200001)
     airy = np.array([pair_kernel(1.0, 1.0, omega, 1.0, d) for d in deltas])
-    assert np.trapezoid(airy, deltas) == pytest.approx(2 * np.sqrt(2) * np.pi * np.sqrt(edge), rel=1e-5)
+    # Measured 7e-12; 1e-8 is the trapezoid's error bound at this spacing, many times over.
+    assert np.trapezoid(airy, deltas) == pytest.approx(2 * np.sqrt(2) * np.pi * np.sqrt(edge), rel=1e-8)
 
 
 def test_airy_function_matches_scipy():
-    # Over the engine's window |xi| < XI_CUT and beyond on the oscillating side; measured 3e-8 relative
-    # at xi = 5, where the series' cancellation is worst inside that range.
+    # Over the engine's window |xi| < XI_CUT and beyond on the oscillating side; measured 2e-9 relative
+    # (1.1e-11 absolute, near the zeros); 1e-7 leaves a factor 50.
     x = np.linspace(-8.0, 5.0, 261)
     ours = np.array([airy_ai(v) for v in x])
-    np.testing.assert_allclose(ours, special.airy(x)[0], rtol=1e-6, atol=1e-14)
+    np.testing.assert_allclose(ours, special.airy(x)[0], rtol=1e-7, atol=1e-14)
 
 
 def test_the_window_keeps_the_mean_of_the_landau_zener_terms():
@@ -222,7 +231,8 @@ def test_the_window_keeps_the_mean_of_the_landau_zener_terms():
     from scipy.integrate import quad
 
     inside = quad(lambda t: special.airy(t)[0] ** 2, -XI_CUT, XI_CUT, limit=200)[0]
-    assert inside == pytest.approx(np.sqrt(XI_CUT) / np.pi, rel=1e-6)
+    # Measured exact to double precision; 1e-8 is quad's own default relative tolerance (1.5e-8).
+    assert inside == pytest.approx(np.sqrt(XI_CUT) / np.pi, rel=1e-8)
 
 
 def test_polynomial_roots_are_all_found_once():
@@ -263,9 +273,9 @@ def test_monte_carlo_mean_equals_the_one_point_pdf_integral_on_a_clumpy_box(plas
                                       seed=5, n_jobs=2, batch_size=2000)
     expected, expected_error = one_point_pdf_mean(values, n_com, mass, z_max, 4_000_000, seed=1)
     error = np.sqrt(result.standard_error() ** 2 + expected_error**2)
-    # Issue acceptance: within 3 standard errors (or 0.5 %) at every mass, the ends included.
-    assert np.all(np.abs(result.mean() - expected) <= np.maximum(3 * error, 0.005 * expected)), (
-        (result.mean() / expected - 1), error / expected)
+    # Within 3 combined standard errors at every mass, the ends included: measured pulls at most 1.8; the
+    # errors are 0.2 % (mid-range) to 53 % (the highest mass, which only the x 30 peaks reach).
+    assert np.all(np.abs(result.mean() - expected) <= 3 * error), ((result.mean() / expected - 1), error / expected)
     assert np.all(expected > 0)
 
 
@@ -291,16 +301,19 @@ def test_the_spread_between_sightlines_is_stable_on_the_demo_series(demo_series)
     # Issue acceptance: two seeds agree within twice their combined bootstrap errors at every mass.
     assert np.all(np.abs(ratio_a - ratio_b)[well] <= 2 * np.hypot(error_a, error_b)[well]), (ratio_a, ratio_b)
     # PHYSICS.md section 9: with the uniform form no single event carries more than a few times a ray's
-    # mean K, where rays cross a mass often (>= 50 times here): measured at most 9.4 times the mean over
-    # these 2 x 4000 rays, against 20 to 50 with half-cell finite differences (issue 10). At the ends
-    # of the range, where a ray crosses a mass a few times, one rare resonance may dominate: that is physics.
+    # mean K, where rays cross a mass often (>= 50 times here): the largest ray's K is measured at 11.5 and
+    # 7.6 times the mean (seeds 1 and 2, 4000 rays each), against 20 to 50 with half-cell finite differences
+    # (issue 10). The maximum of 4000 rays moves a lot between seeds (those two values), so the bound, 15,
+    # sits 30 % above the larger and still well below the old solver's 20. At the ends of the range, where
+    # a ray crosses a mass a few times, one rare resonance may dominate: that is physics.
     often = np.minimum(runs[0].crossings.mean(axis=0), runs[1].crossings.mean(axis=0)) >= 50
     assert often.sum() >= 6
     for run in runs:
-        assert np.all(run.kernel_boxes[:, often].max(axis=0) < 12 * run.kernel_boxes[:, often].mean(axis=0))
-    # The near-tangent events are counted and carry a finite share of the kernel.
+        assert np.all(run.kernel_boxes[:, often].max(axis=0) < 15 * run.kernel_boxes[:, often].mean(axis=0))
+    # The near-tangent events are counted and carry a finite share of the kernel: measured at most 2.9 %
+    # (seed 1) and 2.6 % (seed 2) where rays cross often; 6 % leaves a factor 2.
     assert np.all(runs[0].tangent_events.sum(axis=0)[often] > 0)
-    assert np.all(runs[0].tangent_share()[often] < 0.2)
+    assert np.all(runs[0].tangent_share()[often] < 0.06)
 
 
 # -- options ------------------------------------------------------------------------------------

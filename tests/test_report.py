@@ -157,7 +157,7 @@ def test_summary_table_holds_the_limits(report_paths, stored):
     assert len(rows) >= 3 and all(len(row) == 9 for row in rows)
     for row in rows:
         k = int(np.argmin(np.abs(mass / float(row[0]) - 1)))
-        assert float(row[0]) == pytest.approx(mass[k], rel=1e-3)
+        assert float(row[0]) == pytest.approx(mass[k], rel=1e-3, abs=0)
         assert float(row[1]) == pytest.approx(stored["kernel"][:, k].mean(), rel=1e-3)
         assert float(row[2].rstrip("%")) == pytest.approx(100 * boxes_share[k], abs=0.05)
         assert float(row[3].rstrip("%")) == pytest.approx(100 * np.mean(stored["crossings"][:, k] > 0), abs=0.05)
@@ -188,7 +188,14 @@ def parse(module, argv):
 def read_csv(path):
     with open(path) as handle:
         rows = list(csv.DictReader(line for line in handle if not line.startswith("#")))
-    return {key: np.array([float(row[key]) for row in rows]) for key in rows[0]}
+    # An empty field is an unconstrained mass (read as NaN); the reason columns stay text.
+    return {key: [row[key] for row in rows] if key.endswith("_unconstrained")
+            else np.array([float(row[key]) if row[key] else np.nan for row in rows]) for key in rows[0]}
+
+
+def as_table(epsilon_max):
+    """epsilon_max as a table holds it: unconstrained (inf) masses are empty fields (NaN when read)."""
+    return np.where(np.isinf(epsilon_max), np.nan, epsilon_max)
 
 
 def test_limits_cli_from_a_result_file(run_files, stored, capsys):
@@ -203,18 +210,20 @@ def test_limits_cli_from_a_result_file(run_files, stored, capsys):
     mass = stored["mass_eV"]
     np.testing.assert_allclose(columns["mass_eV"], mass, rtol=1e-9)  # the CSV keeps 10 digits
     # The mean curve is spectral_limit on the mean over the stored rays; the band on numpy's quantiles.
-    np.testing.assert_allclose(columns["mean_epsilon_max"], quiet_limits(mass, stored["kernel"].mean(axis=0)),
-                               rtol=1e-9)
+    np.testing.assert_allclose(columns["mean_epsilon_max"],
+                               as_table(quiet_limits(mass, stored["kernel"].mean(axis=0))), rtol=1e-9)
     for percent in (16, 84):
         np.testing.assert_allclose(columns[f"sightline_p{percent}_epsilon_max"],
-                                   quiet_limits(mass, np.percentile(stored["kernel"], percent, axis=0)), rtol=1e-9)
+                                   as_table(quiet_limits(mass, np.percentile(stored["kernel"], percent, axis=0))),
+                                   rtol=1e-9)
     # The anisotropy column: sqrt(threshold / rms of dT/T at epsilon = 1), PHYSICS.md section 6.
     x = OMEGA0_EV / (K_EV_PER_K * T0_K)
     rms = (stored["sky_kernel"] / OMEGA0_EV * (1 - np.exp(-x)) / x).std(axis=0)
     varies = np.ptp(stored["sky_kernel"], axis=0) > 0
     assert varies.sum() > 10
     np.testing.assert_allclose(columns["anisotropy_epsilon_max"][varies], np.sqrt(1e-5 / rms[varies]), rtol=1e-9)
-    assert np.all(np.isinf(columns["anisotropy_epsilon_max"][~varies]))
+    assert np.all(np.isnan(columns["anisotropy_epsilon_max"][~varies]))  # empty fields
+    assert [bool(reason) for reason in columns["anisotropy_unconstrained"]] == (~varies).tolist()
 
 
 def test_limits_cli_sky_options_need_matching_masses(run_files):

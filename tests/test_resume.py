@@ -207,7 +207,8 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
         raise OSError(28, "No space left on device")
 
     monkeypatch.setattr("raytrace.results._check_finite", disk_full)
-    assert main(arguments(run_file, output, "--overwrite")) == 1  # not the user's input: exit 1
+    # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
+    assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")
     assert set(os.listdir(folder)) == before | {checkpoint.name}  # no temporary file left
     if existing:
@@ -239,7 +240,8 @@ def test_an_existing_output_is_replaced_only_with_overwrite(workspace, reference
     output.write_bytes(b"an earlier result")
     assert main(arguments(run_file, output)) == 2
     message = capsys.readouterr().err.strip().splitlines()[-1]
-    assert message == f"raytrace sightlines: error: {output}: output exists; pass --overwrite (overwrite=True) to replace it"
+    assert message == (f"raytrace sightlines: error: --output (TOML output.path): {output}: output exists; "
+                       "pass --overwrite (overwrite=True) to replace it")
     assert output.read_bytes() == b"an earlier result"
     assert not output.with_name(output.name + ".partial").exists()
 

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, require_path
 from .box import Box, _scan
 from .fractions import add_one, apply_fraction, fraction_from
 from .meanings import _GAS as _GAS_QUANTITIES
@@ -290,7 +290,7 @@ def load_box(
     """
     from ..provenance import file_checksum
 
-    path = Path(path)
+    path = require_path(path, "path (--boxes)")
     sources = {}
     with _open(path) as handle:
         node = _find_dataset(handle, path, dataset, (ionised_fraction, neutral_fraction))

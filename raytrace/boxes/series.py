@@ -7,11 +7,12 @@ that says which box serves a ray sample at redshift z.
 
 import glob
 import math
+import os
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, require_path
 from .box import Box
 from .metadata import carries_redshift
 from .reading import _candidates, _open, load_box
@@ -174,11 +175,13 @@ def as_series(boxes):
 
 def _expand_paths(paths):
     """Files from one path, a glob, or a list of either (globs sorted by name)."""
-    if isinstance(paths, (str, Path)):
+    if isinstance(paths, (str, os.PathLike)):
         paths = [paths]
+    if not isinstance(paths, (list, tuple)):
+        raise InputError(f"paths (--boxes): expected a file path, a glob or a list of them, got {paths!r}")
     files = []
     for item in paths:
-        text = str(item)
+        text = str(require_path(item, "paths (--boxes)"))
         if any(c in text for c in _GLOB_CHARACTERS) and not Path(text).exists():
             matched = sorted(glob.glob(text))
             if not matched:

@@ -70,6 +70,13 @@ def _parse_length_unit(unit, text, what, bare_is_comoving):
 
 def _length_from_argument(value, what):
     """A box side from a string such as '100 Mpc/h' or an astropy Quantity (comoving unless physical)."""
+    length = _parse_length_argument(value, what)
+    if not (math.isfinite(length.value_Mpc) and length.value_Mpc > 0):  # the option's mistake, not the file's
+        raise InputError(f"{what}: expected a positive finite length, got {value!r}")
+    return length
+
+
+def _parse_length_argument(value, what):
     import astropy.units as u
 
     if isinstance(value, u.Quantity):

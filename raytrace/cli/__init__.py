@@ -7,6 +7,7 @@ pointer to report it.
 """
 
 import argparse
+import re
 import sys
 import warnings
 from importlib import import_module
@@ -17,6 +18,7 @@ from ..errors import InputError
 # Subcommand modules, in the order of the data flow.
 _SUBCOMMANDS = ("background", "inspect", "grid", "onepoint_mean", "sightlines", "sky", "spread_check",
                 "resolution_check", "limits", "report")
+_NEGATIVE_NUMBER = re.compile(r"^-(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?$")
 
 
 def build_parser():
@@ -32,6 +34,9 @@ def build_parser():
     for module_name in _SUBCOMMANDS:
         module = import_module(f".{module_name}", __name__)
         sub = commands.add_parser(module.NAME, help=module.HELP, description=module.HELP)
+        # argparse takes '-1e-13' for a flag (its own pattern knows no exponent): a value, so that
+        # the option's check names the flag and says what it expects.
+        sub._negative_number_matcher = _NEGATIVE_NUMBER
         module.add_arguments(sub)
         sub.set_defaults(_run=module.run)
     return parser

@@ -124,14 +124,13 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     quantile), ``background_kernel_eV`` K of the homogeneous universe (None:
     CAMB with Planck 2018); ``extra_curves`` (e.g. an anisotropy limit on the
     same masses) join the set. ``args`` supplies --confidence, --spectrum,
-    --fit-galaxy, --output, --plot and --overwrite. Returns the
-    :class:`~raytrace.limits.LimitSet`.
+    --fit-galaxy, --output, --plot and --overwrite, already checked by
+    :func:`run` before any work. Returns the :class:`~raytrace.limits.LimitSet`.
     """
     from ..limits import limit_table, plot_limits, sightline_limits
+    from ..provenance import output_set
     from ..spectrum import read_spectrum
 
-    check_confidence(args)
-    _check_outputs(args)
     limits = sightline_limits(
         mass_eV, mean_kernel_eV, spread_kernels_eV, background_kernel_eV=background_kernel_eV,
         spectrum=read_spectrum(args.spectrum), confidence=args.confidence, fit_galaxy=args.fit_galaxy,
@@ -139,10 +138,11 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     for curve in extra_curves:
         limits = limits.with_curve(curve)
     _print(limits, getattr(args, "all", False))
-    for path in args.output:
-        limit_table(path, limits, overwrite=args.overwrite)
-    if args.plot:
-        plot_limits(args.plot, limits, overwrite=args.overwrite)
+    with output_set():  # all the tables and the plot, or none of them (checked by _check_outputs)
+        for path in args.output:
+            limit_table(path, limits, overwrite=args.overwrite)
+        if args.plot:
+            plot_limits(args.plot, limits, overwrite=args.overwrite)
     return limits
 
 
@@ -190,12 +190,12 @@ def run(args):
 
 
 def _check_outputs(args):
-    """Refuse existing outputs before any work is done."""
-    from ..provenance import check_writable
+    """Refuse, before any work is done, outputs that exist, are folders, or cannot be made."""
+    from ..provenance import check_outputs
 
     args.output = [path for path in args.output if path]  # '' switches the table off
-    for path in (*args.output, *([args.plot] if args.plot else [])):
-        check_writable(path, args.overwrite)
+    flags = ["--output"] * len(args.output) + (["--plot"] if args.plot else [])
+    check_outputs([*args.output, *([args.plot] if args.plot else [])], args.overwrite, flags)
 
 
 # Rows printed without --all: a handful of masses spread over the grid, plus the tightest limit.

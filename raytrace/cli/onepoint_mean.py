@@ -13,19 +13,13 @@ def add_arguments(parser):
 
 def run(args):
     from ..onepoint import pdf_mean
-    from ..provenance import check_writable
-    from .sightlines import load_boxes, masses
+    from ..provenance import output_set
+    from .sightlines import load_boxes, masses, output_paths
 
     values = settings(args, ONEPOINT_OPTIONS)
     overwrite = values["output.overwrite"]
     output, plot = values["output.path"], values["output.plot"]
-    for path in (output, plot):
-        if path:
-            check_writable(path, overwrite)
-    if plot:
-        from ..plots import check_figure_path
-
-        check_figure_path(plot, "--plot (TOML output.plot)")
+    output_paths(values, ("output.path", "output.plot"))  # before the work
     series = load_boxes(values)
     result = pdf_mean(series, masses(values), values["rays.z_max"],
                       include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
@@ -39,20 +33,22 @@ def run(args):
     for k in range(result.mass_eV.size):
         share = result.kernel_boxes[k] / result.kernel[k] if result.kernel[k] > 0 else float("nan")
         print(f"  {result.mass_eV[k]:11.4e} {result.kernel[k]:11.4e} {result.error[k]:10.3e} {share:6.2f}")
-    if output:
-        result.save(output, overwrite=overwrite)
-        print(f"result: {output}")
-    if plot:
-        from ..plots import _pyplot, save_figure
+    with output_set():  # the result and the plot, or neither
+        if output:
+            result.save(output, overwrite=overwrite)
+        if plot:
+            from ..plots import _pyplot, save_figure
 
-        plt = _pyplot()
-        figure, ax = plt.subplots(figsize=(6.4, 4.4))
-        ax.loglog(result.mass_eV, result.kernel, label="boxes + background")
-        ax.loglog(result.mass_eV, result.kernel_boxes, ls=":", label="boxes")
-        ax.set_xlabel("dark-photon mass m [eV]")
-        ax.set_ylabel("<K> from the one-point PDF [eV]")
-        ax.legend()
-        save_figure(figure, plot, overwrite=overwrite)
-        plt.close(figure)
-        print(f"plot: {plot}")
+            plt = _pyplot()
+            figure, ax = plt.subplots(figsize=(6.4, 4.4))
+            ax.loglog(result.mass_eV, result.kernel, label="boxes + background")
+            ax.loglog(result.mass_eV, result.kernel_boxes, ls=":", label="boxes")
+            ax.set_xlabel("dark-photon mass m [eV]")
+            ax.set_ylabel("<K> from the one-point PDF [eV]")
+            ax.legend()
+            save_figure(figure, plot, overwrite=overwrite)
+            plt.close(figure)
+    for what, path in (("result", output), ("plot", plot)):
+        if path:
+            print(f"{what}: {path}")
     return 0

@@ -2,6 +2,7 @@
 
 import numpy as np
 
+from ..errors import InputError
 from ..runfile import SIGHTLINE_OPTIONS, VOCABULARY, add_flags, settings
 
 NAME = "sightlines"
@@ -21,11 +22,12 @@ def load_boxes(values):
 
 
 def masses(values):
-    from ..errors import InputError
+    from ..engine import check_run_memory
 
     low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
     if not low < high and count > 1:
         raise InputError(f"masses: expected min_eV < max_eV, got {low:g} and {high:g}")
+    check_run_memory(1, count, "--mass-count (TOML masses.count)")  # the grid alone, before it is made
     return np.geomspace(low, high, count)
 
 
@@ -40,8 +42,6 @@ def observed_energy(values):
 def cluster_executor(values):
     """The dask executor of --scheduler, connected for the run (None, in a null context, without one)."""
     from contextlib import nullcontext
-
-    from ..errors import InputError
 
     scheduler = values["rays.scheduler"]
     if scheduler is None:
@@ -59,24 +59,60 @@ def note_without_outputs(command, values, keys):
     import sys
 
     if not any(values[key] for key in keys):
-        flags = ", ".join(next(o.flag for o in VOCABULARY.values() if o.key == key) for key in keys)
+        flags = ", ".join(VOCABULARY[key].flag for key in keys)
         print(f"raytrace {command}: note: no output file requested ({flags}): the summary above is all "
               "this run kept", file=sys.stderr)
 
 
+def output_paths(values, keys):
+    """The run's output paths among ``keys``, checked once before any work; write them in an output_set.
+
+    Refuses a --resume of a finished result, outputs that exist (without
+    --overwrite), cannot be made or repeat a path, files marked by another run
+    (:func:`raytrace.companions.check_outputs`), and a figure name without a known format.
+    """
+    from ..companions import check_outputs
+
+    if values["output.path"] and values.get("output.resume"):
+        from ..results import HDF5Backend
+
+        HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
+    check_outputs([(values[key], _flag(key)) for key in keys], values["output.overwrite"], values["output.path"])
+    if values.get("output.plot"):
+        from ..plots import check_figure_path
+
+        check_figure_path(values["output.plot"], _flag("output.plot"))
+    return [values[key] for key in keys if values[key]]
+
+
+def _flag(key):
+    return f"{VOCABULARY[key].flag} (TOML {key})"
+
+
 def run(args):
-    from ..companions import check_outputs, owner_name
-    from ..engine import cast_sightlines
-    from ..results import HDF5Backend, MemoryBackend
+    from ..provenance import output_set
 
     values = settings(args, SIGHTLINE_OPTIONS)
     output = values["output.path"]
     plot = values["output.plot"]
-    check_outputs({plot: "--plot (TOML output.plot)"}, values["output.overwrite"], output)
+    keys = ("output.path", "output.plot")
+    output_paths(values, keys)
+    with output_set():  # checked above; the result and the plot appear together or not at all
+        run_outputs(values, output, plot)
+    if output:
+        print(f"result: {output}")
     if plot:
-        from ..plots import check_figure_path
+        print(f"plot: {plot}")
+    note_without_outputs("sightlines", values, keys)
+    return 0
 
-        check_figure_path(plot, "--plot (TOML output.plot)")
+
+def run_outputs(values, output, plot):
+    """Trace, print the summary and write the outputs (inside the run's output set)."""
+    from ..companions import owner_name
+    from ..engine import cast_sightlines
+    from ..results import HDF5Backend, MemoryBackend
+
     series = load_boxes(values)
     mass = masses(values)
     omega0 = observed_energy(values)
@@ -90,8 +126,6 @@ def run(args):
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
         )
     print_summary(result, values["output.epsilon"], omega0)
-    if output:
-        print(f"result: {output}")
     if plot:
         from ..plots import _pyplot, kernel_bands, save_figure
 
@@ -100,9 +134,6 @@ def run(args):
         kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
         save_figure(figure, plot, overwrite=values["output.overwrite"], owner=owner_name(output))
         plt.close(figure)
-        print(f"plot: {plot}")
-    note_without_outputs("sightlines", values, ("output.path", "output.plot"))
-    return 0
 
 
 def print_summary(result, epsilon, omega0):

@@ -3,7 +3,10 @@
 import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import _warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy
+from .sightlines import (_warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy,
+                         output_paths)
+
+FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
 
 NAME = "sky"
 HELP = ("Trace rays along HEALPix pixels through a consistent light cone of box copies; write the kernel "
@@ -15,18 +18,41 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..companions import check_outputs, owner_name
-    from ..plots import check_figure_path, shown_mass_index
+    from ..provenance import output_set
+
+    values = settings(args, SKY_OPTIONS)
+    keys = ("output.path", "output.fits", "output.plot")
+    if values["output.fits"]:
+        check_fits_path(values["output.fits"])
+    output_paths(values, keys)  # every output, and another run's files, checked once before any work
+    with output_set():  # the result, the maps and the plot appear together or not at all
+        shown_eV = run_outputs(values)
+    for key, what in zip(keys, ("result", "maps", "plot")):
+        if values[key]:
+            first = f" (first map: m = {shown_eV:.4g} eV)" if key == "output.fits" else ""
+            print(f"{what}: {values[key]}{first}")
+    note_without_outputs("sky", values, keys)
+    return 0
+
+
+def check_fits_path(path):
+    """A FITS map needs a FITS name: healpy and other readers go by the suffix."""
+    from ..errors import InputError
+
+    if not str(path).lower().endswith(FITS_SUFFIXES):
+        raise InputError(f"--fits (TOML output.fits): {path}: expected a FITS file name ending in "
+                         f"{', '.join(FITS_SUFFIXES)}")
+
+
+def run_outputs(values):
+    """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
+    from ..companions import owner_name
+    from ..plots import shown_mass_index
     from ..results import HDF5Backend, MemoryBackend
     from ..sky import anisotropy_limit, cast_sky, read_cl_limits
 
-    values = settings(args, SKY_OPTIONS)
     overwrite = values["output.overwrite"]
     output = values["output.path"]
-    check_outputs({values["output.fits"]: "--fits (TOML output.fits)", values["output.plot"]: "--plot (TOML output.plot)"},
-                  overwrite, output)
-    if values["output.plot"]:
-        check_figure_path(values["output.plot"], "--plot (TOML output.plot)")
     cl_limits = read_cl_limits(values["anisotropy.cl_limits"]) if values["anisotropy.cl_limits"] else None
     series = load_boxes(values)
     mass = masses(values)
@@ -44,21 +70,16 @@ def run(args):
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
     shown = shown_mass_index(sky, values["output.mass_eV"])
     print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
-    if output:
-        print(f"result: {output}")
     owner = owner_name(output)
     if values["output.fits"]:
         # The shown mass first: healpy.read_map gives it by default.
         order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
         sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
                        omega0_eV=omega0, overwrite=overwrite, owner=owner)
-        print(f"maps: {values['output.fits']} (first map: m = {sky.mass_eV[shown]:.4g} eV)")
     if values["output.plot"]:
         sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
                            omega0_eV=omega0, overwrite=overwrite, owner=owner)
-        print(f"plot: {values['output.plot']}")
-    note_without_outputs("sky", values, ("output.path", "output.fits", "output.plot"))
-    return 0
+    return float(sky.mass_eV[shown])
 
 
 def print_summary(sky, limit, threshold, omega0, shown):

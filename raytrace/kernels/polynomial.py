@@ -16,6 +16,9 @@ import math
 
 import numba
 
+#: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine).
+ROOT_TOLERANCE = 1e-10
+
 #: Largest degree handled (a trilinear cubic, times a linear blend weight, times (1+z)^3 linear).
 MAX_DEGREE = 5
 
@@ -61,7 +64,9 @@ def bracketed_root(c, deg, low, high, f_low, f_high, target):
     x = low - g_low * (high - low) / (g_high - g_low)  # regula falsi: exact for a line
     if not (low < x < high):
         x = 0.5 * (low + high)
-    tolerance = 4e-16 * (abs(low) + abs(high)) + 1e-300
+    # Path lengths are in cells: a root to 1e-10 cells moves a crossing's 1+z by ~1e-14 and its
+    # rate by ~1e-10 of itself, and saves Newton's last, idle iteration.
+    tolerance = ROOT_TOLERANCE
     for _ in range(100):
         value, slope = evaluate_with_slope(c, deg, x)
         g = value - target
