@@ -20,7 +20,7 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError
 from raytrace.ionisation import IonisationHistory
 from raytrace.meancheck import MeanCheck, MeanCheckWarning
-from raytrace.onepoint import PdfMean, load_mean_result, pdf_mean
+from raytrace.onepoint import FrozenBlendWarning, PdfMean, load_mean_result, pdf_mean
 
 # CODATA 2018: alpha, hbar c in eV cm, m_e c^2 in eV, hbar in eV s.
 ALPHA, HBAR_C_EV_CM, M_E_EV, HBAR_EV_S = 7.2973525693e-3, 1.973269804e-5, 510998.95, 6.582119569e-16
@@ -73,6 +73,18 @@ def lognormal_kernel(mass, mu, sigma, z_max):
 
     return np.array([np.pi * m**2 * integrate.quad(integrand, 0.0, z_max, args=(m,), epsabs=0, epsrel=1e-10)[0]
                      for m in mass])
+
+
+def test_a_blended_series_says_its_mean_is_approximate(plasma):
+    # Two uniform snapshots at z = 0 and 1, the second 1.5 times as dense: the blend's rate
+    # ln(1.5) / 1 against the expansion's 3 / (1 + 1) at z = 1 is 27 % (computed here), and the
+    # warning must name that size.
+    n_a = float(plasma.mean_comoving_electron_density_cm3(0.0))
+    boxes = [Box.from_array(np.full((8,) * 3, n, np.float64), "50 cMpc", z, quantity="n_e_comoving", plasma=plasma)
+             for z, n in ((0.0, n_a), (1.0, 1.5 * n_a))]
+    mass = np.array([math.sqrt(M2_PER_DENSITY * n_a * 2.0)])
+    with pytest.warns(FrozenBlendWarning, match=f"up to {100 * math.log(1.5) * 2 / 3:.2g} %"):
+        pdf_mean(BoxSeries(boxes, blend=True), mass, 1.0, include_background=False, plasma=plasma, points=1 << 12)
 
 
 def test_lognormal_box_gives_the_closed_form_integral(plasma):
