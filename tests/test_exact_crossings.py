@@ -92,6 +92,26 @@ def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
     assert compared > 200
 
 
+def test_airy_pairs_count_both_of_their_crossings_on_every_ray(plasma):
+    # A high photon energy widens the Airy window (~omega^(2/3)), so many pairs are taken in the Airy form:
+    # each claimed pair still counts its two crossings, and no claim hides any other crossing, so the
+    # counts of every ray and mass equal the independent tracer's sign changes.
+    values = random_box(12, seed=4)
+    n_com = float(plasma.mean_comoving_electron_density_cm3(0.0))
+    box = Box.from_array(values * n_com, "15 cMpc", 0.0, quantity="n_e_comoving", plasma=plasma)
+    series = BoxSeries([box])
+    z_max = 0.02
+    low, high = box.plasma_mass_range(0.0, z_max)
+    mass = np.geomspace(low * 1.02, high * 0.98, 24)
+    rays = list(range(8))
+    result = raytrace.cast_sightlines(series, mass, len(rays), z_max=z_max, include_background=False,
+                                      plasma=plasma, seed=11, photon_energy_eV=1e-2)
+    reference = reference_rays(box, series, z_max, mass, 11, rays, plasma)
+    assert result.tangent_events.sum() >= 10  # the check has Airy pairs to look at
+    for r, (_, crossings, _) in enumerate(reference):
+        np.testing.assert_array_equal(result.crossings[r], crossings)
+
+
 def test_jumps_between_copies_add_no_crossing(plasma):
     # Two halves of different uniform density: inside the box the interpolant ramps between them
     # (crossings there are real), but where a ray leaves one copy and enters the next the value

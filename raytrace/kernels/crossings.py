@@ -143,12 +143,10 @@ def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, s
                     ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density, claim_low, claim_high,
                     kernel, count, tangent_count, tangent_kernel):
     """Airy events at the interior extrema bp[1..n_bp-2]; marks the targets they claim from the two
-    pieces next to each extremum in claim_low/claim_high (per breakpoint)."""
+    pieces next to each extremum in claim_low/claim_high (per breakpoint, empty on entry)."""
     for i in range(deg_p - 1):
         second[i] = (i + 2) * (i + 1) * p_poly[i + 2]
     for j in range(1, n_bp - 1):
-        claim_low[j] = 0
-        claim_high[j] = 0
         e = bp[j]
         pe = bv[j]
         curvature_s = evaluate(second, deg_p - 2, e) if deg_p >= 2 else 0.0
@@ -291,14 +289,14 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                 bv[j] = evaluate(p_poly, deg_p, bp[j])
             bv[n_bp - 1] = evaluate(p_poly, deg_p, piece)
             previous_end = bv[n_bp - 1]
+            # Every breakpoint's claim starts empty: one left from an earlier piece must not hide a crossing.
+            for j in range(n_bp):
+                claim_low[j] = 0
+                claim_high[j] = 0
             if n_ext > 0 and omega0 > 0.0:
                 _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, piece, sigma_rate, omega0,
                                 targets, ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density,
                                 claim_low, claim_high, kernel, count, tangent_count, tangent_kernel)
-            else:
-                for j in range(n_bp):
-                    claim_low[j] = 0
-                    claim_high[j] = 0
             # Counts of targets below each breakpoint, stepped from the last one (the field moves by
             # little per piece): comparisons in n_e, no logarithm.
             below_a = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
