@@ -22,26 +22,19 @@ import numpy as np
 from . import __version__
 from .background import MeanPlasma
 from .boxes import as_series
-from .constants import C_MPC_S, HBAR_EV_S, K_BOLTZMANN_EV_K, PLASMA_MASS2_PER_DENSITY
+from .constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from .errors import InputError, ProbedRangeWarning, RaytraceWarning, require_number, require_positive_finite
 from .kernels.sightlines import trace_pieces
 from .progress import compile_notice, step_rows
 from .rays import draw_rays, plan_rays
-from .units import CMB_TEMPERATURE_K
+from .runfile import REMOVED_OPTIONS
+from .units import CMB_PHOTON_ENERGY_EV
 from .meancheck import attach_pdf_check
 from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
 
 #: The default observed photon energy of near-tangent (Airy) events: k T_0, the
 #: energy at which the report evaluates the anisotropy (x = h nu / k T_0 = 1).
-DEFAULT_PHOTON_ENERGY_EV = K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K
-
-#: Options that older releases took and this one refuses, with the reason.
-REMOVED_OPTIONS = {
-    "step": "the engine now solves the interpolated field's crossings exactly, cell by cell, so there is no "
-            "step length to choose; remove it",
-    "density_floor": "empty cells are now exact zeros of the interpolated field, which never resonate; "
-                     "remove it",
-}
+DEFAULT_PHOTON_ENERGY_EV = CMB_PHOTON_ENERGY_EV
 
 
 def refuse_removed(options):

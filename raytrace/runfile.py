@@ -26,17 +26,19 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
-from .constants import K_BOLTZMANN_EV_K
 from .errors import InputError
-from .units import CMB_TEMPERATURE_K
+from .units import CMB_PHOTON_ENERGY_EV
 
-K_T0_EV = K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K
-
-#: Keys (and their flags) that older releases took: refused with the reason, in one line.
-REMOVED_KEYS = {
-    "rays.step_cells": ("--step-cells", "the engine solves the interpolated field's crossings exactly, cell by "
-                                         "cell, so there is no step length to choose; remove it"),
+#: Options that older releases took and this one refuses, with the reason (API keywords).
+REMOVED_OPTIONS = {
+    "step": "the engine now solves the interpolated field's crossings exactly, cell by cell, so there is no "
+            "step length to choose; remove it",
+    "density_floor": "empty cells are now exact zeros of the interpolated field, which never resonate; "
+                     "remove it",
 }
+
+#: The run-file keys (and their flags) of those options: refused with the same reason, in one line.
+REMOVED_KEYS = {"rays.step_cells": ("--step-cells", REMOVED_OPTIONS["step"])}
 
 
 class NumberOrText:
@@ -110,7 +112,7 @@ TRACE_OPTIONS = (
     Option("rays.z_boxes", float, None, "highest redshift the boxes serve (default: the highest snapshot's)", above=0.0,
            metavar="Z"),
     Option("rays.include_background", bool, True, "add the homogeneous universe from z_boxes to z_max"),
-    Option("rays.photon_energy_eV", float, K_T0_EV, "observed photon energy (eV) at which near-tangent "
+    Option("rays.photon_energy_eV", float, CMB_PHOTON_ENERGY_EV, "observed photon energy (eV) at which near-tangent "
            "resonances take their Airy form (default k T_0)", above=0.0, flag_name="photon-energy"),
     Option("rays.seed", int, 0, "random seed (0 to 2^63 - 1); ray i's stream is fixed by (seed, i)", at_least=0,
            at_most=2**63 - 1, metavar="SEED"),

@@ -24,7 +24,6 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .constants import K_BOLTZMANN_EV_K
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
                      check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
                      check_trace_options, run_batches, warn_outside_probed_range)
@@ -33,7 +32,7 @@ from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
 from .results import KernelRows, MemoryBackend, open_result, save_arrays, tangent_arrays
-from .units import CMB_TEMPERATURE_K
+from .units import CMB_PHOTON_ENERGY_EV
 
 FORMAT = "raytrace-sky-2"
 ORDERINGS = ("RING", "NESTED")
@@ -176,7 +175,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
 
 def photon_x(omega0_eV):
     """x = h nu / (k T_0) for an observed photon energy h nu in eV (T_0 = 2.72548 K, Fixsen 2009)."""
-    return omega0_eV / (K_BOLTZMANN_EV_K * CMB_TEMPERATURE_K)
+    return omega0_eV / CMB_PHOTON_ENERGY_EV
 
 
 def anisotropy_per_probability(omega0_eV):
