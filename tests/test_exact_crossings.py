@@ -19,7 +19,7 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError
 from raytrace.ionisation import IonisationHistory
 from raytrace.kernels.crossings import XI_CUT, pair_kernel
-from raytrace.kernels.polynomial import airy_ai, roots_in
+from raytrace.kernels.polynomial import airy_ai, bracketed_root, roots_in
 from raytrace.rays import draw_rays, plan_rays
 
 from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, one_point_pdf_mean, trace_run
@@ -256,23 +256,46 @@ def test_the_window_keeps_the_mean_of_the_landau_zener_terms():
 
 
 def test_polynomial_roots_are_all_found_once():
-    # Roots placed by hand: (x - r1)(x - r2)... times random scales; numpy.roots as a second opinion.
+    # Roots placed by hand: (x - r1)(x - r2)... times random scales, up to the quartic slope of a
+    # blended density; numpy's polyfromroots builds the coefficients.
     rng = np.random.default_rng(3)
-    work = np.zeros((16, 8))
     for _ in range(300):
-        degree = rng.integers(1, 6)
+        degree = rng.integers(1, 5)
         roots = np.sort(rng.uniform(-0.5, 1.5, degree))
         coefficients = np.polynomial.polynomial.polyfromroots(roots) * rng.uniform(-3, 3)
-        padded = np.zeros(6)
+        padded = np.zeros(5)
         padded[:degree + 1] = coefficients
-        out = np.zeros(8)
-        n = roots_in(padded, 5, 1.0, work, out)
+        out = np.zeros(4)
+        n = roots_in(*padded, 1.0, out)
         inside = roots[(roots > 0) & (roots < 1)]
         # Near-double roots can merge within rounding; the test draws them apart.
         if np.min(np.diff(roots), initial=1.0) < 1e-3:
             continue
         assert n == inside.size
         np.testing.assert_allclose(out[:n], inside, atol=1e-9)
+
+
+def test_bracketed_root_and_its_slope_match_numpy_on_random_quintics():
+    # numpy.polynomial.polynomial.polyroots as the outside reference; every start (far, near,
+    # outside the bracket) must give the same root to 1e-10 cells and its slope to 1e-9.
+    rng = np.random.default_rng(5)
+    for _ in range(300):
+        c = rng.normal(size=6) * np.array([1.0, 1.0, 0.3, 0.1, 0.03, 0.01])
+        roots = np.polynomial.polynomial.polyroots(c)
+        real = np.sort(roots[(np.abs(roots.imag) < 1e-12) & (roots.real > 0.05) & (roots.real < 0.95)].real)
+        if real.size != 1:
+            continue
+        root = real[0]
+        slope = np.polynomial.polynomial.polyval(root, np.polynomial.polynomial.polyder(c))
+        if abs(slope) < 1e-2:
+            continue
+        g_low, g_high = np.polynomial.polynomial.polyval([0.0, 1.0], c)
+        if g_low * g_high >= 0:
+            continue
+        for start in (-1.0, root + 1e-5, root - 0.3, 0.999):
+            x, x_slope = bracketed_root(*c, 0.0, 1.0, g_low, g_high, start)
+            assert x == pytest.approx(root, abs=1e-10)
+            assert x_slope == pytest.approx(slope, rel=1e-9)
 
 
 # -- the mean over rays ---------------------------------------------------------------------------

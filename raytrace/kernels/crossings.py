@@ -8,7 +8,10 @@ one ray's rows: the kernel K (eV), the crossing count, the near-tangent event
 count and kernel per mass; returned: the segment's dispersion measure (pc cm^-3).
 
 The segment is walked cell by cell of the interpolation grid (the lattice of
-cell centres), a 3-D grid traversal (Amanatides & Woo 1987, Eurographics 87, 3).
+cell centres), a 3-D grid traversal (Amanatides & Woo 1987, Eurographics 87, 3),
+in two passes: :func:`gather_cells` walks the whole segment and keeps each cell's
+cubic (its loads do not wait on one another, so the cube's cache misses overlap),
+then each cell is solved.
 Inside one cell the periodic trilinear interpolant along the ray is an exact
 cubic in the path length s (PHYSICS.md section 8); a blend weight linear in s
 makes it a quartic; times (1+z)^3, linear in s over a cell (its curvature
@@ -32,7 +35,7 @@ import math
 import numba
 import numpy as np
 
-from .polynomial import MAX_DEGREE, airy_ai, bracketed_root, evaluate, evaluate_with_slope, roots_in
+from .polynomial import airy_ai, bracketed_root, evaluate, evaluate_with_slope, roots_in
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
 #: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
@@ -42,6 +45,13 @@ XI_CUT = 4.838497102421105
 
 _TWO_THIRD = 2.0 / 3.0
 _CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
+
+#: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
+_MAX_BREAKPOINTS = 6
+
+#: Columns of :func:`gather_cells`' table: the cell's exit path length, then the cubic of one
+#: snapshot (columns 1-4) and, when blending, of the other (5-8).
+_CELL_COLUMNS = 9
 
 
 @numba.njit(cache=True, inline="always")
@@ -84,8 +94,8 @@ def _lookup(table, chi_step_inverse, chi):
 
 
 @numba.njit(cache=True, inline="always")
-def _ray_cubic(cube, scale, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz, out, add):
-    """out[0..3] (+)= scale * the trilinear interpolant of the cell's 8 corners along t + d s."""
+def _ray_cubic(cube, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz):
+    """(c0, c1, c2, c3): the trilinear interpolant of the cell's 8 corners along t + d s."""
     # Along x: four edges, each linear in s.
     a00 = cube[i0, j0, k0]; b00 = cube[i1, j0, k0] - a00
     a01 = cube[i0, j0, k1]; b01 = cube[i1, j0, k1] - a01
@@ -104,118 +114,18 @@ def _ray_cubic(cube, scale, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz, out,
     q2 = (s11 - s01) * dy
     # Along z: the cubic.
     d0, d1, d2 = q0 - p0, q1 - p1, q2 - p2
-    c0 = p0 + d0 * tz
-    c1 = p1 + d1 * tz + d0 * dz
-    c2 = p2 + d2 * tz + d1 * dz
-    c3 = d2 * dz
-    if add:
-        out[0] += scale * c0; out[1] += scale * c1; out[2] += scale * c2; out[3] += scale * c3
-    else:
-        out[0] = scale * c0; out[1] = scale * c1; out[2] = scale * c2; out[3] = scale * c3
-
-
-@numba.njit(cache=True, inline="always")
-def _multiply_linear(c, deg, a0, a1, out):
-    """out = c * (a0 + a1 s); returns the degree."""
-    out[deg + 1] = c[deg] * a1
-    for i in range(deg, 0, -1):
-        out[i] = c[i] * a0 + c[i - 1] * a1
-    out[0] = c[0] * a0
-    return deg + 1
+    return p0 + d0 * tz, p1 + d1 * tz + d0 * dz, p2 + d2 * tz + d1 * dz, d2 * dz
 
 
 @numba.njit(cache=True)
-def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
-    """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
+def gather_cells(cube, scale, start, direction, length, cells, column):
+    """Walk one segment through the cube's interpolation grid; return the number of cells it crosses.
 
-    K = pi^2 m^4 / ((1+z) omega) (4 omega / |a|)^(2/3) Ai(xi)^2 with
-    xi = sign(a) Delta 2^(-1/3) omega^(-2/3) |a|^(-1/3); ``mass2`` = m^2 (eV^2),
-    ``omega`` the photon energy there (eV), ``curvature`` a = d^2 m_gamma^2/dt^2
-    (eV^4), ``delta`` = m_gamma^2 - m^2 at the extremum (eV^2).
+    Per cell of positive length n: cells[n, 0] = its exit path length (cells), and
+    cells[n, column:column + 4] = scale * the trilinear interpolant along the ray, a
+    cubic in the path length from the cell's entry. ``cells`` has >= sqrt(3) length + 4 rows.
     """
-    scale = _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs(curvature) ** (1.0 / 3.0)
-    ai = airy_ai(math.copysign(1.0, curvature) * delta / scale)
-    return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
-
-
-@numba.njit(cache=True)
-def _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, length, sigma_rate, omega0, targets,
-                    ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density, claim_low, claim_high,
-                    kernel, count, tangent_count, tangent_kernel):
-    """Airy events at the interior extrema bp[1..n_bp-2]; marks the targets they claim from the two
-    pieces next to each extremum in claim_low/claim_high (per breakpoint, empty on entry)."""
-    for i in range(deg_p - 1):
-        second[i] = (i + 2) * (i + 1) * p_poly[i + 2]
-    for j in range(1, n_bp - 1):
-        e = bp[j]
-        pe = bv[j]
-        curvature_s = evaluate(second, deg_p - 2, e) if deg_p >= 2 else 0.0
-        if curvature_s == 0.0:
-            continue
-        opz = opz_a + (opz_b - opz_a) * e / length
-        rate = sigma_rate * opz  # d s / dt in eV (cells per eV^-1)
-        a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
-        omega = omega0 * opz
-        abs_a = abs(a)
-        # omega^(2/3) |a|^(1/3) in one cube root; the window is narrow (~1e-3 of P), so its
-        # edges' counts step from the count at the extremum.
-        half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
-        k_centre = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
-        k_start = _count_below_near(targets, pe - half_width, k_centre)
-        k_stop = _count_below_near(targets, pe + half_width, k_centre)
-        if k_start == k_stop:
-            continue
-        # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
-        if a < 0.0:
-            reach = max(bv[j - 1], bv[j + 1])
-            crossing_low = _count_below(ln_targets, reach, uniform, first, inverse_spacing)
-            crossing_high = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
-            lo_claim, hi_claim = max(crossing_low, k_start), crossing_high
-            miss_start, miss_stop = crossing_high, k_stop
-        else:
-            reach = min(bv[j - 1], bv[j + 1])
-            crossing_low = _count_below(ln_targets, pe, uniform, first, inverse_spacing)
-            crossing_high = _count_below(ln_targets, reach, uniform, first, inverse_spacing)
-            lo_claim, hi_claim = crossing_low, min(crossing_high, k_stop)
-            miss_start, miss_stop = k_start, crossing_low
-        if hi_claim > lo_claim:
-            claim_low[j] = lo_claim
-            claim_high[j] = hi_claim
-        for k in range(k_start, k_stop):
-            claimed = lo_claim <= k < hi_claim
-            if not claimed and not (miss_start <= k < miss_stop):
-                continue
-            value = pair_kernel(mass2[k], opz, omega, a, m2_per_density * (pe - targets[k]))
-            kernel[k] += value
-            tangent_kernel[k] += value
-            tangent_count[k] += 1
-            if claimed:
-                count[k] += 2
-
-
-@numba.njit(cache=True)
-def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
-                 cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
-                 rate_unit, m2_per_density, omega0, work, claims, kernel, count, tangent_count, tangent_kernel):
-    """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
-
-    ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
-    cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
-    the observed photon energy of near-tangent events (eV; 0 turns them off);
-    ``work``/``claims``: scratch from :func:`scratch`.
-
-    One function on purpose: split into helpers (even inlined by numba) the walk took
-    1.6x the CPU time (0.74 s against 0.46 s for 300 demo rays to z = 6).
-    """
-    n0, n1, n2 = cube_lo.shape
-    n_targets = targets.shape[0]
-    first = ln_targets[0]
-    inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
-    uniform = uniform and n_targets > 1
-    f_lo, f_hi, f_poly, p_poly, slope_poly = work[0], work[1], work[2], work[3], work[4]
-    second, bp, bv = work[5], work[6], work[7]
-    roots_work = work[8:]
-    claim_low, claim_high = claims[0], claims[1]
+    n0, n1, n2 = cube.shape
     # Position on the interpolation grid: cell centres sit at integer + 1/2.
     ux, uy, uz = start[0] - 0.5, start[1] - 0.5, start[2] - 0.5
     dx, dy, dz = direction[0], direction[1], direction[2]
@@ -228,102 +138,26 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     step_x = 1.0 / abs(dx) if dx != 0 else inf
     step_y = 1.0 / abs(dy) if dy != 0 else inf
     step_z = 1.0 / abs(dz) if dz != 0 else inf
+    n = 0
     s = 0.0
-    opz_a = _lookup(opz_table, chi_step_inverse, chi0)
-    h_a = _lookup(hubble_table, chi_step_inverse, chi0)
-    previous_end = -1.0  # P at the end of the previous piece (the field is continuous inside a segment)
-    below_end = -1  # the number of targets below it
-    dm = 0.0
-    pi = math.pi
-    sigma_rate = rate_unit / cell_mpc
     while s < length:
         s_end = min(next_x, next_y, next_z, length)
-        piece = s_end - s
-        if piece > 0.0:
+        if s_end > s:
+            if n == cells.shape[0]:
+                raise ValueError("gather_cells: the cell table is too short for this segment")
             tx = min(max(ux + dx * s - ix, 0.0), 1.0)
             ty = min(max(uy + dy * s - iy, 0.0), 1.0)
             tz = min(max(uz + dz * s - iz, 0.0), 1.0)
             i1 = wx + 1 if wx + 1 < n0 else 0
             j1 = wy + 1 if wy + 1 < n1 else 0
             k1 = wz + 1 if wz + 1 < n2 else 0
-            chi_b = chi0 + s_end * cell_mpc
-            opz_b = _lookup(opz_table, chi_step_inverse, chi_b)
-            h_b = _lookup(hubble_table, chi_step_inverse, chi_b)
-            # The comoving field F(sigma) on sigma in [0, piece].
-            _ray_cubic(cube_lo, scale_lo, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz, f_lo, False)
-            deg_f = 3
-            w_a = w_b = 0.0
-            if blended:
-                w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
-                w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
-                _ray_cubic(cube_hi, scale_hi, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz, f_hi, False)
-                for i in range(4):
-                    f_hi[i] -= f_lo[i]  # G = F_hi - F_lo; F = F_lo + w G
-                deg_f = _multiply_linear(f_hi, 3, w_a, (w_b - w_a) / piece, f_poly)
-                for i in range(4):
-                    f_poly[i] += f_lo[i]
-            else:
-                for i in range(4):
-                    f_poly[i] = f_lo[i]
-            # Dispersion measure: int n_com (1+z) dchi, with 1+z linear over the piece.
-            slope_opz = (opz_b - opz_a) / piece
-            integral = 0.0
-            power = piece
-            for i in range(deg_f + 1):
-                integral += f_poly[i] * opz_a * power / (i + 1)
-                integral += f_poly[i] * slope_opz * power * piece / (i + 2)
-                power *= piece
-            dm += integral * cell_mpc
-            # Physical density P = F (1+z)^3, with (1+z)^3 linear over the piece.
-            d_a, d_b = opz_a**3, opz_b**3
-            deg_p = _multiply_linear(f_poly, deg_f, d_a, (d_b - d_a) / piece, p_poly)
-            deg_slope = deg_p - 1
-            for i in range(deg_p):
-                slope_poly[i] = (i + 1) * p_poly[i + 1]
-            n_ext = roots_in(slope_poly, deg_slope, piece, roots_work, bp[1:])
-            n_bp = n_ext + 2
-            bp[0] = 0.0
-            bp[n_bp - 1] = piece
-            bv[0] = previous_end if previous_end >= 0.0 else p_poly[0]
-            for j in range(1, n_bp - 1):
-                bv[j] = evaluate(p_poly, deg_p, bp[j])
-            bv[n_bp - 1] = evaluate(p_poly, deg_p, piece)
-            previous_end = bv[n_bp - 1]
-            # Every breakpoint's claim starts empty: one left from an earlier piece must not hide a crossing.
-            for j in range(n_bp):
-                claim_low[j] = 0
-                claim_high[j] = 0
-            if n_ext > 0 and omega0 > 0.0:
-                _tangent_events(bp, bv, n_bp, p_poly, deg_p, second, opz_a, opz_b, piece, sigma_rate, omega0,
-                                targets, ln_targets, mass2, uniform, first, inverse_spacing, m2_per_density,
-                                claim_low, claim_high, kernel, count, tangent_count, tangent_kernel)
-            # Counts of targets below each breakpoint, stepped from the last one (the field moves by
-            # little per piece): comparisons in n_e, no logarithm.
-            below_a = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
-            for j in range(n_bp - 1):
-                below_b = _count_below_near(targets, bv[j + 1], below_a)
-                if below_b != below_a:
-                    for k in range(min(below_a, below_b), max(below_a, below_b)):
-                        if (claim_low[j] <= k < claim_high[j]) or (claim_low[j + 1] <= k < claim_high[j + 1]):
-                            continue
-                        root = bracketed_root(p_poly, deg_p, bp[j], bp[j + 1], bv[j], bv[j + 1], targets[k])
-                        f_value, f_slope = evaluate_with_slope(f_poly, deg_f, root)
-                        opz = opz_a + slope_opz * root
-                        hubble = h_a + (h_b - h_a) * root / piece
-                        if blended:
-                            # The weight's own slope from H, not from its chord over the piece (first order).
-                            w_root = w_a + (w_b - w_a) * root / piece
-                            exact = hubble * cell_mpc / (z_hi - z_lo) if 0.0 < w_root < 1.0 else 0.0
-                            f_slope += evaluate(f_hi, 3, root) * (exact - (w_b - w_a) / piece)
-                        if f_value <= 0.0:
-                            continue
-                        log_rate = abs(f_slope / (f_value * cell_mpc) + 3.0 * hubble / opz)
-                        if log_rate > 0.0:
-                            kernel[k] += pi * mass2[k] / (opz * opz * rate_unit * log_rate)
-                        count[k] += 1
-                below_a = below_b
-            below_end = below_a
-            opz_a, h_a = opz_b, h_b
+            c0, c1, c2, c3 = _ray_cubic(cube, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz)
+            cells[n, 0] = s_end
+            cells[n, column] = scale * c0
+            cells[n, column + 1] = scale * c1
+            cells[n, column + 2] = scale * c2
+            cells[n, column + 3] = scale * c3
+            n += 1
         if s_end >= length:
             break
         s = s_end
@@ -345,10 +179,208 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             else:
                 iz -= 1; wz = wz - 1 if wz > 0 else n2 - 1
             next_z += step_z
+    return n
+
+
+@numba.njit(cache=True)
+def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
+    """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
+
+    K = pi^2 m^4 / ((1+z) omega) (4 omega / |a|)^(2/3) Ai(xi)^2 with
+    xi = sign(a) Delta 2^(-1/3) omega^(-2/3) |a|^(-1/3); ``mass2`` = m^2 (eV^2),
+    ``omega`` the photon energy there (eV), ``curvature`` a = d^2 m_gamma^2/dt^2
+    (eV^4), ``delta`` = m_gamma^2 - m^2 at the extremum (eV^2).
+    """
+    scale = _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs(curvature) ** (1.0 / 3.0)
+    ai = airy_ai(math.copysign(1.0, curvature) * delta / scale)
+    return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
+
+
+@numba.njit(cache=True)
+def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets, mass2,
+                    m2_per_density, claim_low, claim_high, kernel, count, tangent_count, tangent_kernel):
+    """Airy events at the interior extrema bp[1..n_bp-2] (``below``: targets below each breakpoint's
+    value; e0..e3: the density's second derivative); marks the targets they claim from the two
+    pieces next to each extremum in claim_low/claim_high (per breakpoint, empty on entry)."""
+    for j in range(1, n_bp - 1):
+        e = bp[j]
+        pe = bv[j]
+        curvature_s = evaluate(e0, e1, e2, e3, 0.0, 0.0, e)
+        if curvature_s == 0.0:
+            continue
+        opz = opz_a + (opz_b - opz_a) * e / length
+        rate = sigma_rate * opz  # d s / dt in eV (cells per eV^-1)
+        a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
+        omega = omega0 * opz
+        abs_a = abs(a)
+        # omega^(2/3) |a|^(1/3) in one cube root; the window is narrow (~1e-3 of P), so its
+        # edges' counts step from the count at the extremum.
+        half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
+        k_start = _count_below_near(targets, pe - half_width, below[j])
+        k_stop = _count_below_near(targets, pe + half_width, below[j])
+        if k_start == k_stop:
+            continue
+        # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
+        if a < 0.0:
+            lo_claim, hi_claim = max(max(below[j - 1], below[j + 1]), k_start), below[j]
+            miss_start, miss_stop = below[j], k_stop
+        else:
+            lo_claim, hi_claim = below[j], min(min(below[j - 1], below[j + 1]), k_stop)
+            miss_start, miss_stop = k_start, below[j]
+        if hi_claim > lo_claim:
+            claim_low[j] = lo_claim
+            claim_high[j] = hi_claim
+        for k in range(k_start, k_stop):
+            claimed = lo_claim <= k < hi_claim
+            if not claimed and not (miss_start <= k < miss_stop):
+                continue
+            value = pair_kernel(mass2[k], opz, omega, a, m2_per_density * (pe - targets[k]))
+            kernel[k] += value
+            tangent_kernel[k] += value
+            tangent_count[k] += 1
+            if claimed:
+                count[k] += 2
+
+
+@numba.njit(cache=True)
+def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
+                 cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
+                 rate_unit, m2_per_density, omega0, cells, points, marks, kernel, count, tangent_count,
+                 tangent_kernel):
+    """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
+
+    ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
+    cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
+    the observed photon energy of near-tangent events (eV; 0 turns them off);
+    ``cells``/``points``/``marks``: scratch from :func:`scratch`.
+
+    The density's coefficients stay scalars (registers); one cell's solve is one loop body.
+    """
+    n_cells = gather_cells(cube_lo, scale_lo, start, direction, length, cells, 1)
+    if blended:
+        gather_cells(cube_hi, scale_hi, start, direction, length, cells, 5)
+    n_targets = targets.shape[0]
+    first = ln_targets[0]
+    inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
+    uniform = uniform and n_targets > 1
+    bp, bv, bs, extrema = points[0], points[1], points[2], points[3]
+    below, claim_low, claim_high = marks[0], marks[1], marks[2]
+    opz_a = _lookup(opz_table, chi_step_inverse, chi0)
+    h_a = _lookup(hubble_table, chi_step_inverse, chi0)
+    previous_end = -1.0  # P at the end of the previous cell (the field is continuous inside a segment)
+    below_end = -1  # the number of targets below it
+    dm = 0.0
+    pi = math.pi
+    sigma_rate = rate_unit / cell_mpc
+    s_a = 0.0
+    g0 = g1 = g2 = g3 = 0.0
+    w_a = w_b = w_slope = 0.0
+    for c in range(n_cells):
+        s_b = cells[c, 0]
+        piece = s_b - s_a
+        opz_b = _lookup(opz_table, chi_step_inverse, chi0 + s_b * cell_mpc)
+        h_b = _lookup(hubble_table, chi_step_inverse, chi0 + s_b * cell_mpc)
+        # The comoving field F(sigma) on sigma in [0, piece]: a cubic, or a quartic when blended.
+        f0, f1, f2, f3, f4 = cells[c, 1], cells[c, 2], cells[c, 3], cells[c, 4], 0.0
+        if blended:
+            w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
+            w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
+            w_slope = (w_b - w_a) / piece
+            # G = F_hi - F_lo; F = F_lo + w G with w linear over the cell.
+            g0, g1, g2, g3 = cells[c, 5] - f0, cells[c, 6] - f1, cells[c, 7] - f2, cells[c, 8] - f3
+            f4 = w_slope * g3
+            f3 += w_a * g3 + w_slope * g2
+            f2 += w_a * g2 + w_slope * g1
+            f1 += w_a * g1 + w_slope * g0
+            f0 += w_a * g0
+        # Dispersion measure: int n_com (1+z) dchi, with 1+z linear over the piece.
+        slope_opz = (opz_b - opz_a) / piece
+        ell = piece
+        dm += cell_mpc * ell * (f0 * (opz_a + slope_opz * ell / 2.0)
+                                + ell * (f1 * (opz_a / 2.0 + slope_opz * ell / 3.0)
+                                         + ell * (f2 * (opz_a / 3.0 + slope_opz * ell / 4.0)
+                                                  + ell * (f3 * (opz_a / 4.0 + slope_opz * ell / 5.0)
+                                                           + ell * f4 * (opz_a / 5.0 + slope_opz * ell / 6.0)))))
+        # Physical density P = F (1+z)^3, with (1+z)^3 linear over the piece.
+        d_a = opz_a * opz_a * opz_a
+        d_1 = (opz_b * opz_b * opz_b - d_a) / piece
+        p0 = f0 * d_a
+        p1 = f1 * d_a + f0 * d_1
+        p2 = f2 * d_a + f1 * d_1
+        p3 = f3 * d_a + f2 * d_1
+        p4 = f4 * d_a + f3 * d_1
+        p5 = f4 * d_1
+        n_ext = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece, extrema)
+        n_bp = n_ext + 2
+        bp[0] = 0.0
+        bv[0] = previous_end if previous_end >= 0.0 else p0
+        bs[0] = p1
+        for j in range(n_ext):
+            bp[j + 1] = extrema[j]
+            bv[j + 1] = evaluate(p0, p1, p2, p3, p4, p5, extrema[j])
+            bs[j + 1] = 0.0
+        bp[n_bp - 1] = piece
+        bv[n_bp - 1], bs[n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
+        previous_end = bv[n_bp - 1]
+        # Counts of targets below each breakpoint, stepped from the last one (the field moves by
+        # little per cell): comparisons in n_e, no logarithm.
+        below[0] = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
+        for j in range(n_bp - 1):
+            below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
+        below_end = below[n_bp - 1]
+        # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
+        for j in range(n_bp):
+            claim_low[j] = 0
+            claim_high[j] = 0
+        if n_ext > 0 and omega0 > 0.0:
+            _tangent_events(bp, bv, below, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
+                            sigma_rate, omega0, targets, mass2, m2_per_density, claim_low, claim_high, kernel,
+                            count, tangent_count, tangent_kernel)
+        for j in range(n_bp - 1):
+            if below[j] == below[j + 1]:
+                continue
+            # Starting points from the inverse's cubic Hermite interpolant over the piece (its ends'
+            # values and slopes), where neither end is an extremum (there the inverse has a square root).
+            a, b = bp[j], bp[j + 1]
+            rise = bv[j + 1] - bv[j]
+            hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
+            if hermite:
+                inverse_rise = 1.0 / rise
+                m_a = rise / bs[j] - (b - a)
+                m_b = rise / bs[j + 1] - (b - a)
+            for k in range(min(below[j], below[j + 1]), max(below[j], below[j + 1])):
+                if (claim_low[j] <= k < claim_high[j]) or (claim_low[j + 1] <= k < claim_high[j + 1]):
+                    continue
+                target = targets[k]
+                guess = -1.0
+                if hermite:
+                    t = (target - bv[j]) * inverse_rise
+                    guess = a + t * ((b - a) + (1.0 - t) * (m_a * (1.0 - t) - m_b * t))
+                root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, bv[j] - target,
+                                             bv[j + 1] - target, guess)
+                opz = opz_a + slope_opz * root
+                hubble = h_a + (h_b - h_a) * root / piece
+                # At the root P = target, so F = target / (1+z)^3 and F'/F = P'/target - ((1+z)^3)'/(1+z)^3.
+                cubed = d_a + d_1 * root
+                log_slope = slope / target - d_1 / cubed
+                if blended:
+                    # The weight's own slope from H, not from its chord over the cell (first order).
+                    w_root = w_a + w_slope * root
+                    exact = hubble * cell_mpc / (z_hi - z_lo) if 0.0 < w_root < 1.0 else 0.0
+                    log_slope += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed / target
+                log_rate = abs(log_slope / cell_mpc + 3.0 * hubble / opz)
+                if log_rate > 0.0:
+                    kernel[k] += pi * mass2[k] / (opz * opz * rate_unit * log_rate)
+                count[k] += 1
+        opz_a, h_a = opz_b, h_b
+        s_a = s_b
     return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3
 
 
 @numba.njit(cache=True)
-def scratch():
-    """(work, claims) scratch arrays for one ray's :func:`walk_segment` calls."""
-    return np.zeros((8 + 2 * MAX_DEGREE + 3, MAX_DEGREE + 2)), np.zeros((2, MAX_DEGREE + 2), dtype=np.int64)
+def scratch(longest_cells):
+    """(cells, points, marks) scratch of one ray's :func:`walk_segment` calls, for segments of at most
+    ``longest_cells`` cells of path (a segment crosses at most sqrt(3) cells per cell of path, plus 4)."""
+    rows = int(math.sqrt(3.0) * longest_cells) + 8
+    return (np.zeros((rows, _CELL_COLUMNS)), np.zeros((4, _MAX_BREAKPOINTS)),
+            np.zeros((3, _MAX_BREAKPOINTS), dtype=np.int64))

@@ -1,15 +1,23 @@
 """Real polynomials on an interval, and the Airy function, for the exact crossing solver.
 
-In: coefficients c[0..deg] (lowest power first) of a polynomial of degree <= 5 and
-an interval [0, length]. Out: its value, its roots inside the interval (sorted),
-the root of a monotone piece bracketed by a sign change; Ai(x) for |x| <= 8.
+In: the coefficients of a polynomial, lowest power first, as scalars (c0..c5 for
+values, c0..c4 for roots: the engine's density is of degree <= 5, its slope <= 4),
+and an interval [0, length]. Out: its value (and slope), its roots inside the
+interval (sorted), the root of a monotone piece bracketed by a sign change; Ai(x)
+for -8 <= x <= 5.
+
+Coefficients travel as scalars, not arrays, so that the compiler keeps them in
+registers: the engine evaluates these polynomials a few times per cell of every ray.
 
 Roots come from the derivative chain: the critical points of p (roots of p',
 found the same way one degree down, a quadratic in closed form) split the
 interval into monotone pieces, and each piece with a sign change holds exactly
 one root, found by Newton's method kept inside its bracket (bisection where a
 Newton step would leave it). So no root is missed and none is found twice,
-whatever the step sizes (common practice, no source).
+whatever the step sizes (common practice, no source). A cubic whose Bernstein
+coefficients on the interval share one sign has no root there (the curve lies in
+their convex hull; Farouki & Rajan 1987, Comput. Aided Geom. Des. 4, 191), which
+settles most of the engine's cells without the chain.
 """
 
 import math
@@ -19,86 +27,109 @@ import numba
 #: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine).
 ROOT_TOLERANCE = 1e-10
 
-#: Largest degree handled (a trilinear cubic, times a linear blend weight, times (1+z)^3 linear).
-MAX_DEGREE = 5
+#: Largest degree whose roots :func:`roots_in` finds (the slope of a blended density).
+MAX_ROOT_DEGREE = 4
 
 
 @numba.njit(cache=True, inline="always")
-def evaluate(c, deg, x):
-    value = c[deg]
-    for i in range(deg - 1, -1, -1):
-        value = value * x + c[i]
-    return value
+def evaluate(c0, c1, c2, c3, c4, c5, x):
+    return ((((c5 * x + c4) * x + c3) * x + c2) * x + c1) * x + c0
 
 
 @numba.njit(cache=True, inline="always")
-def evaluate_with_slope(c, deg, x):
-    value = c[deg]
-    slope = 0.0
-    for i in range(deg - 1, -1, -1):
-        slope = slope * x + value
-        value = value * x + c[i]
+def evaluate_with_slope(c0, c1, c2, c3, c4, c5, x):
+    """(p(x), p'(x)) by Horner's scheme for both."""
+    value = c5
+    slope = value
+    value = value * x + c4
+    slope = slope * x + value
+    value = value * x + c3
+    slope = slope * x + value
+    value = value * x + c2
+    slope = slope * x + value
+    value = value * x + c1
+    slope = slope * x + value
+    value = value * x + c0
     return value, slope
 
 
 @numba.njit(cache=True, inline="always")
-def derivative(c, deg, out):
-    """Coefficients of p' into ``out``; returns its degree (0 for a constant p)."""
-    for i in range(deg):
-        out[i] = (i + 1) * c[i + 1]
-    if deg == 0:
-        out[0] = 0.0
-        return 0
-    return deg - 1
+def _taylor(c0, c1, c2, c3, c4, c5, x):
+    """(p, p', p''/2, p'''/6) at x: the first Taylor coefficients, by repeated Horner."""
+    value = c5
+    t1 = t2 = t3 = 0.0
+    for c in (c4, c3, c2, c1, c0):
+        t3 = t3 * x + t2
+        t2 = t2 * x + t1
+        t1 = t1 * x + value
+        value = value * x + c
+    return value, t1, t2, t3
 
 
 @numba.njit(cache=True)
-def bracketed_root(c, deg, low, high, f_low, f_high, target):
-    """The x in [low, high] with p(x) = target, where p - target changes sign once there."""
-    g_low = f_low - target
-    g_high = f_high - target
+def bracketed_root(c0, c1, c2, c3, c4, c5, low, high, g_low, g_high, start):
+    """(x, slope of p at x): the x in [low, high] with p(x) = 0, where p changes sign once there
+    (g_ = p at the ends), found from ``start`` (outside the bracket: its regula falsi point).
+
+    Each iteration takes the local Taylor cubic; where the root of its quadratic part
+    (a Chebyshev step) is within ROOT_TOLERANCE by the size of the next terms, that is
+    the root, and the cubic gives the slope there. Otherwise a Newton step, kept
+    inside the bracket (bisection where it would leave). From a close start one
+    iteration suffices. When an end is the root its slope is returned as 0.
+    """
     if g_low == 0.0:
-        return low
+        return low, 0.0
     if g_high == 0.0:
-        return high
-    x = low - g_low * (high - low) / (g_high - g_low)  # regula falsi: exact for a line
+        return high, 0.0
+    x = start
     if not (low < x < high):
-        x = 0.5 * (low + high)
-    # Path lengths are in cells: a root to 1e-10 cells moves a crossing's 1+z by ~1e-14 and its
-    # rate by ~1e-10 of itself, and saves Newton's last, idle iteration.
-    tolerance = ROOT_TOLERANCE
+        x = low - g_low * (high - low) / (g_high - g_low)  # regula falsi: exact for a line
+        if not (low < x < high):
+            x = 0.5 * (low + high)
+    negative_low = g_low < 0.0
+    slope = 0.0
     for _ in range(100):
-        value, slope = evaluate_with_slope(c, deg, x)
-        g = value - target
+        g, slope, half_curvature, sixth_third = _taylor(c0, c1, c2, c3, c4, c5, x)
         if g == 0.0:
-            return x
-        if (g < 0.0) == (g_low < 0.0):
-            low, g_low = x, g
+            return x, slope
+        if (g < 0.0) == negative_low:
+            low = x
         else:
             high = x
-        step_to = x - g / slope if slope != 0.0 else low - 1.0
+        if slope != 0.0:
+            newton = -g / slope
+            u = half_curvature * newton / slope
+            # The Chebyshev step's error: the next terms of the series reversion.
+            error = abs(newton) * (2.0 * u * u + abs(sixth_third / slope) * newton * newton)
+            if error <= ROOT_TOLERANCE and low <= x + newton <= high:
+                e = newton * (1.0 - u)
+                return x + e, slope + e * (2.0 * half_curvature + 3.0 * sixth_third * e)
+            step_to = x + newton
+        else:
+            step_to = low - 1.0
         if not (low < step_to < high):
             step_to = 0.5 * (low + high)
-        if abs(step_to - x) <= tolerance or high - low <= tolerance:
-            return step_to
+        if high - low <= ROOT_TOLERANCE:
+            return step_to, slope
         x = step_to
-    return x
+    return x, slope
 
 
 @numba.njit(cache=True, inline="always")
-def _quadratic_roots(c0, c1, c2, length, out):
-    """Roots of c0 + c1 x + c2 x^2 inside (0, length), sorted; returns their number."""
+def _quadratic_roots(c0, c1, c2, length):
+    """(n, x1, x2): the roots of c0 + c1 x + c2 x^2 inside (0, length), sorted."""
     n = 0
+    r1 = r2 = 0.0
     if c2 == 0.0:
         if c1 != 0.0:
             x = -c0 / c1
             if 0.0 < x < length:
-                out[0] = x
+                r1 = x
                 n = 1
-        return n
+        return n, r1, r2
     disc = c1 * c1 - 4.0 * c2 * c0
     if disc < 0.0:
-        return 0
+        return 0, r1, r2
     # The stable pair of formulas: no cancellation between -c1 and the square root.
     q = -0.5 * (c1 + math.copysign(math.sqrt(disc), c1))
     x1 = q / c2
@@ -106,56 +137,73 @@ def _quadratic_roots(c0, c1, c2, length, out):
     if x1 > x2:
         x1, x2 = x2, x1
     if 0.0 < x1 < length:
-        out[n] = x1
-        n += 1
+        r1 = x1
+        n = 1
     if 0.0 < x2 < length and x2 != x1:
-        out[n] = x2
+        if n == 0:
+            r1 = x2
+        else:
+            r2 = x2
         n += 1
+    return n, r1, r2
+
+
+@numba.njit(cache=True, inline="always")
+def _bracket(c0, c1, c2, c3, c4, left, f_left, right, f_right, length, out, n):
+    """Append to ``out`` the root of the monotone piece [left, right], if it has one; returns n."""
+    if (f_left < 0.0 < f_right) or (f_right < 0.0 < f_left):
+        out[n] = bracketed_root(c0, c1, c2, c3, c4, 0.0, left, right, f_left, f_right, -1.0)[0]
+        return n + 1
+    if f_right == 0.0 and 0.0 < right < length and f_left != 0.0:
+        out[n] = right  # a root exactly at a critical point (a double root)
+        return n + 1
     return n
 
 
-@numba.njit(cache=True)
-def roots_in(c, deg, length, work, out):
-    """Roots of p (degree ``deg`` <= 5) inside (0, length), sorted into ``out``; returns their number.
-
-    ``work`` is scratch of shape (>= MAX_DEGREE + 3, >= MAX_DEGREE + 1).
-    """
-    while deg > 0 and c[deg] == 0.0:
-        deg -= 1
-    if deg == 0:
+@numba.njit(cache=True, inline="always")
+def _cubic_roots_in(c0, c1, c2, c3, length, out):
+    """Roots of c0 + c1 x + c2 x^2 + c3 x^3 inside (0, length), sorted into ``out``; returns their number."""
+    third = length / 3.0
+    b1 = c0 + c1 * third
+    b2 = b1 + (c1 + c2 * length) * third
+    b3 = ((c3 * length + c2) * length + c1) * length + c0
+    if (c0 > 0.0 and b1 > 0.0 and b2 > 0.0 and b3 > 0.0) or (c0 < 0.0 and b1 < 0.0 and b2 < 0.0 and b3 < 0.0):
         return 0
-    if deg <= 2:
-        return _quadratic_roots(c[0], c[1], c[2] if deg == 2 else 0.0, length, out)
-    # Derivative chain down to a quadratic: work[d] holds the derivative of degree d.
-    for i in range(deg + 1):
-        work[deg, i] = c[i]
-    for d in range(deg, 2, -1):
-        derivative(work[d], d, work[d - 1])
-    # Roots of the quadratic, then climb: each level's roots split the next level into monotone pieces.
-    crit = work[MAX_DEGREE + 1]
-    n_crit = _quadratic_roots(work[2, 0], work[2, 1], work[2, 2], length, crit)
-    found = work[MAX_DEGREE + 2]
-    for d in range(3, deg + 1):
-        poly = work[d]
-        n_found = 0
-        left = 0.0
-        f_left = evaluate(poly, d, left)
-        for j in range(n_crit + 1):
-            right = crit[j] if j < n_crit else length
-            f_right = evaluate(poly, d, right)
-            if (f_left < 0.0 < f_right) or (f_right < 0.0 < f_left):
-                found[n_found] = bracketed_root(poly, d, left, right, f_left, f_right, 0.0)
-                n_found += 1
-            elif f_right == 0.0 and 0.0 < right < length and f_left != 0.0:
-                found[n_found] = right  # a root exactly at a critical point (a double root)
-                n_found += 1
-            left, f_left = right, f_right
-        for j in range(n_found):
-            crit[j] = found[j]
-        n_crit = n_found
-    for j in range(n_crit):
-        out[j] = crit[j]
-    return n_crit
+    if c3 == 0.0:
+        n, r1, r2 = _quadratic_roots(c0, c1, c2, length)
+        out[0] = r1
+        out[1] = r2
+        return n
+    n_crit, x1, x2 = _quadratic_roots(c1, 2.0 * c2, 3.0 * c3, length)
+    n = 0
+    left, f_left = 0.0, c0
+    if n_crit > 0:
+        f1 = evaluate(c0, c1, c2, c3, 0.0, 0.0, x1)
+        n = _bracket(c0, c1, c2, c3, 0.0, left, f_left, x1, f1, length, out, n)
+        left, f_left = x1, f1
+    if n_crit > 1:
+        f2 = evaluate(c0, c1, c2, c3, 0.0, 0.0, x2)
+        n = _bracket(c0, c1, c2, c3, 0.0, left, f_left, x2, f2, length, out, n)
+        left, f_left = x2, f2
+    return _bracket(c0, c1, c2, c3, 0.0, left, f_left, length, b3, length, out, n)
+
+
+@numba.njit(cache=True)
+def roots_in(c0, c1, c2, c3, c4, length, out):
+    """Roots of c0 + ... + c4 x^4 inside (0, length), sorted into ``out`` (>= 4 long); returns their number."""
+    if c4 == 0.0:
+        return _cubic_roots_in(c0, c1, c2, c3, length, out)
+    # The quartic's critical points (a cubic's roots) go into out first, then are replaced.
+    n_crit = _cubic_roots_in(c1, 2.0 * c2, 3.0 * c3, 4.0 * c4, length, out)
+    x1, x2, x3 = out[0], out[1], out[2]
+    n = 0
+    left, f_left = 0.0, c0
+    for j in range(n_crit + 1):
+        right = (x1 if j == 0 else x2 if j == 1 else x3) if j < n_crit else length
+        f_right = evaluate(c0, c1, c2, c3, c4, 0.0, right)
+        n = _bracket(c0, c1, c2, c3, c4, left, f_left, right, f_right, length, out, n)
+        left, f_left = right, f_right
+    return n
 
 
 @numba.njit(cache=True)

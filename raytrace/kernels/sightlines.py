@@ -20,8 +20,11 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
                  kernel, count, tangent_count, tangent_kernel, dispersion):
     """Piece p of ray r starts at starts[r, g] + directions[r, g] * (chi_a - segment_chi0[g]) / cell, g = piece_segment[p]."""
     n_pieces = piece_segment.shape[0]
+    longest = 0.0
+    for p in range(n_pieces):
+        longest = max(longest, (piece_chi_b[p] - piece_chi_a[p]) / cell_mpc)
     for r in numba.prange(kernel.shape[0]):
-        work, claims = scratch()
+        cells, points, marks = scratch(longest)
         point = np.empty(3)
         for p in range(n_pieces):
             g = piece_segment[p]
@@ -31,5 +34,5 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
             dispersion[r] += walk_segment(
                 cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, directions[r, g],
                 (piece_chi_b[p] - piece_chi_a[p]) / cell_mpc, piece_chi_a[p], cell_mpc, opz_table, hubble_table,
-                chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, work,
-                claims, kernel[r], count[r], tangent_count[r], tangent_kernel[r])
+                chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells,
+                points, marks, kernel[r], count[r], tangent_count[r], tangent_kernel[r])
