@@ -35,7 +35,8 @@ import math
 import numba
 import numpy as np
 
-from .polynomial import airy_ai, bracketed_root, evaluate, evaluate_with_slope, roots_in
+from .polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root, chebyshev_step, evaluate, evaluate_with_slope, roots_in
+from .prefetch import prefetch
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
 #: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
@@ -49,9 +50,9 @@ _CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
 _MAX_BREAKPOINTS = 6
 
-#: Columns of :func:`gather_cells`' table: the cell's exit path length, then the cubic of one
-#: snapshot (columns 1-4) and, when blending, of the other (5-8).
-_CELL_COLUMNS = 9
+#: Columns of a segment's cell table: the cell's exit path length and entry point (0-3, from
+#: :func:`trace_cells`), the cubic of one snapshot (4-7) and, when blending, of the other (8-11).
+_CELL_COLUMNS = 12
 
 
 @numba.njit(cache=True, inline="always")
@@ -118,14 +119,15 @@ def _ray_cubic(cube, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz):
 
 
 @numba.njit(cache=True)
-def gather_cells(cube, scale, start, direction, length, cells, column):
-    """Walk one segment through the cube's interpolation grid; return the number of cells it crosses.
+def trace_cells(shape, start, direction, length, cells, corners):
+    """Walk one segment through a periodic grid of ``shape``; return the number of cells it crosses.
 
-    Per cell of positive length n: cells[n, 0] = its exit path length (cells), and
-    cells[n, column:column + 4] = scale * the trilinear interpolant along the ray, a
-    cubic in the path length from the cell's entry. ``cells`` has >= sqrt(3) length + 4 rows.
+    Per cell of positive length n: cells[n, 0] = its exit path length (cells),
+    cells[n, 1:4] = the entry point's place inside the cell (0..1 per axis), and
+    corners[n] = the grid indices (i0, i1, j0, j1, k0, k1) of its 8 corners.
+    Both tables have >= sqrt(3) length + 4 rows.
     """
-    n0, n1, n2 = cube.shape
+    n0, n1, n2 = shape
     # Position on the interpolation grid: cell centres sit at integer + 1/2.
     ux, uy, uz = start[0] - 0.5, start[1] - 0.5, start[2] - 0.5
     dx, dy, dz = direction[0], direction[1], direction[2]
@@ -144,19 +146,17 @@ def gather_cells(cube, scale, start, direction, length, cells, column):
         s_end = min(next_x, next_y, next_z, length)
         if s_end > s:
             if n == cells.shape[0]:
-                raise ValueError("gather_cells: the cell table is too short for this segment")
-            tx = min(max(ux + dx * s - ix, 0.0), 1.0)
-            ty = min(max(uy + dy * s - iy, 0.0), 1.0)
-            tz = min(max(uz + dz * s - iz, 0.0), 1.0)
-            i1 = wx + 1 if wx + 1 < n0 else 0
-            j1 = wy + 1 if wy + 1 < n1 else 0
-            k1 = wz + 1 if wz + 1 < n2 else 0
-            c0, c1, c2, c3 = _ray_cubic(cube, wx, i1, wy, j1, wz, k1, tx, ty, tz, dx, dy, dz)
+                raise ValueError("trace_cells: the cell table is too short for this segment")
             cells[n, 0] = s_end
-            cells[n, column] = scale * c0
-            cells[n, column + 1] = scale * c1
-            cells[n, column + 2] = scale * c2
-            cells[n, column + 3] = scale * c3
+            cells[n, 1] = min(max(ux + dx * s - ix, 0.0), 1.0)
+            cells[n, 2] = min(max(uy + dy * s - iy, 0.0), 1.0)
+            cells[n, 3] = min(max(uz + dz * s - iz, 0.0), 1.0)
+            corners[n, 0] = wx
+            corners[n, 1] = wx + 1 if wx + 1 < n0 else 0
+            corners[n, 2] = wy
+            corners[n, 3] = wy + 1 if wy + 1 < n1 else 0
+            corners[n, 4] = wz
+            corners[n, 5] = wz + 1 if wz + 1 < n2 else 0
             n += 1
         if s_end >= length:
             break
@@ -182,6 +182,31 @@ def gather_cells(cube, scale, start, direction, length, cells, column):
     return n
 
 
+#: How many cells ahead :func:`cell_cubics` asks for the cube's lines (~ memory latency / work per cell).
+_PREFETCH_CELLS = 8
+
+
+@numba.njit(cache=True)
+def cell_cubics(cube, scale, direction, n_cells, cells, corners, column):
+    """cells[n, column:column + 4] = scale * the trilinear interpolant of cell n of
+    :func:`trace_cells` along the ray: a cubic in the path length from the cell's entry."""
+    dx, dy, dz = direction[0], direction[1], direction[2]
+    for n in range(n_cells):
+        ahead = n + _PREFETCH_CELLS
+        if ahead < n_cells:
+            # The four lines along the fastest axis that hold the 8 corners (k0, k1 share one mostly).
+            prefetch(cube, corners[ahead, 0], corners[ahead, 2], corners[ahead, 4])
+            prefetch(cube, corners[ahead, 1], corners[ahead, 2], corners[ahead, 4])
+            prefetch(cube, corners[ahead, 0], corners[ahead, 3], corners[ahead, 4])
+            prefetch(cube, corners[ahead, 1], corners[ahead, 3], corners[ahead, 4])
+        c0, c1, c2, c3 = _ray_cubic(cube, corners[n, 0], corners[n, 1], corners[n, 2], corners[n, 3], corners[n, 4],
+                                    corners[n, 5], cells[n, 1], cells[n, 2], cells[n, 3], dx, dy, dz)
+        cells[n, column] = scale * c0
+        cells[n, column + 1] = scale * c1
+        cells[n, column + 2] = scale * c2
+        cells[n, column + 3] = scale * c3
+
+
 @numba.njit(cache=True)
 def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
@@ -196,7 +221,7 @@ def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, inline="always")
 def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets, mass2,
                     m2_per_density, claim_low, claim_high, kernel, count, tangent_count, tangent_kernel):
     """Airy events at the interior extrema bp[1..n_bp-2] (``below``: targets below each breakpoint's
@@ -245,33 +270,35 @@ def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, s
 @numba.njit(cache=True)
 def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                  cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
-                 rate_unit, m2_per_density, omega0, cells, points, marks, kernel, count, tangent_count,
+                 rate_unit, m2_per_density, omega0, cells, corners, points, marks, kernel, count, tangent_count,
                  tangent_kernel):
     """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
 
     ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
     cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
     the observed photon energy of near-tangent events (eV; 0 turns them off);
-    ``cells``/``points``/``marks``: scratch from :func:`scratch`.
+    ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`.
 
     The density's coefficients stay scalars (registers); one cell's solve is one loop body.
     """
-    n_cells = gather_cells(cube_lo, scale_lo, start, direction, length, cells, 1)
+    n_cells = trace_cells(cube_lo.shape, start, direction, length, cells, corners)
+    cell_cubics(cube_lo, scale_lo, direction, n_cells, cells, corners, 4)
     if blended:
-        gather_cells(cube_hi, scale_hi, start, direction, length, cells, 5)
+        cell_cubics(cube_hi, scale_hi, direction, n_cells, cells, corners, 8)
     n_targets = targets.shape[0]
     first = ln_targets[0]
     inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
     uniform = uniform and n_targets > 1
-    bp, bv, bs, extrema = points[0], points[1], points[2], points[3]
+    bp, bv, bs = points[0], points[1], points[2]
     below, claim_low, claim_high = marks[0], marks[1], marks[2]
     opz_a = _lookup(opz_table, chi_step_inverse, chi0)
     h_a = _lookup(hubble_table, chi_step_inverse, chi0)
     previous_end = -1.0  # P at the end of the previous cell (the field is continuous inside a segment)
     below_end = -1  # the number of targets below it
     dm = 0.0
-    pi = math.pi
     sigma_rate = rate_unit / cell_mpc
+    kernel_unit = math.pi * cell_mpc / rate_unit
+    inverse_z_interval = 1.0 / (z_hi - z_lo) if blended else 0.0
     s_a = 0.0
     g0 = g1 = g2 = g3 = 0.0
     w_a = w_b = w_slope = 0.0
@@ -281,20 +308,21 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
         opz_b = _lookup(opz_table, chi_step_inverse, chi0 + s_b * cell_mpc)
         h_b = _lookup(hubble_table, chi_step_inverse, chi0 + s_b * cell_mpc)
         # The comoving field F(sigma) on sigma in [0, piece]: a cubic, or a quartic when blended.
-        f0, f1, f2, f3, f4 = cells[c, 1], cells[c, 2], cells[c, 3], cells[c, 4], 0.0
+        f0, f1, f2, f3, f4 = cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7], 0.0
         if blended:
             w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
             w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
             w_slope = (w_b - w_a) / piece
             # G = F_hi - F_lo; F = F_lo + w G with w linear over the cell.
-            g0, g1, g2, g3 = cells[c, 5] - f0, cells[c, 6] - f1, cells[c, 7] - f2, cells[c, 8] - f3
+            g0, g1, g2, g3 = cells[c, 8] - f0, cells[c, 9] - f1, cells[c, 10] - f2, cells[c, 11] - f3
             f4 = w_slope * g3
             f3 += w_a * g3 + w_slope * g2
             f2 += w_a * g2 + w_slope * g1
             f1 += w_a * g1 + w_slope * g0
             f0 += w_a * g0
         # Dispersion measure: int n_com (1+z) dchi, with 1+z linear over the piece.
-        slope_opz = (opz_b - opz_a) / piece
+        inverse_piece = 1.0 / piece
+        slope_opz = (opz_b - opz_a) * inverse_piece
         ell = piece
         dm += cell_mpc * ell * (f0 * (opz_a + slope_opz * ell / 2.0)
                                 + ell * (f1 * (opz_a / 2.0 + slope_opz * ell / 3.0)
@@ -303,14 +331,14 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                                                            + ell * f4 * (opz_a / 5.0 + slope_opz * ell / 6.0)))))
         # Physical density P = F (1+z)^3, with (1+z)^3 linear over the piece.
         d_a = opz_a * opz_a * opz_a
-        d_1 = (opz_b * opz_b * opz_b - d_a) / piece
+        d_1 = (opz_b * opz_b * opz_b - d_a) * inverse_piece
         p0 = f0 * d_a
         p1 = f1 * d_a + f0 * d_1
         p2 = f2 * d_a + f1 * d_1
         p3 = f3 * d_a + f2 * d_1
         p4 = f4 * d_a + f3 * d_1
         p5 = f4 * d_1
-        n_ext = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece, extrema)
+        n_ext, extrema = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece)
         n_bp = n_ext + 2
         bp[0] = 0.0
         bv[0] = previous_end if previous_end >= 0.0 else p0
@@ -340,37 +368,46 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             if below[j] == below[j + 1]:
                 continue
             # Starting points from the inverse's cubic Hermite interpolant over the piece (its ends'
-            # values and slopes), where neither end is an extremum (there the inverse has a square root).
-            a, b = bp[j], bp[j + 1]
-            rise = bv[j + 1] - bv[j]
+            # values and slopes), where neither end is an extremum (there the inverse has a square root);
+            # from there one Chebyshev step is nearly always the root, a branch that stays predictable.
+            a, b, v_a, v_b = bp[j], bp[j + 1], bv[j], bv[j + 1]
+            rise = v_b - v_a
             hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
             if hermite:
                 inverse_rise = 1.0 / rise
                 m_a = rise / bs[j] - (b - a)
                 m_b = rise / bs[j + 1] - (b - a)
+            claimed_a, claimed_b = claim_low[j], claim_high[j]
+            claimed_c, claimed_d = claim_low[j + 1], claim_high[j + 1]
             for k in range(min(below[j], below[j + 1]), max(below[j], below[j + 1])):
-                if (claim_low[j] <= k < claim_high[j]) or (claim_low[j + 1] <= k < claim_high[j + 1]):
+                if (claimed_a <= k < claimed_b) or (claimed_c <= k < claimed_d):
                     continue
                 target = targets[k]
-                guess = -1.0
                 if hermite:
-                    t = (target - bv[j]) * inverse_rise
+                    t = (target - v_a) * inverse_rise
                     guess = a + t * ((b - a) + (1.0 - t) * (m_a * (1.0 - t) - m_b * t))
-                root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, bv[j] - target,
-                                             bv[j + 1] - target, guess)
+                    root, slope, error, _ = chebyshev_step(p0 - target, p1, p2, p3, p4, p5, guess)
+                    if not (error <= ROOT_TOLERANCE and a <= root <= b):
+                        root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,
+                                                     v_b - target, guess)
+                else:
+                    root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,
+                                                 v_b - target, -1.0)
                 opz = opz_a + slope_opz * root
-                hubble = h_a + (h_b - h_a) * root / piece
-                # At the root P = target, so F = target / (1+z)^3 and F'/F = P'/target - ((1+z)^3)'/(1+z)^3.
+                hubble = h_a + (h_b - h_a) * root * inverse_piece
+                # At the root P = target, so F = target / (1+z)^3 and
+                # d ln F / ds = P'/target - ((1+z)^3)'/(1+z)^3; the rate is that per cell plus 3 H/(c (1+z)).
+                # All of it times target (1+z)^3 (1+z) and cell, so that one division is left:
                 cubed = d_a + d_1 * root
-                log_slope = slope / target - d_1 / cubed
+                scaled_rate = slope * cubed * opz - d_1 * target * opz + 3.0 * hubble * cell_mpc * target * cubed
                 if blended:
                     # The weight's own slope from H, not from its chord over the cell (first order).
                     w_root = w_a + w_slope * root
-                    exact = hubble * cell_mpc / (z_hi - z_lo) if 0.0 < w_root < 1.0 else 0.0
-                    log_slope += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed / target
-                log_rate = abs(log_slope / cell_mpc + 3.0 * hubble / opz)
-                if log_rate > 0.0:
-                    kernel[k] += pi * mass2[k] / (opz * opz * rate_unit * log_rate)
+                    exact = hubble * cell_mpc * inverse_z_interval if 0.0 < w_root < 1.0 else 0.0
+                    scaled_rate += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed * cubed * opz
+                if scaled_rate != 0.0:
+                    # K = pi m^2 / ((1+z)^2 hbar c |d ln n / d chi|)
+                    kernel[k] += kernel_unit * mass2[k] * target * cubed / (opz * abs(scaled_rate))
                 count[k] += 1
         opz_a, h_a = opz_b, h_b
         s_a = s_b
@@ -379,8 +416,8 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
 
 @numba.njit(cache=True)
 def scratch(longest_cells):
-    """(cells, points, marks) scratch of one ray's :func:`walk_segment` calls, for segments of at most
+    """(cells, corners, points, marks) scratch of one ray's :func:`walk_segment` calls, for segments of at most
     ``longest_cells`` cells of path (a segment crosses at most sqrt(3) cells per cell of path, plus 4)."""
     rows = int(math.sqrt(3.0) * longest_cells) + 8
-    return (np.zeros((rows, _CELL_COLUMNS)), np.zeros((4, _MAX_BREAKPOINTS)),
+    return (np.zeros((rows, _CELL_COLUMNS)), np.zeros((rows, 6), dtype=np.int64), np.zeros((3, _MAX_BREAKPOINTS)),
             np.zeros((3, _MAX_BREAKPOINTS), dtype=np.int64))

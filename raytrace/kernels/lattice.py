@@ -29,7 +29,7 @@ def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi
     cell_mpc = box_size / n
     half = 0.5 * n
     for r in numba.prange(kernel.shape[0]):
-        cells, points, marks = scratch(math.sqrt(3.0) * n)  # a copy's longest chord is its diagonal
+        cells, corners, points, marks = scratch(math.sqrt(3.0) * n)  # a copy's longest chord is its diagonal
         point = np.empty(3)
         heading = np.empty(3)
         d = directions[r]
@@ -75,7 +75,7 @@ def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi
                 dispersion[r] += walk_segment(
                     cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, heading,
                     (chi_end - chi) * cells_per_mpc, chi, cell_mpc, opz_table, hubble_table, chi_step_inverse,
-                    targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, points, marks,
+                    targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points, marks,
                     kernel[r], count[r], tangent_count[r], tangent_kernel[r])
             if next_face[axis_next] >= chi_b:
                 break

@@ -24,8 +24,13 @@ import math
 
 import numba
 
-#: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine).
-ROOT_TOLERANCE = 1e-10
+#: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine). A
+#: crossing's rate is its slope there, which a root off by 1e-8 cells moves by ~1e-8 of itself.
+ROOT_TOLERANCE = 1e-8
+
+#: Longest Chebyshev step taken as final: its error estimate leaves out the series' fourth
+#: order, which such a step keeps below ~1e-12 (roots) and ~1e-9 (slopes) per unit coefficient.
+FINAL_STEP = 1e-3
 
 #: Largest degree whose roots :func:`roots_in` finds (the slope of a blended density).
 MAX_ROOT_DEGREE = 4
@@ -66,16 +71,36 @@ def _taylor(c0, c1, c2, c3, c4, c5, x):
     return value, t1, t2, t3
 
 
+@numba.njit(cache=True, inline="always")
+def chebyshev_step(c0, c1, c2, c3, c4, c5, x):
+    """(root, slope there, error, p(x)): one step to the root of p near x from the local Taylor cubic.
+
+    The root of the Taylor series' quadratic part (a Chebyshev step), the cubic's slope
+    there, and the step's error from the next terms of the series reversion (inf where
+    p'(x) = 0 or the step is longer than FINAL_STEP). From within ~1e-4 of a root with
+    curvature ~1 per unit, the error is ~1e-12.
+    """
+    g, slope, half_curvature, sixth_third = _taylor(c0, c1, c2, c3, c4, c5, x)
+    if slope == 0.0:
+        return x, slope, math.inf, g
+    inverse_slope = 1.0 / slope  # one division serves the three ratios
+    newton = -g * inverse_slope
+    u = half_curvature * newton * inverse_slope
+    error = abs(newton) * (2.0 * u * u + abs(sixth_third * inverse_slope) * newton * newton)
+    if abs(newton) > FINAL_STEP:
+        error = math.inf
+    e = newton * (1.0 - u)
+    return x + e, slope + e * (2.0 * half_curvature + 3.0 * sixth_third * e), error, g
+
+
 @numba.njit(cache=True)
 def bracketed_root(c0, c1, c2, c3, c4, c5, low, high, g_low, g_high, start):
     """(x, slope of p at x): the x in [low, high] with p(x) = 0, where p changes sign once there
     (g_ = p at the ends), found from ``start`` (outside the bracket: its regula falsi point).
 
-    Each iteration takes the local Taylor cubic; where the root of its quadratic part
-    (a Chebyshev step) is within ROOT_TOLERANCE by the size of the next terms, that is
-    the root, and the cubic gives the slope there. Otherwise a Newton step, kept
-    inside the bracket (bisection where it would leave). From a close start one
-    iteration suffices. When an end is the root its slope is returned as 0.
+    Chebyshev steps while their error is above ROOT_TOLERANCE, each kept inside the
+    bracket (bisection where it would leave); from a close start one step suffices.
+    When an end is the root its slope is returned as 0.
     """
     if g_low == 0.0:
         return low, 0.0
@@ -89,25 +114,17 @@ def bracketed_root(c0, c1, c2, c3, c4, c5, low, high, g_low, g_high, start):
     negative_low = g_low < 0.0
     slope = 0.0
     for _ in range(100):
-        g, slope, half_curvature, sixth_third = _taylor(c0, c1, c2, c3, c4, c5, x)
+        step_to, slope, error, g = chebyshev_step(c0, c1, c2, c3, c4, c5, x)
         if g == 0.0:
             return x, slope
         if (g < 0.0) == negative_low:
             low = x
         else:
             high = x
-        if slope != 0.0:
-            newton = -g / slope
-            u = half_curvature * newton / slope
-            # The Chebyshev step's error: the next terms of the series reversion.
-            error = abs(newton) * (2.0 * u * u + abs(sixth_third / slope) * newton * newton)
-            if error <= ROOT_TOLERANCE and low <= x + newton <= high:
-                e = newton * (1.0 - u)
-                return x + e, slope + e * (2.0 * half_curvature + 3.0 * sixth_third * e)
-            step_to = x + newton
-        else:
-            step_to = low - 1.0
-        if not (low < step_to < high):
+        inside = low <= step_to <= high
+        if error <= ROOT_TOLERANCE and inside:
+            return step_to, slope
+        if not inside or step_to == low or step_to == high:
             step_to = 0.5 * (low + high)
         if high - low <= ROOT_TOLERANCE:
             return step_to, slope
@@ -149,61 +166,75 @@ def _quadratic_roots(c0, c1, c2, length):
 
 
 @numba.njit(cache=True, inline="always")
-def _bracket(c0, c1, c2, c3, c4, left, f_left, right, f_right, length, out, n):
-    """Append to ``out`` the root of the monotone piece [left, right], if it has one; returns n."""
+def _root_of_piece(c0, c1, c2, c3, c4, left, f_left, right, f_right, length):
+    """The root of p on its monotone piece [left, right], or -1.0 where it has none."""
     if (f_left < 0.0 < f_right) or (f_right < 0.0 < f_left):
-        out[n] = bracketed_root(c0, c1, c2, c3, c4, 0.0, left, right, f_left, f_right, -1.0)[0]
-        return n + 1
+        return bracketed_root(c0, c1, c2, c3, c4, 0.0, left, right, f_left, f_right, -1.0)[0]
     if f_right == 0.0 and 0.0 < right < length and f_left != 0.0:
-        out[n] = right  # a root exactly at a critical point (a double root)
-        return n + 1
-    return n
+        return right  # a root exactly at a critical point (a double root)
+    return -1.0
 
 
 @numba.njit(cache=True, inline="always")
-def _cubic_roots_in(c0, c1, c2, c3, length, out):
-    """Roots of c0 + c1 x + c2 x^2 + c3 x^3 inside (0, length), sorted into ``out``; returns their number."""
+def _append(roots, n, x):
+    """(n, roots) with x appended where x >= 0 (roots: a 4-tuple; a root is never negative)."""
+    if x < 0.0:
+        return n, roots
+    r0, r1, r2, r3 = roots
+    if n == 0:
+        return 1, (x, r1, r2, r3)
+    if n == 1:
+        return 2, (r0, x, r2, r3)
+    if n == 2:
+        return 3, (r0, r1, x, r3)
+    return 4, (r0, r1, r2, x)
+
+
+@numba.njit(cache=True, inline="always")
+def _cubic_roots_in(c0, c1, c2, c3, length):
+    """(n, (x0, x1, x2, 0)): the roots of c0 + c1 x + c2 x^2 + c3 x^3 inside (0, length), sorted."""
+    none = (0.0, 0.0, 0.0, 0.0)
     third = length / 3.0
     b1 = c0 + c1 * third
     b2 = b1 + (c1 + c2 * length) * third
     b3 = ((c3 * length + c2) * length + c1) * length + c0
     if (c0 > 0.0 and b1 > 0.0 and b2 > 0.0 and b3 > 0.0) or (c0 < 0.0 and b1 < 0.0 and b2 < 0.0 and b3 < 0.0):
-        return 0
+        return 0, none
     if c3 == 0.0:
         n, r1, r2 = _quadratic_roots(c0, c1, c2, length)
-        out[0] = r1
-        out[1] = r2
-        return n
+        return n, (r1, r2, 0.0, 0.0)
     n_crit, x1, x2 = _quadratic_roots(c1, 2.0 * c2, 3.0 * c3, length)
-    n = 0
+    n, roots = 0, none
     left, f_left = 0.0, c0
     if n_crit > 0:
         f1 = evaluate(c0, c1, c2, c3, 0.0, 0.0, x1)
-        n = _bracket(c0, c1, c2, c3, 0.0, left, f_left, x1, f1, length, out, n)
+        n, roots = _append(roots, n, _root_of_piece(c0, c1, c2, c3, 0.0, left, f_left, x1, f1, length))
         left, f_left = x1, f1
     if n_crit > 1:
         f2 = evaluate(c0, c1, c2, c3, 0.0, 0.0, x2)
-        n = _bracket(c0, c1, c2, c3, 0.0, left, f_left, x2, f2, length, out, n)
+        n, roots = _append(roots, n, _root_of_piece(c0, c1, c2, c3, 0.0, left, f_left, x2, f2, length))
         left, f_left = x2, f2
-    return _bracket(c0, c1, c2, c3, 0.0, left, f_left, length, b3, length, out, n)
+    return _append(roots, n, _root_of_piece(c0, c1, c2, c3, 0.0, left, f_left, length, b3, length))
 
 
 @numba.njit(cache=True)
-def roots_in(c0, c1, c2, c3, c4, length, out):
-    """Roots of c0 + ... + c4 x^4 inside (0, length), sorted into ``out`` (>= 4 long); returns their number."""
+def roots_in(c0, c1, c2, c3, c4, length):
+    """(n, (x0, x1, x2, x3)): the roots of c0 + ... + c4 x^4 inside (0, length), sorted, n of them.
+
+    Scalars in and out: no array crosses the call, so it costs no reference counting.
+    """
     if c4 == 0.0:
-        return _cubic_roots_in(c0, c1, c2, c3, length, out)
-    # The quartic's critical points (a cubic's roots) go into out first, then are replaced.
-    n_crit = _cubic_roots_in(c1, 2.0 * c2, 3.0 * c3, 4.0 * c4, length, out)
-    x1, x2, x3 = out[0], out[1], out[2]
-    n = 0
+        return _cubic_roots_in(c0, c1, c2, c3, length)
+    # Between the quartic's critical points (a cubic's roots) it is monotone.
+    n_crit, crit = _cubic_roots_in(c1, 2.0 * c2, 3.0 * c3, 4.0 * c4, length)
+    n, roots = 0, (0.0, 0.0, 0.0, 0.0)
     left, f_left = 0.0, c0
     for j in range(n_crit + 1):
-        right = (x1 if j == 0 else x2 if j == 1 else x3) if j < n_crit else length
+        right = crit[j] if j < n_crit else length
         f_right = evaluate(c0, c1, c2, c3, c4, 0.0, right)
-        n = _bracket(c0, c1, c2, c3, c4, left, f_left, right, f_right, length, out, n)
+        n, roots = _append(roots, n, _root_of_piece(c0, c1, c2, c3, c4, left, f_left, right, f_right, length))
         left, f_left = right, f_right
-    return n
+    return n, roots
 
 
 @numba.njit(cache=True)

@@ -24,7 +24,7 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
     for p in range(n_pieces):
         longest = max(longest, (piece_chi_b[p] - piece_chi_a[p]) / cell_mpc)
     for r in numba.prange(kernel.shape[0]):
-        cells, points, marks = scratch(longest)
+        cells, corners, points, marks = scratch(longest)
         point = np.empty(3)
         for p in range(n_pieces):
             g = piece_segment[p]
@@ -35,4 +35,4 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
                 cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, directions[r, g],
                 (piece_chi_b[p] - piece_chi_a[p]) / cell_mpc, piece_chi_a[p], cell_mpc, opz_table, hubble_table,
                 chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells,
-                points, marks, kernel[r], count[r], tangent_count[r], tangent_kernel[r])
+                corners, points, marks, kernel[r], count[r], tangent_count[r], tangent_kernel[r])
