@@ -238,11 +238,18 @@ def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, s
         a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
         omega = omega0 * opz
         abs_a = abs(a)
-        # omega^(2/3) |a|^(1/3) in one cube root; the window is narrow (~1e-3 of P), so its
-        # edges' counts step from the count at the extremum.
+        # The window is narrow (~1e-3 of P; the targets lie ~0.1 apart in ln P): first compare the
+        # nearest target's distance with the window in cubes, then take the cube root only where
+        # it falls inside; its edges' counts step from the count at the extremum.
+        k = below[j]
+        below_distance = pe - targets[k - 1] if k > 0 else math.inf
+        above_distance = targets[k] - pe if k < targets.shape[0] else math.inf
+        nearest = min(below_distance, above_distance)
+        if nearest * nearest * nearest > 2.0 * (XI_CUT / m2_per_density) ** 3 * omega * omega * abs_a:
+            continue
         half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
-        k_start = _count_below_near(targets, pe - half_width, below[j])
-        k_stop = _count_below_near(targets, pe + half_width, below[j])
+        k_start = _count_below_near(targets, pe - half_width, k)
+        k_stop = _count_below_near(targets, pe + half_width, k)
         if k_start == k_stop:
             continue
         # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
@@ -350,39 +357,58 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
         bp[n_bp - 1] = piece
         bv[n_bp - 1], bs[n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
         previous_end = bv[n_bp - 1]
-        # Counts of targets below each breakpoint, stepped from the last one (the field moves by
-        # little per cell): comparisons in n_e, no logarithm.
-        below[0] = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
+        # Targets are counted by stepping from the last cell's count (the field moves by little per
+        # cell): comparisons in n_e, no logarithm. A cell with extrema first counts at each of its
+        # breakpoints, for its near-tangent events and the crossings they claim.
+        k = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
+        if n_ext > 0:
+            below[0] = k
+            for j in range(n_bp - 1):
+                below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
+            # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
+            for j in range(n_bp):
+                claim_low[j] = 0
+                claim_high[j] = 0
+            if omega0 > 0.0:
+                _tangent_events(bp, bv, below, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
+                                sigma_rate, omega0, targets, mass2, m2_per_density, claim_low, claim_high, kernel,
+                                count, tangent_count, tangent_kernel)
         for j in range(n_bp - 1):
-            below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
-        below_end = below[n_bp - 1]
-        # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
-        for j in range(n_bp):
-            claim_low[j] = 0
-            claim_high[j] = 0
-        if n_ext > 0 and omega0 > 0.0:
-            _tangent_events(bp, bv, below, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
-                            sigma_rate, omega0, targets, mass2, m2_per_density, claim_low, claim_high, kernel,
-                            count, tangent_count, tangent_kernel)
-        for j in range(n_bp - 1):
-            if below[j] == below[j + 1]:
+            # Each target between the piece's end values is one crossing, met in the order of its
+            # values: upwards from the count below the start where the piece rises, else downwards.
+            a, b, v_a, v_b = bp[j], bp[j + 1], bv[j], bv[j + 1]
+            rising = v_b > v_a
+            if (rising and (k >= n_targets or targets[k] >= v_b)) or (not rising and (k <= 0 or targets[k - 1] < v_b)):
                 continue
             # Starting points from the inverse's cubic Hermite interpolant over the piece (its ends'
             # values and slopes), where neither end is an extremum (there the inverse has a square root);
             # from there one Chebyshev step is nearly always the root, a branch that stays predictable.
-            a, b, v_a, v_b = bp[j], bp[j + 1], bv[j], bv[j + 1]
             rise = v_b - v_a
             hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
             if hermite:
-                inverse_rise = 1.0 / rise
-                m_a = rise / bs[j] - (b - a)
-                m_b = rise / bs[j + 1] - (b - a)
-            claimed_a, claimed_b = claim_low[j], claim_high[j]
-            claimed_c, claimed_d = claim_low[j + 1], claim_high[j + 1]
-            for k in range(min(below[j], below[j + 1]), max(below[j], below[j + 1])):
-                if (claimed_a <= k < claimed_b) or (claimed_c <= k < claimed_d):
+                # 1/rise, rise/slope_a and rise/slope_b from one division.
+                inverse = 1.0 / (rise * bs[j] * bs[j + 1])
+                inverse_rise = bs[j] * bs[j + 1] * inverse
+                m_a = rise * rise * bs[j + 1] * inverse - (b - a)
+                m_b = rise * rise * bs[j] * inverse - (b - a)
+            claimed_a = claimed_b = claimed_c = claimed_d = 0
+            if n_ext > 0:
+                claimed_a, claimed_b = claim_low[j], claim_high[j]
+                claimed_c, claimed_d = claim_low[j + 1], claim_high[j + 1]
+            while True:
+                if rising:
+                    if k >= n_targets or targets[k] >= v_b:
+                        break
+                    crossed = k
+                    k += 1
+                else:
+                    if k <= 0 or targets[k - 1] < v_b:
+                        break
+                    k -= 1
+                    crossed = k
+                if (claimed_a <= crossed < claimed_b) or (claimed_c <= crossed < claimed_d):
                     continue
-                target = targets[k]
+                target = targets[crossed]
                 if hermite:
                     t = (target - v_a) * inverse_rise
                     guess = a + t * ((b - a) + (1.0 - t) * (m_a * (1.0 - t) - m_b * t))
@@ -407,8 +433,9 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                     scaled_rate += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed * cubed * opz
                 if scaled_rate != 0.0:
                     # K = pi m^2 / ((1+z)^2 hbar c |d ln n / d chi|)
-                    kernel[k] += kernel_unit * mass2[k] * target * cubed / (opz * abs(scaled_rate))
-                count[k] += 1
+                    kernel[crossed] += kernel_unit * mass2[crossed] * target * cubed / (opz * abs(scaled_rate))
+                count[crossed] += 1
+        below_end = k
         opz_a, h_a = opz_b, h_b
         s_a = s_b
     return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3
