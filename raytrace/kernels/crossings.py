@@ -386,11 +386,13 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             rise = v_b - v_a
             hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
             if hermite:
-                # 1/rise, rise/slope_a and rise/slope_b from one division.
+                # 1/rise, rise/slope_a and rise/slope_b from one division; then the interpolant's
+                # coefficients as a cubic in t = (target - v_a) / rise.
                 inverse = 1.0 / (rise * bs[j] * bs[j + 1])
                 inverse_rise = bs[j] * bs[j + 1] * inverse
                 m_a = rise * rise * bs[j + 1] * inverse - (b - a)
                 m_b = rise * rise * bs[j] * inverse - (b - a)
+                h1, h2, h3 = (b - a) + m_a, -2.0 * m_a - m_b, m_a + m_b
             claimed_a = claimed_b = claimed_c = claimed_d = 0
             if n_ext > 0:
                 claimed_a, claimed_b = claim_low[j], claim_high[j]
@@ -411,7 +413,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                 target = targets[crossed]
                 if hermite:
                     t = (target - v_a) * inverse_rise
-                    guess = a + t * ((b - a) + (1.0 - t) * (m_a * (1.0 - t) - m_b * t))
+                    guess = (a + h1 * t) + t * t * (h2 + h3 * t)
                     root, slope, error, _ = chebyshev_step(p0 - target, p1, p2, p3, p4, p5, guess)
                     if not (error <= ROOT_TOLERANCE and a <= root <= b):
                         root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,

@@ -38,36 +38,29 @@ MAX_ROOT_DEGREE = 4
 
 @numba.njit(cache=True, inline="always")
 def evaluate(c0, c1, c2, c3, c4, c5, x):
-    return ((((c5 * x + c4) * x + c3) * x + c2) * x + c1) * x + c0
+    # Estrin's scheme: shorter chains of dependent multiply-adds than Horner's, the same terms.
+    x2 = x * x
+    return (c0 + c1 * x) + x2 * ((c2 + c3 * x) + x2 * (c4 + c5 * x))
 
 
 @numba.njit(cache=True, inline="always")
 def evaluate_with_slope(c0, c1, c2, c3, c4, c5, x):
-    """(p(x), p'(x)) by Horner's scheme for both."""
-    value = c5
-    slope = value
-    value = value * x + c4
-    slope = slope * x + value
-    value = value * x + c3
-    slope = slope * x + value
-    value = value * x + c2
-    slope = slope * x + value
-    value = value * x + c1
-    slope = slope * x + value
-    value = value * x + c0
+    """(p(x), p'(x))."""
+    x2 = x * x
+    value = (c0 + c1 * x) + x2 * ((c2 + c3 * x) + x2 * (c4 + c5 * x))
+    slope = (c1 + 2.0 * c2 * x) + x2 * ((3.0 * c3 + 4.0 * c4 * x) + 5.0 * c5 * x2)
     return value, slope
 
 
 @numba.njit(cache=True, inline="always")
 def _taylor(c0, c1, c2, c3, c4, c5, x):
-    """(p, p', p''/2, p'''/6) at x: the first Taylor coefficients, by repeated Horner."""
-    value = c5
-    t1 = t2 = t3 = 0.0
-    for c in (c4, c3, c2, c1, c0):
-        t3 = t3 * x + t2
-        t2 = t2 * x + t1
-        t1 = t1 * x + value
-        value = value * x + c
+    """The first Taylor coefficients at x: p, its slope, half its curvature, a sixth of its third
+    derivative (Estrin's scheme for each)."""
+    x2 = x * x
+    value = (c0 + c1 * x) + x2 * ((c2 + c3 * x) + x2 * (c4 + c5 * x))
+    t1 = (c1 + 2.0 * c2 * x) + x2 * ((3.0 * c3 + 4.0 * c4 * x) + 5.0 * c5 * x2)
+    t2 = (c2 + 3.0 * c3 * x) + x2 * (6.0 * c4 + 10.0 * c5 * x)
+    t3 = c3 + x * (4.0 * c4 + 10.0 * c5 * x)
     return value, t1, t2, t3
 
 
