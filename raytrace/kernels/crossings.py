@@ -296,7 +296,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     first = ln_targets[0]
     inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
     uniform = uniform and n_targets > 1
-    bp, bv, bs = points[0], points[1], points[2]
+    bp, bv, bs, bc = points[0], points[1], points[2], points[3]
     below, claim_low, claim_high = marks[0], marks[1], marks[2]
     opz_a = _lookup(opz_table, chi_step_inverse, chi0)
     h_a = _lookup(hubble_table, chi_step_inverse, chi0)
@@ -350,12 +350,15 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
         bp[0] = 0.0
         bv[0] = previous_end if previous_end >= 0.0 else p0
         bs[0] = p1
+        bc[0] = 2.0 * p2
         for j in range(n_ext):
             bp[j + 1] = extrema[j]
             bv[j + 1] = evaluate(p0, p1, p2, p3, p4, p5, extrema[j])
             bs[j + 1] = 0.0
+            bc[j + 1] = 0.0
         bp[n_bp - 1] = piece
         bv[n_bp - 1], bs[n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
+        bc[n_bp - 1] = evaluate(2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, 0.0, 0.0, piece)
         previous_end = bv[n_bp - 1]
         # Targets are counted by stepping from the last cell's count (the field moves by little per
         # cell): comparisons in n_e, no logarithm. A cell with extrema first counts at each of its
@@ -380,19 +383,25 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             rising = v_b > v_a
             if (rising and (k >= n_targets or targets[k] >= v_b)) or (not rising and (k <= 0 or targets[k - 1] < v_b)):
                 continue
-            # Starting points from the inverse's cubic Hermite interpolant over the piece (its ends'
-            # values and slopes), where neither end is an extremum (there the inverse has a square root);
-            # from there one Chebyshev step is nearly always the root, a branch that stays predictable.
+            # Starting points from the inverse's quintic Hermite interpolant over the piece (its ends'
+            # values, slopes and curvatures), where neither end is an extremum (there the inverse has a
+            # square root); from there one Chebyshev step is nearly always the root (a predictable branch).
             rise = v_b - v_a
             hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
             if hermite:
-                # 1/rise, rise/slope_a and rise/slope_b from one division; then the interpolant's
-                # coefficients as a cubic in t = (target - v_a) / rise.
+                # In t = (target - v_a) / rise the inverse s(t) has slopes rise / P' and curvatures
+                # -rise^2 P'' / P'^3 at the ends; 1/rise and both slopes from one division.
                 inverse = 1.0 / (rise * bs[j] * bs[j + 1])
                 inverse_rise = bs[j] * bs[j + 1] * inverse
-                m_a = rise * rise * bs[j + 1] * inverse - (b - a)
-                m_b = rise * rise * bs[j] * inverse - (b - a)
-                h1, h2, h3 = (b - a) + m_a, -2.0 * m_a - m_b, m_a + m_b
+                slope_a = rise * rise * bs[j + 1] * inverse
+                slope_b = rise * rise * bs[j] * inverse
+                curve_a = -bc[j] * slope_a * slope_a * slope_a * inverse_rise
+                curve_b = -bc[j + 1] * slope_b * slope_b * slope_b * inverse_rise
+                span = b - a
+                h1, h2 = slope_a, 0.5 * curve_a
+                h3 = 10.0 * span - 6.0 * slope_a - 4.0 * slope_b - 1.5 * curve_a + 0.5 * curve_b
+                h4 = -15.0 * span + 8.0 * slope_a + 7.0 * slope_b + 1.5 * curve_a - curve_b
+                h5 = 6.0 * span - 3.0 * slope_a - 3.0 * slope_b - 0.5 * curve_a + 0.5 * curve_b
             claimed_a = claimed_b = claimed_c = claimed_d = 0
             if n_ext > 0:
                 claimed_a, claimed_b = claim_low[j], claim_high[j]
@@ -413,7 +422,8 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                 target = targets[crossed]
                 if hermite:
                     t = (target - v_a) * inverse_rise
-                    guess = (a + h1 * t) + t * t * (h2 + h3 * t)
+                    t2 = t * t
+                    guess = (a + h1 * t) + t2 * ((h2 + h3 * t) + t2 * (h4 + h5 * t))
                     root, slope, error, _ = chebyshev_step(p0 - target, p1, p2, p3, p4, p5, guess)
                     if not (error <= ROOT_TOLERANCE and a <= root <= b):
                         root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,
@@ -448,5 +458,5 @@ def scratch(longest_cells):
     """(cells, corners, points, marks) scratch of one ray's :func:`walk_segment` calls, for segments of at most
     ``longest_cells`` cells of path (a segment crosses at most sqrt(3) cells per cell of path, plus 4)."""
     rows = int(math.sqrt(3.0) * longest_cells) + 8
-    return (np.zeros((rows, _CELL_COLUMNS)), np.zeros((rows, 6), dtype=np.int64), np.zeros((3, _MAX_BREAKPOINTS)),
+    return (np.zeros((rows, _CELL_COLUMNS)), np.zeros((rows, 6), dtype=np.int64), np.zeros((4, _MAX_BREAKPOINTS)),
             np.zeros((3, _MAX_BREAKPOINTS), dtype=np.int64))

@@ -28,10 +28,6 @@ import numba
 #: crossing's rate is its slope there, which a root off by 1e-8 cells moves by ~1e-8 of itself.
 ROOT_TOLERANCE = 1e-8
 
-#: Longest Chebyshev step taken as final: its error estimate leaves out the series' fourth
-#: order, which such a step keeps below ~1e-12 (roots) and ~1e-9 (slopes) per unit coefficient.
-FINAL_STEP = 1e-3
-
 #: Largest degree whose roots :func:`roots_in` finds (the slope of a blended density).
 MAX_ROOT_DEGREE = 4
 
@@ -66,24 +62,26 @@ def _taylor(c0, c1, c2, c3, c4, c5, x):
 
 @numba.njit(cache=True, inline="always")
 def chebyshev_step(c0, c1, c2, c3, c4, c5, x):
-    """(root, slope there, error, p(x)): one step to the root of p near x from the local Taylor cubic.
+    """(root, slope there, error, p(x)): one step to the root of p near x from its Taylor series at x.
 
-    The root of the Taylor series' quadratic part (a Chebyshev step), the cubic's slope
-    there, and the step's error from the next terms of the series reversion (inf where
-    p'(x) = 0 or the step is longer than FINAL_STEP). From within ~1e-4 of a root with
-    curvature ~1 per unit, the error is ~1e-12.
+    The root of the series' quadratic part (a Chebyshev step), the slope there from the
+    whole series (exact for degree <= 5), and the step's error from the series'
+    further terms (inf where p'(x) = 0). From within ~1e-4 of a root with curvature
+    ~1 per unit, the error is ~1e-12.
     """
-    g, slope, half_curvature, sixth_third = _taylor(c0, c1, c2, c3, c4, c5, x)
+    g, slope, t2, t3 = _taylor(c0, c1, c2, c3, c4, c5, x)
     if slope == 0.0:
         return x, slope, math.inf, g
-    inverse_slope = 1.0 / slope  # one division serves the three ratios
+    t4 = c4 + 5.0 * c5 * x
+    inverse_slope = 1.0 / slope  # one division serves every ratio
     newton = -g * inverse_slope
-    u = half_curvature * newton * inverse_slope
-    error = abs(newton) * (2.0 * u * u + abs(sixth_third * inverse_slope) * newton * newton)
-    if abs(newton) > FINAL_STEP:
-        error = math.inf
+    u = t2 * newton * inverse_slope
+    size = abs(newton)
+    # Series reversion: the Chebyshev step leaves 2 u^2 newton from the quadratic term and
+    # (t_n / slope) newton^n from each higher one.
+    error = size * (2.0 * u * u + size * size * abs(inverse_slope) * (abs(t3) + size * (abs(t4) + size * abs(c5))))
     e = newton * (1.0 - u)
-    return x + e, slope + e * (2.0 * half_curvature + 3.0 * sixth_third * e), error, g
+    return x + e, slope + e * (2.0 * t2 + e * (3.0 * t3 + e * (4.0 * t4 + 5.0 * c5 * e))), error, g
 
 
 @numba.njit(cache=True)
