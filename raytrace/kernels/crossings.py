@@ -9,17 +9,21 @@ count and kernel per mass; returned: the segment's dispersion measure (pc cm^-3)
 
 The segment is walked cell by cell of the interpolation grid (the lattice of
 cell centres), a 3-D grid traversal (Amanatides & Woo 1987, Eurographics 87, 3),
-in two passes: :func:`gather_cells` walks the whole segment and keeps each cell's
-cubic (its loads do not wait on one another, so the cube's cache misses overlap),
-then each cell is solved.
+in passes over a table of the segment's cells: :func:`trace_cells` (the
+traversal: each cell's extent and corners), :func:`cell_cubics` (the field along
+the ray in each cell, asking for the cube's cache lines a few cells ahead, so that
+their latency overlaps), :func:`cell_redshifts` (1+z and H/c at each cell's exit),
+then each cell is solved in turn.
 Inside one cell the periodic trilinear interpolant along the ray is an exact
 cubic in the path length s (PHYSICS.md section 8); a blend weight linear in s
 makes it a quartic; times (1+z)^3, linear in s over a cell (its curvature
 there is ~1e-6 relative), the physical density P(s) is a polynomial of degree
 <= 5. Its extrema split the cell into monotone pieces; on each, every target
-between the piece's end values is one root, found by bracketed Newton. The
-rate at a root is d ln n/d chi = F'/F + 3 H/(c (1+z)) with F the comoving
-cubic's own derivative and H from the table, so nothing depends on a step.
+between the piece's end values is one root: one Chebyshev step from the
+inverse's Hermite interpolant over the piece, with bracketed steps where that
+step's error estimate is above ROOT_TOLERANCE. The rate at a root is
+d ln n/d chi = F'/F + 3 H/(c (1+z)) with F the comoving field and H from the
+table, so nothing depends on a step.
 The field jumps where a segment ends (another copy or snapshot): a jump spends
 no time at the values in between, so it adds no crossing.
 
@@ -51,8 +55,9 @@ _CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
 _MAX_BREAKPOINTS = 6
 
 #: Columns of a segment's cell table: the cell's exit path length and entry point (0-3, from
-#: :func:`trace_cells`), the cubic of one snapshot (4-7) and, when blending, of the other (8-11).
-_CELL_COLUMNS = 12
+#: :func:`trace_cells`), the cubic of one snapshot (4-7) and, when blending, of the other (8-11),
+#: and 1+z and H/c at the cell's exit (12-13, from :func:`cell_redshifts`).
+_CELL_COLUMNS = 14
 
 
 @numba.njit(cache=True, inline="always")
@@ -208,6 +213,18 @@ def cell_cubics(cube, scale, direction, n_cells, cells, corners, column):
 
 
 @numba.njit(cache=True)
+def cell_redshifts(opz_table, hubble_table, chi_step_inverse, chi0, cell_mpc, n_cells, cells):
+    """cells[n, 12:14] = 1+z and H/c at the exit of cell n (the tables' linear interpolation there).
+
+    A loop of its own: its table reads do not wait on the solve, so they overlap.
+    """
+    for n in range(n_cells):
+        chi = chi0 + cells[n, 0] * cell_mpc
+        cells[n, 12] = _lookup(opz_table, chi_step_inverse, chi)
+        cells[n, 13] = _lookup(hubble_table, chi_step_inverse, chi)
+
+
+@numba.njit(cache=True)
 def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
 
@@ -221,12 +238,23 @@ def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
 
 
-@numba.njit(cache=True, inline="always")
-def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets, mass2,
-                    m2_per_density, claim_low, claim_high, kernel, count, tangent_count, tangent_kernel):
-    """Airy events at the interior extrema bp[1..n_bp-2] (``below``: targets below each breakpoint's
-    value; e0..e3: the density's second derivative); marks the targets they claim from the two
-    pieces next to each extremum in claim_low/claim_high (per breakpoint, empty on entry)."""
+@numba.njit(cache=True)
+def _tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets,
+                    mass2, m2_per_density, marks, kernel, count, tangent_count, tangent_kernel):
+    """Airy events at the interior extrema bp[1..n_bp-2] of a cell (e0..e3: the density's second
+    derivative; ``below_start``: the number of targets below bv[0]). Fills marks[0] with the
+    number of targets below each breakpoint, and marks[1:3] with the targets each event claims
+    from the two pieces next to its extremum (empty where none, 0 turns events off)."""
+    below, claim_low, claim_high = marks[0], marks[1], marks[2]
+    below[0] = below_start
+    for j in range(n_bp - 1):
+        below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
+    # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
+    for j in range(n_bp):
+        claim_low[j] = 0
+        claim_high[j] = 0
+    if omega0 <= 0.0:
+        return
     for j in range(1, n_bp - 1):
         e = bp[j]
         pe = bv[j]
@@ -274,6 +302,95 @@ def _tangent_events(bp, bv, below, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, s
                 count[k] += 2
 
 
+@numba.njit(cache=True, inline="always")
+def _comoving_field(f0, f1, f2, f3, u0, u1, u2, u3, blended, w_a, w_slope):
+    """(f0..f4, g0..g3): the comoving field F on a cell as a polynomial in the path from its entry:
+    the lower snapshot's cubic f, plus w G when blending (G = u - f, u the upper snapshot's cubic,
+    weight w = w_a + w_slope s), a quartic then; G is returned for the weight's own rate."""
+    if not blended:
+        return f0, f1, f2, f3, 0.0, 0.0, 0.0, 0.0, 0.0
+    g0, g1, g2, g3 = u0 - f0, u1 - f1, u2 - f2, u3 - f3
+    return (f0 + w_a * g0, f1 + w_a * g1 + w_slope * g0, f2 + w_a * g2 + w_slope * g1,
+            f3 + w_a * g3 + w_slope * g2, w_slope * g3, g0, g1, g2, g3)
+
+
+@numba.njit(cache=True, inline="always")
+def _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, ell):
+    """int_0^ell F(s) (1+z(s)) ds with 1+z = opz_a + slope_opz s: the cell's DM over its length in cells."""
+    return ell * (f0 * (opz_a + slope_opz * ell / 2.0)
+                  + ell * (f1 * (opz_a / 2.0 + slope_opz * ell / 3.0)
+                           + ell * (f2 * (opz_a / 3.0 + slope_opz * ell / 4.0)
+                                    + ell * (f3 * (opz_a / 4.0 + slope_opz * ell / 5.0)
+                                             + ell * f4 * (opz_a / 5.0 + slope_opz * ell / 6.0)))))
+
+
+@numba.njit(cache=True, inline="always")
+def _hermite_start(a, b, v_a, v_b, slope_a, slope_b, curvature_a, curvature_b):
+    """(usable, 1/rise, h1..h5): the inverse s(v) of a monotone piece as a quintic in
+    t = (v - v_a) / rise, s = a + h1 t + ... + h5 t^5, its Hermite interpolant from the ends'
+    values, slopes and curvatures. Not usable where an end is an extremum (P' = 0: there the
+    inverse has a square root)."""
+    rise = v_b - v_a
+    if not (slope_a * rise > 0.0 and slope_b * rise > 0.0):
+        return False, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
+    # ds/dt = rise / P' and d2s/dt2 = -rise^2 P'' / P'^3 at the ends; 1/rise and both slopes
+    # from one division.
+    inverse = 1.0 / (rise * slope_a * slope_b)
+    inverse_rise = slope_a * slope_b * inverse
+    d_a = rise * rise * slope_b * inverse
+    d_b = rise * rise * slope_a * inverse
+    c_a = -curvature_a * d_a * d_a * d_a * inverse_rise
+    c_b = -curvature_b * d_b * d_b * d_b * inverse_rise
+    span = b - a
+    return (True, inverse_rise, d_a, 0.5 * c_a, 10.0 * span - 6.0 * d_a - 4.0 * d_b - 1.5 * c_a + 0.5 * c_b,
+            -15.0 * span + 8.0 * d_a + 7.0 * d_b + 1.5 * c_a - c_b,
+            6.0 * span - 3.0 * d_a - 3.0 * d_b - 0.5 * c_a + 0.5 * c_b)
+
+
+@numba.njit(cache=True, inline="always")
+def _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start):
+    """(root, slope of P there) of P = target on the monotone piece [a, b] (values v_a, v_b);
+    ``start``: the Hermite start (t, 1/rise, h1..h5) or None-like (usable False)."""
+    usable, inverse_rise, h1, h2, h3, h4, h5 = start
+    if usable:
+        t = (target - v_a) * inverse_rise
+        t2 = t * t
+        guess = (a + h1 * t) + t2 * ((h2 + h3 * t) + t2 * (h4 + h5 * t))
+        # From there one Chebyshev step is nearly always the root: a branch that stays predictable.
+        root, slope, error, _ = chebyshev_step(p0 - target, p1, p2, p3, p4, p5, guess)
+        if error <= ROOT_TOLERANCE and a <= root <= b:
+            return root, slope
+    else:
+        guess = -1.0
+    return bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target, v_b - target, guess)
+
+
+@numba.njit(cache=True, inline="always")
+def _crossing_kernel(root, slope, target, mass2, cell_mpc, kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1,
+                     blended, weight_term):
+    """K (eV) of the crossing at ``root`` (P' = ``slope`` there), or 0 where its rate vanishes.
+
+    ``weight_term``: (w_a, w_slope, g0..g3, 1/(z_hi - z_lo)) of a blend.
+    """
+    opz = opz_a + slope_opz * root
+    hubble = h_a + slope_h * root
+    # At the root P = target, so F = target / (1+z)^3 and d ln F / ds = P'/target - ((1+z)^3)'/(1+z)^3;
+    # the rate is that per cell plus 3 H/(c (1+z)). All of it times target (1+z)^3 (1+z) and
+    # cell, so that one division is left.
+    cubed = d_a + d_1 * root
+    scaled_rate = slope * cubed * opz - d_1 * target * opz + 3.0 * hubble * cell_mpc * target * cubed
+    if blended:
+        # The weight's own slope from H, not from its chord over the cell (first order).
+        w_a, w_slope, g0, g1, g2, g3, inverse_z_interval = weight_term
+        w_root = w_a + w_slope * root
+        exact = hubble * cell_mpc * inverse_z_interval if 0.0 < w_root < 1.0 else 0.0
+        scaled_rate += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed * cubed * opz
+    if scaled_rate == 0.0:
+        return 0.0
+    # K = pi m^2 / ((1+z)^2 hbar c |d ln n / d chi|)
+    return kernel_unit * mass2 * target * cubed / (opz * abs(scaled_rate))
+
+
 @numba.njit(cache=True)
 def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                  cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
@@ -286,96 +403,65 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     the observed photon energy of near-tangent events (eV; 0 turns them off);
     ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`.
 
-    The density's coefficients stay scalars (registers); one cell's solve is one loop body.
+    Polynomials travel as scalars (registers) through inlined helpers: small arrays
+    passed between kernels cost more than the arithmetic.
     """
     n_cells = trace_cells(cube_lo.shape, start, direction, length, cells, corners)
     cell_cubics(cube_lo, scale_lo, direction, n_cells, cells, corners, 4)
     if blended:
         cell_cubics(cube_hi, scale_hi, direction, n_cells, cells, corners, 8)
+    cell_redshifts(opz_table, hubble_table, chi_step_inverse, chi0, cell_mpc, n_cells, cells)
     n_targets = targets.shape[0]
-    first = ln_targets[0]
     inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
-    uniform = uniform and n_targets > 1
     bp, bv, bs, bc = points[0], points[1], points[2], points[3]
-    below, claim_low, claim_high = marks[0], marks[1], marks[2]
+    claim_low, claim_high = marks[1], marks[2]
     opz_a = _lookup(opz_table, chi_step_inverse, chi0)
     h_a = _lookup(hubble_table, chi_step_inverse, chi0)
-    previous_end = -1.0  # P at the end of the previous cell (the field is continuous inside a segment)
-    below_end = -1  # the number of targets below it
-    dm = 0.0
-    sigma_rate = rate_unit / cell_mpc
     kernel_unit = math.pi * cell_mpc / rate_unit
     inverse_z_interval = 1.0 / (z_hi - z_lo) if blended else 0.0
+    end_value = -1.0  # P where the previous cell ended
+    k = -1  # the number of targets below it
+    dm = 0.0
     s_a = 0.0
-    g0 = g1 = g2 = g3 = 0.0
-    w_a = w_b = w_slope = 0.0
     for c in range(n_cells):
-        s_b = cells[c, 0]
-        piece = s_b - s_a
-        opz_b = _lookup(opz_table, chi_step_inverse, chi0 + s_b * cell_mpc)
-        h_b = _lookup(hubble_table, chi_step_inverse, chi0 + s_b * cell_mpc)
-        # The comoving field F(sigma) on sigma in [0, piece]: a cubic, or a quartic when blended.
-        f0, f1, f2, f3, f4 = cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7], 0.0
-        if blended:
-            w_a = min(max((opz_a - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
-            w_b = min(max((opz_b - 1.0 - z_lo) / (z_hi - z_lo), 0.0), 1.0)
-            w_slope = (w_b - w_a) / piece
-            # G = F_hi - F_lo; F = F_lo + w G with w linear over the cell.
-            g0, g1, g2, g3 = cells[c, 8] - f0, cells[c, 9] - f1, cells[c, 10] - f2, cells[c, 11] - f3
-            f4 = w_slope * g3
-            f3 += w_a * g3 + w_slope * g2
-            f2 += w_a * g2 + w_slope * g1
-            f1 += w_a * g1 + w_slope * g0
-            f0 += w_a * g0
-        # Dispersion measure: int n_com (1+z) dchi, with 1+z linear over the piece.
+        piece = cells[c, 0] - s_a
+        s_a = cells[c, 0]
+        opz_b, h_b = cells[c, 12], cells[c, 13]
         inverse_piece = 1.0 / piece
+        # The blend's weight, linear in the cell's redshift: 0 at z_lo, 1 at z_hi.
+        w_a = min(max((opz_a - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0)
+        w_slope = (min(max((opz_b - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0) - w_a) * inverse_piece
+        f0, f1, f2, f3, f4, g0, g1, g2, g3 = _comoving_field(
+            cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7], cells[c, 8], cells[c, 9], cells[c, 10], cells[c, 11],
+            blended, w_a, w_slope)
         slope_opz = (opz_b - opz_a) * inverse_piece
-        ell = piece
-        dm += cell_mpc * ell * (f0 * (opz_a + slope_opz * ell / 2.0)
-                                + ell * (f1 * (opz_a / 2.0 + slope_opz * ell / 3.0)
-                                         + ell * (f2 * (opz_a / 3.0 + slope_opz * ell / 4.0)
-                                                  + ell * (f3 * (opz_a / 4.0 + slope_opz * ell / 5.0)
-                                                           + ell * f4 * (opz_a / 5.0 + slope_opz * ell / 6.0)))))
-        # Physical density P = F (1+z)^3, with (1+z)^3 linear over the piece.
+        dm += cell_mpc * _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, piece)
+        # Physical density P = F (1+z)^3, with (1+z)^3 linear over the cell.
         d_a = opz_a * opz_a * opz_a
         d_1 = (opz_b * opz_b * opz_b - d_a) * inverse_piece
-        p0 = f0 * d_a
-        p1 = f1 * d_a + f0 * d_1
-        p2 = f2 * d_a + f1 * d_1
-        p3 = f3 * d_a + f2 * d_1
-        p4 = f4 * d_a + f3 * d_1
-        p5 = f4 * d_1
+        p0, p1, p2, p3, p4, p5 = (f0 * d_a, f1 * d_a + f0 * d_1, f2 * d_a + f1 * d_1, f3 * d_a + f2 * d_1,
+                                  f4 * d_a + f3 * d_1, f4 * d_1)
+        # Breakpoints: the cell's ends and the extrema of P between, with P's value (continuous with
+        # the previous cell's end), slope and curvature there.
         n_ext, extrema = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece)
         n_bp = n_ext + 2
-        bp[0] = 0.0
-        bv[0] = previous_end if previous_end >= 0.0 else p0
-        bs[0] = p1
-        bc[0] = 2.0 * p2
+        bp[0], bv[0], bs[0], bc[0] = 0.0, end_value if end_value >= 0.0 else p0, p1, 2.0 * p2
         for j in range(n_ext):
-            bp[j + 1] = extrema[j]
-            bv[j + 1] = evaluate(p0, p1, p2, p3, p4, p5, extrema[j])
-            bs[j + 1] = 0.0
-            bc[j + 1] = 0.0
+            bp[j + 1], bv[j + 1], bs[j + 1], bc[j + 1] = extrema[j], evaluate(p0, p1, p2, p3, p4, p5, extrema[j]), 0.0, 0.0
         bp[n_bp - 1] = piece
         bv[n_bp - 1], bs[n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
         bc[n_bp - 1] = evaluate(2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, 0.0, 0.0, piece)
-        previous_end = bv[n_bp - 1]
+        end_value = bv[n_bp - 1]
         # Targets are counted by stepping from the last cell's count (the field moves by little per
         # cell): comparisons in n_e, no logarithm. A cell with extrema first counts at each of its
         # breakpoints, for its near-tangent events and the crossings they claim.
-        k = _count_below(ln_targets, bv[0], uniform, first, inverse_spacing) if below_end < 0 else below_end
+        if k < 0:
+            k = _count_below(ln_targets, bv[0], uniform and n_targets > 1, ln_targets[0], inverse_spacing)
         if n_ext > 0:
-            below[0] = k
-            for j in range(n_bp - 1):
-                below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
-            # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
-            for j in range(n_bp):
-                claim_low[j] = 0
-                claim_high[j] = 0
-            if omega0 > 0.0:
-                _tangent_events(bp, bv, below, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
-                                sigma_rate, omega0, targets, mass2, m2_per_density, claim_low, claim_high, kernel,
-                                count, tangent_count, tangent_kernel)
+            _tangent_events(bp, bv, k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
+                            rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
+                            tangent_count, tangent_kernel)
+        weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
         for j in range(n_bp - 1):
             # Each target between the piece's end values is one crossing, met in the order of its
             # values: upwards from the count below the start where the piece rises, else downwards.
@@ -383,29 +469,8 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             rising = v_b > v_a
             if (rising and (k >= n_targets or targets[k] >= v_b)) or (not rising and (k <= 0 or targets[k - 1] < v_b)):
                 continue
-            # Starting points from the inverse's quintic Hermite interpolant over the piece (its ends'
-            # values, slopes and curvatures), where neither end is an extremum (there the inverse has a
-            # square root); from there one Chebyshev step is nearly always the root (a predictable branch).
-            rise = v_b - v_a
-            hermite = bs[j] * rise > 0.0 and bs[j + 1] * rise > 0.0
-            if hermite:
-                # In t = (target - v_a) / rise the inverse s(t) has slopes rise / P' and curvatures
-                # -rise^2 P'' / P'^3 at the ends; 1/rise and both slopes from one division.
-                inverse = 1.0 / (rise * bs[j] * bs[j + 1])
-                inverse_rise = bs[j] * bs[j + 1] * inverse
-                slope_a = rise * rise * bs[j + 1] * inverse
-                slope_b = rise * rise * bs[j] * inverse
-                curve_a = -bc[j] * slope_a * slope_a * slope_a * inverse_rise
-                curve_b = -bc[j + 1] * slope_b * slope_b * slope_b * inverse_rise
-                span = b - a
-                h1, h2 = slope_a, 0.5 * curve_a
-                h3 = 10.0 * span - 6.0 * slope_a - 4.0 * slope_b - 1.5 * curve_a + 0.5 * curve_b
-                h4 = -15.0 * span + 8.0 * slope_a + 7.0 * slope_b + 1.5 * curve_a - curve_b
-                h5 = 6.0 * span - 3.0 * slope_a - 3.0 * slope_b - 0.5 * curve_a + 0.5 * curve_b
-            claimed_a = claimed_b = claimed_c = claimed_d = 0
-            if n_ext > 0:
-                claimed_a, claimed_b = claim_low[j], claim_high[j]
-                claimed_c, claimed_d = claim_low[j + 1], claim_high[j + 1]
+            start = _hermite_start(a, b, v_a, v_b, bs[j], bs[j + 1], bc[j], bc[j + 1])
+            claims = (claim_low[j], claim_high[j], claim_low[j + 1], claim_high[j + 1]) if n_ext > 0 else (0, 0, 0, 0)
             while True:
                 if rising:
                     if k >= n_targets or targets[k] >= v_b:
@@ -417,39 +482,15 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                         break
                     k -= 1
                     crossed = k
-                if (claimed_a <= crossed < claimed_b) or (claimed_c <= crossed < claimed_d):
+                if (claims[0] <= crossed < claims[1]) or (claims[2] <= crossed < claims[3]):
                     continue
                 target = targets[crossed]
-                if hermite:
-                    t = (target - v_a) * inverse_rise
-                    t2 = t * t
-                    guess = (a + h1 * t) + t2 * ((h2 + h3 * t) + t2 * (h4 + h5 * t))
-                    root, slope, error, _ = chebyshev_step(p0 - target, p1, p2, p3, p4, p5, guess)
-                    if not (error <= ROOT_TOLERANCE and a <= root <= b):
-                        root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,
-                                                     v_b - target, guess)
-                else:
-                    root, slope = bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target,
-                                                 v_b - target, -1.0)
-                opz = opz_a + slope_opz * root
-                hubble = h_a + (h_b - h_a) * root * inverse_piece
-                # At the root P = target, so F = target / (1+z)^3 and
-                # d ln F / ds = P'/target - ((1+z)^3)'/(1+z)^3; the rate is that per cell plus 3 H/(c (1+z)).
-                # All of it times target (1+z)^3 (1+z) and cell, so that one division is left:
-                cubed = d_a + d_1 * root
-                scaled_rate = slope * cubed * opz - d_1 * target * opz + 3.0 * hubble * cell_mpc * target * cubed
-                if blended:
-                    # The weight's own slope from H, not from its chord over the cell (first order).
-                    w_root = w_a + w_slope * root
-                    exact = hubble * cell_mpc * inverse_z_interval if 0.0 < w_root < 1.0 else 0.0
-                    scaled_rate += evaluate(g0, g1, g2, g3, 0.0, 0.0, root) * (exact - w_slope) * cubed * cubed * opz
-                if scaled_rate != 0.0:
-                    # K = pi m^2 / ((1+z)^2 hbar c |d ln n / d chi|)
-                    kernel[crossed] += kernel_unit * mass2[crossed] * target * cubed / (opz * abs(scaled_rate))
+                root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
+                kernel[crossed] += _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a,
+                                                    slope_opz, h_a, (h_b - h_a) * inverse_piece, d_a, d_1, blended,
+                                                    weight_term)
                 count[crossed] += 1
-        below_end = k
         opz_a, h_a = opz_b, h_b
-        s_a = s_b
     return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3
 
 
