@@ -12,8 +12,8 @@ registers: the engine evaluates these polynomials a few times per cell of every 
 Roots come from the derivative chain: the critical points of p (roots of p',
 found the same way one degree down, a quadratic in closed form) split the
 interval into monotone pieces, and each piece with a sign change holds exactly
-one root, found by Newton's method kept inside its bracket (bisection where a
-Newton step would leave it). So no root is missed and none is found twice,
+one root, found by Chebyshev steps (Newton's with the curvature term) kept inside
+its bracket (bisection where a step would leave it). So no root is missed and none is found twice,
 whatever the step sizes (common practice, no source). A cubic whose Bernstein
 coefficients on the interval share one sign has no root there (the curve lies in
 their convex hull; Farouki & Rajan 1987, Comput. Aided Geom. Des. 4, 191), which
@@ -27,9 +27,6 @@ import numba
 #: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine). A
 #: crossing's rate is its slope there, which a root off by 1e-8 cells moves by ~1e-8 of itself.
 ROOT_TOLERANCE = 1e-8
-
-#: Largest degree whose roots :func:`roots_in` finds (the slope of a blended density).
-MAX_ROOT_DEGREE = 4
 
 
 @numba.njit(cache=True, inline="always")
