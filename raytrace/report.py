@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, RaytraceWarning, require_positive_finite
-from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
-                     same_mass_grid, sightline_limits)
 from .crosscheck import warn_differences
+from .limits import UnconstrainedMassWarning, anisotropy_curve, result_kernels, sightline_limits
+from .limitset import plot_limits, same_mass_grid
 from .plots import _pyplot, fit_log_limits, kernel_bands, shown_mass_index
 from .provenance import atomic_output, check_outputs, output_set
 from .results import SightlineResult
