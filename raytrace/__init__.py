@@ -3,12 +3,12 @@ photon -> dark-photon conversion.
 
 Data flow, one module per stage::
 
-    boxes (boxes.py, gridding.py)          HDF5 box files -> Box / BoxSeries
+    boxes (boxes/, gridding.py)            HDF5 box files -> Box / BoxSeries
       -> sightlines (rays.py)              random rays through stacked, transformed copies
       -> crossings + per-ray kernel        kernels/ (numba), engine.py
-      -> statistics (results.py)           SightlineResult: mean, spread, HDF5 backend
+      -> statistics (results.py)           SightlineResult: mean, spread (files: resultfiles.py, backends.py)
       -> sky maps (sky.py)                 HEALPix light cone, C_l, dT/T
-      -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum and sky
+      -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum and sky (tables, plots: limitset.py)
 
 A notebook session::
 

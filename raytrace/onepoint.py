@@ -109,7 +109,7 @@ class PdfMean:
         import h5py
 
         from .provenance import atomic_output
-        from .results import _check_finite, _describe, _write_header
+        from .resultfiles import _check_finite, _describe, _write_header
 
         with atomic_output(path, overwrite=overwrite) as temporary:
             with h5py.File(temporary, "w") as handle:
@@ -125,7 +125,7 @@ class PdfMean:
     def load(cls, path):
         import json
 
-        from .results import open_result
+        from .resultfiles import open_result
 
         with open_result(path, FORMAT, "one-point-PDF mean") as handle:
             return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],

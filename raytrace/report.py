@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, RaytraceWarning, require_positive_finite
-from .limits import (UnconstrainedMassWarning, anisotropy_curve, plot_limits, result_kernels,
-                     same_mass_grid, sightline_limits)
 from .crosscheck import warn_differences
+from .limits import UnconstrainedMassWarning, anisotropy_curve, result_kernels, sightline_limits
+from .limitset import plot_limits, same_mass_grid
 from .plots import _pyplot, fit_log_limits, kernel_bands, shown_mass_index
 from .provenance import atomic_output, check_outputs, output_set
 from .results import SightlineResult
@@ -122,45 +122,9 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
             threshold=None):
     """The report's text: run parameters, boxes versus background, probed masses, limits at a few masses,
     the built-in mean check and how well the spread is determined (:mod:`raytrace.trust`)."""
-    run = result.run
-    z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
-    with_background = bool(run.get("include_background")) and z_max > z_boxes
-    lines = [
-        f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "
-        f"z = 0 to {z_max:g}, exact crossings, near-tangent pairs in the Airy form at "
-        f"{float(run.get('photon_energy_eV', float('nan'))):.4g} eV ({_share(result)} of the boxes' kernel), "
-        f"batches of {run.get('batch_size', '?')}",
-        f"boxes serve z = 0 to {z_boxes:g}"
-        + (" (snapshots blended linearly in n_e)" if run.get("blend") else " (the snapshot nearest in z serves)") + "; "
-        + (f"the homogeneous background z = {z_boxes:g} to {z_max:g}" if with_background else "no background part"),
-        f"ionisation: {run.get('ionisation')}; cosmology: {run.get('cosmology')}",
-        f"boxes ({len(run.get('boxes', []))}):",
-    ]
-    for number, box in enumerate(run.get("boxes", []), 1):
-        where = Path(box["path"]).name if box.get("path") else "in memory"
-        lines.append(f"  {number}: z = {box['redshift']:g}, {box['box_size_cMpc']:.4g} cMpc "
-                     f"(given as {box.get('box_size_given')}), {box['n_cells']}^3 cells, {box['quantity']}, "
-                     f"{where}, {box.get('checksum')}")
-
-    mass = result.mass_eV
-    probed = result.crossings.sum(axis=0) > 0
-    lines.append(f"masses: {mass.size} from {mass[0]:.3g} to {mass[-1]:.3g} eV; probed by the boxes "
-                 "(a resonance on at least one ray): "
-                 + (f"{probed.sum()} masses, {mass[probed][0]:.3g} to {mass[probed][-1]:.3g} eV" if probed.any()
-                    else "none"))
-    mean, from_boxes = result.mean(), result.kernel_boxes.mean(axis=0)
-    fraction = result.boxes_fraction()
-    if mean.sum() > 0:
-        lines.append(f"<K> from the boxes: {100 * from_boxes.sum() / mean.sum():.1f} % of <K> summed over the grid "
-                     f"masses, the homogeneous background the rest; per mass (where <K> > 0) "
-                     f"{100 * np.nanmin(fraction):.1f} % to {100 * np.nanmax(fraction):.1f} %")
-    else:
-        lines.append("<K> = 0 at every mass: no resonance in the boxes nor in the background")
-    dm = result.dispersion_measure
-    lines.append(f"dispersion measure to z = {z_max:g}: mean {dm.mean():.4g} pc cm^-3 (16-84 %: "
-                 f"{np.percentile(dm, 16):.4g} to {np.percentile(dm, 84):.4g}), of which the boxes "
-                 f"{100 * result.dispersion_measure_boxes.mean() / dm.mean():.1f} % and the background "
-                 f"{result.dispersion_measure_background:.4g} pc cm^-3")
+    z_max = float(result.run["z_max"])
+    mass, mean, fraction = result.mass_eV, result.mean(), result.boxes_fraction()
+    lines = _run_lines(result) + _kernel_lines(result, mean, fraction)
 
     by_name = {curve.name: curve for curve in limits.all_curves()}
     fit = by_name["background"]
@@ -211,6 +175,53 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
 
 
 # -- internals ------------------------------------------------------------------
+
+
+def _run_lines(result):
+    """The report's lines on the run: rays, redshifts, boxes and background, ionisation, cosmology, each box."""
+    run = result.run
+    z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
+    with_background = bool(run.get("include_background")) and z_max > z_boxes
+    lines = [
+        f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "
+        f"z = 0 to {z_max:g}, exact crossings, near-tangent pairs in the Airy form at "
+        f"{float(run.get('photon_energy_eV', float('nan'))):.4g} eV ({_share(result)} of the boxes' kernel), "
+        f"batches of {run.get('batch_size', '?')}",
+        f"boxes serve z = 0 to {z_boxes:g}"
+        + (" (snapshots blended linearly in n_e)" if run.get("blend") else " (the snapshot nearest in z serves)") + "; "
+        + (f"the homogeneous background z = {z_boxes:g} to {z_max:g}" if with_background else "no background part"),
+        f"ionisation: {run.get('ionisation')}; cosmology: {run.get('cosmology')}",
+        f"boxes ({len(run.get('boxes', []))}):",
+    ]
+    for number, box in enumerate(run.get("boxes", []), 1):
+        where = Path(box["path"]).name if box.get("path") else "in memory"
+        lines.append(f"  {number}: z = {box['redshift']:g}, {box['box_size_cMpc']:.4g} cMpc "
+                     f"(given as {box.get('box_size_given')}), {box['n_cells']}^3 cells, {box['quantity']}, "
+                     f"{where}, {box.get('checksum')}")
+    return lines
+
+
+def _kernel_lines(result, mean, fraction):
+    """The report's lines on the masses the boxes probe, the boxes' share of <K> and the dispersion measure."""
+    mass, z_max = result.mass_eV, float(result.run["z_max"])
+    probed = result.crossings.sum(axis=0) > 0
+    lines = [f"masses: {mass.size} from {mass[0]:.3g} to {mass[-1]:.3g} eV; probed by the boxes "
+             "(a resonance on at least one ray): "
+             + (f"{probed.sum()} masses, {mass[probed][0]:.3g} to {mass[probed][-1]:.3g} eV" if probed.any()
+                else "none")]
+    from_boxes = result.kernel_boxes.mean(axis=0)
+    if mean.sum() > 0:
+        lines.append(f"<K> from the boxes: {100 * from_boxes.sum() / mean.sum():.1f} % of <K> summed over the grid "
+                     f"masses, the homogeneous background the rest; per mass (where <K> > 0) "
+                     f"{100 * np.nanmin(fraction):.1f} % to {100 * np.nanmax(fraction):.1f} %")
+    else:
+        lines.append("<K> = 0 at every mass: no resonance in the boxes nor in the background")
+    dm = result.dispersion_measure
+    lines.append(f"dispersion measure to z = {z_max:g}: mean {dm.mean():.4g} pc cm^-3 (16-84 %: "
+                 f"{np.percentile(dm, 16):.4g} to {np.percentile(dm, 84):.4g}), of which the boxes "
+                 f"{100 * result.dispersion_measure_boxes.mean() / dm.mean():.1f} % and the background "
+                 f"{result.dispersion_measure_background:.4g} pc cm^-3")
+    return lines
 
 
 def _load(value, kind):

@@ -1,37 +1,28 @@
-"""Statistics of a sightline run, and where its arrays live while it runs.
+"""Statistics of a sightline run.
 
 In: per-ray arrays from the engine (kernel from the boxes, crossing counts,
 dispersion measures, directions) plus the homogeneous-background part.
 Out: :class:`SightlineResult` with the mean, variance, standard error,
 percentiles, bootstrap error of the variance and P(epsilon, omega_0); saved to
-and loaded from HDF5 with provenance.
-
-Two interchangeable backends hold the arrays during a run, with one
-interface: :class:`MemoryBackend`, and :class:`HDF5Backend`, which appends each
-finished batch with its checksum to a checkpoint file and flushes it, so that
-an interrupted run resumes from its complete, intact batches.
+and loaded from HDF5 with provenance (the file format is
+:mod:`raytrace.resultfiles`'s). While a run goes, its arrays live in a backend
+of :mod:`raytrace.backends`.
 """
 
-import errno
-import hashlib
 import json
-import os
-import warnings
-from pathlib import Path
 
-import h5py
 import numpy as np
 
 from .conversion import probability_from_kernel
-from .errors import InputError, RaytraceWarning, WriteError, require_path
-from .provenance import (after_outputs, atomic_output, check_writable, hdf5_image, is_write_failure, output_folder,
-                         provenance_json, write_failure)
+from .errors import InputError
+from .resultfiles import open_result, save_arrays
+# The backends and the file format were this module's before raytrace.backends and raytrace.resultfiles;
+# their names stay importable from here.
+from .backends import HDF5Backend, MemoryBackend  # noqa: F401
+from .resultfiles import DATASETS, FORMAT_VERSION  # noqa: F401
+
 
 FORMAT = "raytrace-sightlines-2"
-#: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
-#: every dataset and stores crossings as float64 in sightline and sky files alike. Files without the
-#: attribute are version 1, still read; a newer version is refused.
-FORMAT_VERSION = 2
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
 
 # name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
@@ -43,34 +34,6 @@ SIGHTLINE_LAYOUT = {
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
     "direction": (lambda r, m: (r, 3), np.float64),
 }
-
-
-# name -> (unit, one-line description) of each dataset a result file holds; {row} is "ray" or "pixel".
-# Crossings are float64 in both files: a pixel's count is the mean over its rays.
-DATASETS = {
-    "mass_eV": ("eV", "dark-photon masses of the grid"),
-    "kernel_boxes": ("eV", "conversion kernel K from the boxes per {row} and mass; P = epsilon^2 K / omega_0"),
-    "kernel_background": ("eV", "kernel of the homogeneous universe beyond the boxes per mass, the same for every {row}"),
-    "crossings": ("1", "resonances inside the boxes per {row} and mass{mean}"),
-    "tangent_events": ("1", "near-tangent resonance pairs (and near misses) taken in the Airy form per {row} and mass{mean}"),
-    "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
-    "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
-    "direction": ("1", "unit vector of each {row} in the boxes' axes"),
-    "pdf_mean/kernel_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per mass, over the run's redshifts"),
-    "pdf_mean/kernel_background": ("eV", "the homogeneous background's kernel per mass in the one-point-PDF mean"),
-    "pdf_mean/error": ("eV", "error estimate of the one-point-PDF mean of the boxes' kernel per mass"),
-}
-# Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
-# a sky's are means over a pixel's rays).
-FILE_DTYPES = {"crossings": np.float64, "tangent_events": np.float64}
-
-
-def _describe(dataset, name, format_name):
-    unit, description = DATASETS[name]
-    dataset.attrs["unit"] = unit
-    sky = "sky" in format_name
-    dataset.attrs["description"] = description.format(row="pixel" if sky else "ray",
-                                                       mean=" (mean over the pixel's rays)" if sky else "")
 
 
 class KernelRows:
@@ -225,298 +188,3 @@ def tangent_arrays(kernel_boxes, tangent_events, kernel_tangent):
     if events.shape != shape or kernel.shape != shape:
         raise InputError(f"tangent_events, kernel_tangent: expected the kernel's shape {shape}")
     return events, kernel
-
-
-def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes):
-    """Write ``layout``'s arrays of ``source`` plus the background kernel to HDF5, atomically.
-
-    NaN or inf in any array aborts the write: no result file ever holds them.
-    """
-    with atomic_output(path, overwrite=overwrite) as temporary:
-        with hdf5_image(temporary) as handle:
-            _write_header(handle, format_name, mass_eV, run)
-            for name in layout:
-                data = getattr(source, name)
-                handle.create_dataset(name, data=data, dtype=FILE_DTYPES.get(name, data.dtype), compression="gzip",
-                                      shuffle=True)
-                _describe(handle[name], name, format_name)
-            handle["kernel_background"] = source.kernel_background
-            _describe(handle["kernel_background"], "kernel_background", format_name)
-            handle.attrs.update(attributes)
-            if source.pdf_check is not None:
-                from .meancheck import write_pdf_check
-
-                write_pdf_check(handle, source.pdf_check)
-                for name in handle["pdf_mean"]:
-                    _describe(handle["pdf_mean"][name], f"pdf_mean/{name}", format_name)
-            if "dispersion_measure_background" in attributes:
-                handle.attrs["dispersion_measure_background_unit"] = "pc cm^-3"
-            handle.attrs["complete"] = True
-            _check_finite(handle, path)
-    return Path(path)
-
-
-class open_result:
-    """Context manager opening a complete result file of ``format_name``, with clear errors."""
-
-    def __init__(self, path, format_name, what):
-        self.path, self.format_name, self.what = require_path(path, f"{what} result path"), format_name, what
-
-    def __enter__(self):
-        if not self.path.exists():
-            raise InputError(f"{self.path}: result file not found")
-        try:
-            self.handle = h5py.File(self.path, "r")
-        except OSError as error:
-            raise InputError(f"{self.path}: not a readable HDF5 file ({error})") from None
-        if self.handle.attrs.get("format") != self.format_name:
-            self.handle.close()
-            raise InputError(f"{self.path}: not a raytrace {self.what} result "
-                             f"(attribute 'format' is not {self.format_name!r})")
-        version = int(self.handle.attrs.get("format_version", 1))
-        if version > FORMAT_VERSION:
-            self.handle.close()
-            raise InputError(f"{self.path}: written by a newer raytrace (format version {version}; this one reads "
-                             f"up to {FORMAT_VERSION}); update raytrace to read it")
-        if not self.handle.attrs.get("complete", False):
-            self.handle.close()
-            raise InputError(f"{self.path}: the run is not complete; finish it with --resume")
-        return self.handle
-
-    def __exit__(self, *exc):
-        self.handle.close()
-
-
-def _write_header(handle, format_name, mass_eV, run):
-    handle.attrs["format"] = format_name
-    handle.attrs["format_version"] = FORMAT_VERSION
-    handle.attrs["run"] = json.dumps(run, sort_keys=True, default=str)
-    handle.attrs["provenance"] = provenance_json(run=run)
-    handle["mass_eV"] = mass_eV
-    _describe(handle["mass_eV"], "mass_eV", format_name)
-
-
-def _check_finite(handle, path):
-    for name, item in handle.items():
-        if isinstance(item, h5py.Dataset) and item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
-            raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
-    # Numbers stored as attributes (the background's dispersion measure) are results too.
-    for name, value in handle.attrs.items():
-        if np.asarray(value).dtype.kind == "f" and not np.all(np.isfinite(value)):
-            raise InputError(f"{path}: attribute {name} would hold NaN or inf; nothing was written")
-
-
-def _differences(stored, current, where=""):
-    """'key[i].name: checkpoint X, now Y' for each leaf where two run dicts differ."""
-    if isinstance(stored, dict) and isinstance(current, dict):
-        return [line for key in sorted(set(stored) | set(current))
-                for line in _differences(stored.get(key), current.get(key), f"{where}.{key}" if where else key)]
-    if isinstance(stored, list) and isinstance(current, list) and len(stored) == len(current):
-        return [line for i, (a, b) in enumerate(zip(stored, current)) for line in _differences(a, b, f"{where}[{i}]")]
-    return [] if stored == current else [f"{where}: checkpoint {stored!r}, now {current!r}"]
-
-
-class MemoryBackend:
-    """Holds a run's per-row arrays (rows: rays or pixels) in memory."""
-
-    def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
-        self.arrays = {name: np.zeros(shape(n_rows, mass_eV.size), dtype) for name, (shape, dtype) in layout.items()}
-        self.done = np.zeros(n_batches, dtype=bool)
-
-    def completed_batches(self):
-        return self.done.copy()
-
-    def write_batch(self, batch, start, arrays):
-        for name, values in arrays.items():
-            self.arrays[name][start:start + values.shape[0]] = values
-        self.done[batch] = True
-
-    def read(self):
-        return self.arrays
-
-    def finish(self, result):
-        return result
-
-
-def _batch_digest(batch, start, rows):
-    """SHA-256 (32 bytes) of one batch's rows as stored, in layout order, with its index and first row."""
-    digest = hashlib.sha256(np.array([batch, start], dtype=np.int64).tobytes())
-    for values in rows:
-        digest.update(np.ascontiguousarray(values).tobytes())
-    return np.frombuffer(digest.digest(), dtype=np.uint8)
-
-
-def _header_digest(run_json, layout_shapes):
-    """SHA-256 hex of a checkpoint's run record and array shapes: what a resume compares against."""
-    return hashlib.sha256(json.dumps([run_json, layout_shapes], sort_keys=True).encode()).hexdigest()
-
-
-def _reserve_blocks(path):
-    """Reserve the disk blocks of ``path``'s holes (early allocation leaves a sparse file), so that a
-    full disk refuses the checkpoint when it is made and never a batch later. Where the system
-    cannot (no posix_fallocate, or a file system without it), a refused batch write still stops
-    the run cleanly."""
-    if not hasattr(os, "posix_fallocate"):
-        return
-    with open(path, "r+b") as raw:
-        try:
-            os.posix_fallocate(raw.fileno(), 0, os.fstat(raw.fileno()).st_size)
-        except OSError as error:
-            if error.errno not in (errno.EOPNOTSUPP, errno.EINVAL):
-                raise
-
-
-class HDF5Backend:
-    """Appends each finished batch to ``<path>.partial`` and flushes it.
-
-    Every finished batch carries a SHA-256 of its rows (written after the rows,
-    before its done flag) and the header one of the run record. ``resume=True``
-    continues a checkpoint whose run parameters match exactly (otherwise the
-    differences are listed and nothing is touched); a finished batch whose
-    checksum fails is recomputed, with a warning. A refused write (full disk,
-    I/O error) is an InputError naming the file and the free space; the
-    checkpoint then still says only what is done. ``finish`` writes the complete
-    result to ``path`` atomically and removes the checkpoint once it is in place.
-    """
-
-    def __init__(self, path, resume=False, overwrite=False):
-        self.path = require_path(path, "path (--output)")
-        self.checkpoint = self.path.with_name(self.path.name + ".partial")
-        self.resume = resume
-        self.overwrite = overwrite
-
-    def refuse_if_finished(self):
-        """With --resume, a result already in place beside its checkpoint means a kill came between the
-        final save and the checkpoint's removal: the run is done. Remove the leftover and say so."""
-        if not (self.resume and self.path.is_file() and self.checkpoint.is_file()):
-            return
-        try:
-            with h5py.File(self.path, "r") as result, h5py.File(self.checkpoint, "r") as checkpoint:
-                finished = bool(result.attrs.get("complete", False)) and result.attrs["run"] == checkpoint.attrs["run"]
-        except (OSError, KeyError):
-            return
-        if finished:
-            os.unlink(self.checkpoint)
-            raise InputError(f"{self.path}: this run is already complete (a kill after its final save left "
-                             f"{self.checkpoint.name}, now removed); nothing to resume")
-
-    def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
-        self.layout = layout
-        self.refuse_if_finished()
-        check_writable(self.path, self.overwrite)
-        if self.checkpoint.is_dir():
-            raise InputError(f"{self.checkpoint}: is a folder where the run's checkpoint goes; move it away")
-        output_folder(self.path)
-        if self.checkpoint.exists() and self.resume:
-            self.handle = self._reopen(run)
-            return
-        if self.checkpoint.exists() and not self.overwrite:
-            raise InputError(
-                f"{self.checkpoint}: an unfinished run's checkpoint is here; continue it with --resume "
-                "or start afresh with --overwrite"
-            )
-        if self.resume and not self.checkpoint.exists():
-            raise InputError(f"{self.checkpoint}: no checkpoint to resume")
-        try:
-            self._create(mass_eV, n_rows, run, n_batches, format_name)
-            self.handle = h5py.File(self.checkpoint, "r+")
-        except OSError as error:
-            if is_write_failure(error):
-                raise write_failure(self.checkpoint, error, "no checkpoint was made") from None
-            raise
-
-    def _create(self, mass_eV, n_rows, run, n_batches, format_name):
-        # Crash safety (SIGKILL at any moment): the checkpoint appears whole, by rename,
-        # with every dataset contiguous and allocated at creation, so a batch only
-        # writes raw bytes at fixed offsets and never touches HDF5's metadata. The
-        # default (oldest) file format reopens a file whose writer was killed (with
-        # libver="latest" HDF5 finds it marked open-for-write and refuses).
-        allocate = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
-        allocate.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
-        allocate.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
-        shapes = {name: shape(n_rows, mass_eV.size) for name, (shape, _) in self.layout.items()}
-        with atomic_output(self.checkpoint, overwrite=True, at_once=True) as temporary:
-            with h5py.File(temporary, "w") as handle:
-                _write_header(handle, format_name, mass_eV, run)
-                handle.attrs["header_sha256"] = _header_digest(handle.attrs["run"], shapes)
-                for name, (_, dtype) in self.layout.items():
-                    handle.create_dataset(name, shape=shapes[name], dtype=dtype, dcpl=allocate)
-                handle.create_dataset("batch_rows", shape=(n_batches, 2), dtype=np.int64, dcpl=allocate)
-                handle.create_dataset("batch_sha256", shape=(n_batches, 32), dtype=np.uint8, dcpl=allocate)
-                handle.create_dataset("batch_done", shape=(n_batches,), dtype=bool, dcpl=allocate)
-                handle["batch_done"][...] = False
-            _reserve_blocks(temporary)
-
-    def _reopen(self, run):
-        # Compared read-only first: a refused resume leaves the checkpoint's bytes as they were.
-        try:
-            with h5py.File(self.checkpoint, "r") as handle:
-                stored_text = handle.attrs["run"]
-                stored = json.loads(stored_text)
-                shapes = {name: list(handle[name].shape) for name in self.layout}
-                header = handle.attrs["header_sha256"]
-        except (OSError, KeyError, ValueError) as error:
-            raise InputError(f"{self.checkpoint}: the checkpoint cannot be read ({error}); "
-                             "start afresh with --overwrite") from None
-        if header != _header_digest(stored_text, {name: tuple(shape) for name, shape in shapes.items()}):
-            raise InputError(f"{self.checkpoint}: the checkpoint's header fails its checksum (damaged); "
-                             "start afresh with --overwrite")
-        current = json.loads(json.dumps(run, sort_keys=True, default=str))
-        differences = _differences(stored, current)
-        if differences:
-            raise InputError(f"{self.checkpoint}: cannot resume, the run differs: " + "; ".join(differences))
-        return h5py.File(self.checkpoint, "r+")
-
-    def completed_batches(self):
-        """Done flags of the batches whose rows still match their checksum; the others are redone."""
-        done = self.handle["batch_done"][...]
-        rows = self.handle["batch_rows"][...]
-        stored = self.handle["batch_sha256"][...]
-        n_rows = self.handle[next(iter(self.layout))].shape[0]
-        failed = []
-        for batch in np.flatnonzero(done):
-            start, stop = (int(v) for v in rows[batch])
-            intact = (0 <= start < stop <= n_rows and np.array_equal(
-                stored[batch], _batch_digest(batch, start, (self.handle[name][start:stop] for name in self.layout))))
-            if not intact:
-                done[batch] = False
-                failed.append(int(batch))
-        if failed:
-            listed = ", ".join(map(str, failed[:10])) + (", ..." if len(failed) > 10 else "")
-            warnings.warn(RaytraceWarning(
-                f"{self.checkpoint}: {len(failed)} finished batches fail their checksum (batches {listed}); "
-                "they are recomputed"))
-        return done
-
-    def write_batch(self, batch, start, arrays):
-        rows = {name: np.ascontiguousarray(arrays[name], dtype=dtype) for name, (_, dtype) in self.layout.items()}
-        stop = start + next(iter(rows.values())).shape[0]
-        try:
-            for name, values in rows.items():
-                self.handle[name][start:stop] = values
-            self.handle["batch_rows"][batch] = (start, stop)
-            self.handle["batch_sha256"][batch] = _batch_digest(batch, start, rows.values())
-            self.handle.flush()
-            # The done flag goes last, after the data and checksum are on disk: a kill
-            # between the two only costs this batch, which a resume recomputes.
-            self.handle["batch_done"][batch] = True
-            self.handle.flush()
-        except OSError as error:
-            if not is_write_failure(error):
-                raise
-            raise write_failure(self.checkpoint, error, "the checkpoint keeps the batches finished before; "
-                                "free space and continue with --resume") from None
-
-    def read(self):
-        return {name: self.handle[name][...] for name in self.layout}
-
-    def finish(self, result):
-        self.handle.close()
-        try:
-            result.save(self.path, overwrite=self.overwrite)
-        except WriteError as error:
-            raise WriteError(f"{error}; the checkpoint {self.checkpoint} keeps every batch: free space and "
-                             "finish with --resume") from None
-        # Inside an output set the checkpoint stays until every output of the run is in place.
-        after_outputs(lambda: os.unlink(self.checkpoint))
-        return result

@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
+from .backends import MemoryBackend
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
                      check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
                      check_trace_options, run_batches, warn_outside_probed_range)
@@ -31,7 +32,8 @@ from .errors import InputError, require_number
 from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
-from .results import KernelRows, MemoryBackend, open_result, save_arrays, tangent_arrays
+from .resultfiles import open_result, save_arrays
+from .results import KernelRows, tangent_arrays
 from .units import CMB_PHOTON_ENERGY_EV
 
 FORMAT = "raytrace-sky-2"

@@ -206,7 +206,7 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
     def disk_full(handle, path):  # the last step inside the temporary file, after every dataset is written
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr("raytrace.results._check_finite", disk_full)
+    monkeypatch.setattr("raytrace.resultfiles._check_finite", disk_full)
     # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
     assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")

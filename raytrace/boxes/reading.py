@@ -301,21 +301,10 @@ def load_box(
         quantity, z, h, length, size, reference, fraction = _meaning(
             handle, metadata, where, sources, quantity, redshift, hubble_h, box_size, mean_density,
             (ionised_fraction, neutral_fraction, helium_electrons))
-        per_cell = fraction is not None and fraction.cells is not None and quantity in _GAS_QUANTITIES
-        mappable = memory_map and not per_cell and quantity != "density_contrast"
-        if quantity == "density_contrast":
-            values = np.empty(node.shape, dtype=np.float32)
-            add_one(node, values, where)
-        else:
-            values = _read_values(node, path, mappable)
+        values = _box_values(node, path, where, quantity, fraction, memory_map)
         constant, box_ionisation = apply_fraction(values, quantity, reference, fraction, plasma, where,
                                                   scale_known=comoving_scale is not None)
-        if comoving_scale is not None:
-            scale = _number(comoving_scale, "comoving_scale")
-            if not (math.isfinite(scale) and scale > 0):
-                raise InputError(f"comoving_scale: expected a positive finite number, got {comoving_scale!r}")
-        else:
-            scale = _comoving_scale(quantity, z, constant, plasma, reference)
+        scale = _given_or_derived_scale(comoving_scale, quantity, z, constant, plasma, reference)
         dataset_name, stored_dtype = node.name, str(node.dtype)
         provenance, _ = metadata.find("provenance")
         fraction_argument = _reopen_fraction(fraction)
@@ -334,7 +323,36 @@ def load_box(
         "provenance": None if provenance is None else str(provenance),
         **stats,
     }
-    reopen = {
+    reopen = _reopen_arguments(path, dataset_name, quantity, size, z, reference, fraction_argument, scale, memory_map)
+    return Box(
+        values, scale, z, size, quantity, path.resolve(), dataset_name, file_checksum(path), _load=reopen, _info=info
+    )
+
+
+def _box_values(node, path, where, quantity, fraction, memory_map):
+    """The box's float32 values: 1 + delta for a density contrast, else the stored values, memory-mapped
+    (when ``memory_map`` allows) only where no per-cell fraction will change them in place."""
+    if quantity == "density_contrast":
+        values = np.empty(node.shape, dtype=np.float32)
+        add_one(node, values, where)
+        return values
+    per_cell = fraction is not None and fraction.cells is not None and quantity in _GAS_QUANTITIES
+    return _read_values(node, path, memory_map and not per_cell)
+
+
+def _given_or_derived_scale(comoving_scale, quantity, z, constant, plasma, reference):
+    """The comoving_scale given (checked), or the one that quantity, constant fraction and plasma give."""
+    if comoving_scale is None:
+        return _comoving_scale(quantity, z, constant, plasma, reference)
+    scale = _number(comoving_scale, "comoving_scale")
+    if not (math.isfinite(scale) and scale > 0):
+        raise InputError(f"comoving_scale: expected a positive finite number, got {comoving_scale!r}")
+    return scale
+
+
+def _reopen_arguments(path, dataset_name, quantity, size, z, reference, fraction_argument, scale, memory_map):
+    """load_box arguments that reopen this box elsewhere as it is (``Box.load_arguments``)."""
+    return {
         "path": str(path.resolve()),
         "dataset": dataset_name,
         "quantity": quantity,
@@ -345,9 +363,6 @@ def load_box(
         "comoving_scale": scale,
         "memory_map": memory_map,
     }
-    return Box(
-        values, scale, z, size, quantity, path.resolve(), dataset_name, file_checksum(path), _load=reopen, _info=info
-    )
 
 
 class _NoMetadata:

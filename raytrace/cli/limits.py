@@ -125,9 +125,10 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     CAMB with Planck 2018); ``extra_curves`` (e.g. an anisotropy limit on the
     same masses) join the set. ``args`` supplies --confidence, --spectrum,
     --fit-galaxy, --output, --plot and --overwrite, already checked by
-    :func:`run` before any work. Returns the :class:`~raytrace.limits.LimitSet`.
+    :func:`run` before any work. Returns the :class:`~raytrace.limitset.LimitSet`.
     """
-    from ..limits import limit_table, plot_limits, sightline_limits
+    from ..limits import sightline_limits
+    from ..limitset import limit_table, plot_limits
     from ..provenance import output_set
     from ..spectrum import read_spectrum
 
@@ -150,7 +151,8 @@ def run(args):
     from ..background import MeanPlasma
     from ..crosscheck import warn_differences
     from ..errors import InputError
-    from ..limits import result_kernels, same_mass_grid
+    from ..limits import result_kernels
+    from ..limitset import same_mass_grid
     from ..onepoint import load_mean_result
     from ..sky import SkyResult
 

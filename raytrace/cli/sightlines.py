@@ -74,7 +74,7 @@ def output_paths(values, keys):
     from ..companions import check_outputs
 
     if values["output.path"] and values.get("output.resume"):
-        from ..results import HDF5Backend
+        from ..backends import HDF5Backend
 
         HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
     check_outputs([(values[key], _flag(key)) for key in keys], values["output.overwrite"], values["output.path"])
@@ -111,7 +111,7 @@ def run_outputs(values, output, plot):
     """Trace, print the summary and write the outputs (inside the run's output set)."""
     from ..companions import owner_name
     from ..engine import cast_sightlines
-    from ..results import HDF5Backend, MemoryBackend
+    from ..backends import HDF5Backend, MemoryBackend
 
     series = load_boxes(values)
     mass = masses(values)

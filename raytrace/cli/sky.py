@@ -48,7 +48,7 @@ def run_outputs(values):
     """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
     from ..companions import owner_name
     from ..plots import shown_mass_index
-    from ..results import HDF5Backend, MemoryBackend
+    from ..backends import HDF5Backend, MemoryBackend
     from ..sky import anisotropy_limit, cast_sky, read_cl_limits
 
     overwrite = values["output.overwrite"]

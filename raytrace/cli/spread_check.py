@@ -53,7 +53,8 @@ def run(args):
 
 def load_rows(path):
     """A sightline or sky result from its file, by the file's format attribute."""
-    from ..results import FORMAT, SightlineResult, open_result
+    from ..resultfiles import open_result
+    from ..results import FORMAT, SightlineResult
     from ..sky import FORMAT as SKY_FORMAT
     from ..sky import SkyResult
 
