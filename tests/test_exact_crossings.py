@@ -67,13 +67,17 @@ def reference_rays(box, series, z_max, mass, seed, rays, plasma):
     return out
 
 
-def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
+def small_random_series(plasma, z_max=0.02):
+    """(box, series, lowest and highest resonant mass) of a 12^3 random box out to z_max."""
     values = random_box(12, seed=4)
     n_com = float(plasma.mean_comoving_electron_density_cm3(0.0))
     box = Box.from_array(values * n_com, "15 cMpc", 0.0, quantity="n_e_comoving", plasma=plasma)
-    series = BoxSeries([box])
+    return (box, BoxSeries([box]), *box.plasma_mass_range(0.0, z_max))
+
+
+def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
     z_max = 0.02
-    low, high = box.plasma_mass_range(0.0, z_max)
+    box, series, low, high = small_random_series(plasma, z_max)
     mass = np.geomspace(low * 1.02, high * 0.98, 9)
     rays = list(range(6))
     result = raytrace.cast_sightlines(series, mass, len(rays), z_max=z_max, include_background=False,
@@ -96,12 +100,8 @@ def test_airy_pairs_count_both_of_their_crossings_on_every_ray(plasma):
     # A high photon energy widens the Airy window (~omega^(2/3)), so many pairs are taken in the Airy form:
     # each claimed pair still counts its two crossings, and no claim hides any other crossing, so the
     # counts of every ray and mass equal the independent tracer's sign changes.
-    values = random_box(12, seed=4)
-    n_com = float(plasma.mean_comoving_electron_density_cm3(0.0))
-    box = Box.from_array(values * n_com, "15 cMpc", 0.0, quantity="n_e_comoving", plasma=plasma)
-    series = BoxSeries([box])
     z_max = 0.02
-    low, high = box.plasma_mass_range(0.0, z_max)
+    box, series, low, high = small_random_series(plasma, z_max)
     mass = np.geomspace(low * 1.02, high * 0.98, 24)
     rays = list(range(8))
     result = raytrace.cast_sightlines(series, mass, len(rays), z_max=z_max, include_background=False,

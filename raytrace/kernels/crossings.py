@@ -244,7 +244,8 @@ def _tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, len
     """Airy events at the interior extrema bp[1..n_bp-2] of a cell (e0..e3: the density's second
     derivative; ``below_start``: the number of targets below bv[0]). Fills marks[0] with the
     number of targets below each breakpoint, and marks[1:3] with the targets each event claims
-    from the two pieces next to its extremum (empty where none, 0 turns events off)."""
+    from the two pieces next to its extremum (an empty range where none; ``omega0`` = 0 turns
+    the events off, and so every claim)."""
     below, claim_low, claim_high = marks[0], marks[1], marks[2]
     below[0] = below_start
     for j in range(n_bp - 1):
@@ -350,7 +351,7 @@ def _hermite_start(a, b, v_a, v_b, slope_a, slope_b, curvature_a, curvature_b):
 @numba.njit(cache=True, inline="always")
 def _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start):
     """(root, slope of P there) of P = target on the monotone piece [a, b] (values v_a, v_b);
-    ``start``: the Hermite start (t, 1/rise, h1..h5) or None-like (usable False)."""
+    ``start``: :func:`_hermite_start`'s (usable, 1/rise, h1..h5) for the piece."""
     usable, inverse_rise, h1, h2, h3, h4, h5 = start
     if usable:
         t = (target - v_a) * inverse_rise
@@ -435,6 +436,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7], cells[c, 8], cells[c, 9], cells[c, 10], cells[c, 11],
             blended, w_a, w_slope)
         slope_opz = (opz_b - opz_a) * inverse_piece
+        slope_h = (h_b - h_a) * inverse_piece
         dm += cell_mpc * _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, piece)
         # Physical density P = F (1+z)^3, with (1+z)^3 linear over the cell.
         d_a = opz_a * opz_a * opz_a
@@ -487,7 +489,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                 target = targets[crossed]
                 root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
                 kernel[crossed] += _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a,
-                                                    slope_opz, h_a, (h_b - h_a) * inverse_piece, d_a, d_1, blended,
+                                                    slope_opz, h_a, slope_h, d_a, d_1, blended,
                                                     weight_term)
                 count[crossed] += 1
         opz_a, h_a = opz_b, h_b
