@@ -18,7 +18,7 @@ from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
 from raytrace.errors import InputError
 from raytrace.ionisation import IonisationHistory
-from raytrace.kernels.crossings import XI_CUT, pair_kernel
+from raytrace.kernels.tangent import XI_CUT, pair_kernel
 from raytrace.kernels.polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root, roots_in
 from raytrace.rays import draw_rays, plan_rays
 

@@ -29,7 +29,7 @@ no time at the values in between, so it adds no crossing.
 
 Near an interior extremum whose m_gamma^2 lies within |xi| < XI_CUT of a target,
 the two Landau-Zener crossings (or the near miss) are one event with the Airy
-kernel of PHYSICS.md section 9, when both crossings lie in the cell's two pieces
+kernel of PHYSICS.md section 9 (:mod:`.tangent`), when both crossings lie in the cell's two pieces
 next to the extremum; a pair split by a cell face keeps its Landau-Zener terms
 (the trilinear field has a kink there, so its rates stay finite).
 """
@@ -39,17 +39,9 @@ import math
 import numba
 import numpy as np
 
-from .polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root, chebyshev_step, evaluate, evaluate_with_slope, roots_in
+from .polynomial import ROOT_TOLERANCE, bracketed_root, chebyshev_step, evaluate, evaluate_with_slope, roots_in
 from .prefetch import prefetch
-
-#: |xi| below which a near-tangent pair takes the Airy form. At this root of
-#: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
-#: over the window equals the two Landau-Zener terms integrated over it, so the
-#: mean over rays is unchanged; the next roots are 4.11 and 5.53.
-XI_CUT = 4.838497102421105
-
-_TWO_THIRD = 2.0 / 3.0
-_CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
+from .tangent import count_below_near, tangent_events
 
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
 _MAX_BREAKPOINTS = 6
@@ -76,18 +68,6 @@ def _count_below(ln_targets, value, uniform, first, inverse_spacing):
             k += 1
         return k
     return np.searchsorted(ln_targets, x, side="left")
-
-
-@numba.njit(cache=True, inline="always")
-def _count_below_near(targets, value, hint):
-    """Number of targets < value, stepping from ``hint`` (a count for a nearby value)."""
-    k = hint
-    n = targets.shape[0]
-    while k < n and targets[k] < value:
-        k += 1
-    while k > 0 and targets[k - 1] >= value:
-        k -= 1
-    return k
 
 
 @numba.njit(cache=True, inline="always")
@@ -222,85 +202,6 @@ def cell_redshifts(opz_table, hubble_table, chi_step_inverse, chi0, cell_mpc, n_
         chi = chi0 + cells[n, 0] * cell_mpc
         cells[n, 12] = _lookup(opz_table, chi_step_inverse, chi)
         cells[n, 13] = _lookup(hubble_table, chi_step_inverse, chi)
-
-
-@numba.njit(cache=True)
-def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
-    """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
-
-    K = pi^2 m^4 / ((1+z) omega) (4 omega / |a|)^(2/3) Ai(xi)^2 with
-    xi = sign(a) Delta 2^(-1/3) omega^(-2/3) |a|^(-1/3); ``mass2`` = m^2 (eV^2),
-    ``omega`` the photon energy there (eV), ``curvature`` a = d^2 m_gamma^2/dt^2
-    (eV^4), ``delta`` = m_gamma^2 - m^2 at the extremum (eV^2).
-    """
-    scale = _CUBE_ROOT_TWO * omega**_TWO_THIRD * abs(curvature) ** (1.0 / 3.0)
-    ai = airy_ai(math.copysign(1.0, curvature) * delta / scale)
-    return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
-
-
-@numba.njit(cache=True)
-def _tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets,
-                    mass2, m2_per_density, marks, kernel, count, tangent_count, tangent_kernel):
-    """Airy events at the interior extrema bp[1..n_bp-2] of a cell (e0..e3: the density's second
-    derivative; ``below_start``: the number of targets below bv[0]). Fills marks[0] with the
-    number of targets below each breakpoint, and marks[1:3] with the targets each event claims
-    from the two pieces next to its extremum (an empty range where none; ``omega0`` = 0 turns
-    the events off, and so every claim)."""
-    below, claim_low, claim_high = marks[0], marks[1], marks[2]
-    below[0] = below_start
-    for j in range(n_bp - 1):
-        below[j + 1] = _count_below_near(targets, bv[j + 1], below[j])
-    # Every breakpoint's claim starts empty: one left from an earlier cell must not hide a crossing.
-    for j in range(n_bp):
-        claim_low[j] = 0
-        claim_high[j] = 0
-    if omega0 <= 0.0:
-        return
-    for j in range(1, n_bp - 1):
-        e = bp[j]
-        pe = bv[j]
-        curvature_s = evaluate(e0, e1, e2, e3, 0.0, 0.0, e)
-        if curvature_s == 0.0:
-            continue
-        opz = opz_a + (opz_b - opz_a) * e / length
-        rate = sigma_rate * opz  # d s / dt in eV (cells per eV^-1)
-        a = m2_per_density * curvature_s * rate * rate  # d^2 m_gamma^2 / dt^2, eV^4
-        omega = omega0 * opz
-        abs_a = abs(a)
-        # The window is narrow (~1e-3 of P; the targets lie ~0.1 apart in ln P): first compare the
-        # nearest target's distance with the window in cubes, then take the cube root only where
-        # it falls inside; its edges' counts step from the count at the extremum.
-        k = below[j]
-        below_distance = pe - targets[k - 1] if k > 0 else math.inf
-        above_distance = targets[k] - pe if k < targets.shape[0] else math.inf
-        nearest = min(below_distance, above_distance)
-        if nearest * nearest * nearest > 2.0 * (XI_CUT / m2_per_density) ** 3 * omega * omega * abs_a:
-            continue
-        half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
-        k_start = _count_below_near(targets, pe - half_width, k)
-        k_stop = _count_below_near(targets, pe + half_width, k)
-        if k_start == k_stop:
-            continue
-        # The crossing side: targets below a maximum (above a minimum) that both neighbours reach.
-        if a < 0.0:
-            lo_claim, hi_claim = max(max(below[j - 1], below[j + 1]), k_start), below[j]
-            miss_start, miss_stop = below[j], k_stop
-        else:
-            lo_claim, hi_claim = below[j], min(min(below[j - 1], below[j + 1]), k_stop)
-            miss_start, miss_stop = k_start, below[j]
-        if hi_claim > lo_claim:
-            claim_low[j] = lo_claim
-            claim_high[j] = hi_claim
-        for k in range(k_start, k_stop):
-            claimed = lo_claim <= k < hi_claim
-            if not claimed and not (miss_start <= k < miss_stop):
-                continue
-            value = pair_kernel(mass2[k], opz, omega, a, m2_per_density * (pe - targets[k]))
-            kernel[k] += value
-            tangent_kernel[k] += value
-            tangent_count[k] += 1
-            if claimed:
-                count[k] += 2
 
 
 @numba.njit(cache=True, inline="always")
@@ -460,7 +361,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
         if k < 0:
             k = _count_below(ln_targets, bv[0], uniform and n_targets > 1, ln_targets[0], inverse_spacing)
         if n_ext > 0:
-            _tangent_events(bp, bv, k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
+            tangent_events(bp, bv, k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
                             rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
                             tangent_count, tangent_kernel)
         weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
