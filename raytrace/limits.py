@@ -5,9 +5,8 @@ over sightlines, a sightline quantile, or the homogeneous background) and a
 measured spectrum (:mod:`raytrace.spectrum`; default the FIRAS monopole of
 Fixsen et al. 1996). Out: immutable :class:`SpectralLimit` curves epsilon_max(m)
 with the fit behind them, gathered by :func:`sightline_limits` in a
-:class:`~raytrace.limitset.LimitSet` (lines plus bands). From a sky result
-(:mod:`raytrace.sky`), :func:`anisotropy_curve` gives the
-:class:`AnisotropyLimit` of the isotropy test, a curve of the same kind.
+:class:`~raytrace.limitset.LimitSet` (lines plus bands). The limits from a sky
+map's anisotropy are :mod:`raytrace.anisotropy`'s, curves of the same kind.
 Tables and plots of the curves are :mod:`raytrace.limitset`'s (:func:`limit_table`,
 :func:`plot_limits`, re-exported here).
 """
@@ -15,7 +14,6 @@ Tables and plots of the curves are :mod:`raytrace.limitset`'s (:func:`limit_tabl
 import os
 import warnings
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 from scipy import stats
@@ -25,7 +23,7 @@ from .limitset import LimitBand, LimitSet
 # Tables and plots were this module's before raytrace.limitset; their names stay importable from here.
 from .limitset import FILL_VALUE, limit_table, plot_limits, same_mass_grid  # noqa: F401
 from .spectrum import planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
-from .units import CMB_PHOTON_ENERGY_EV, CMB_TEMPERATURE_K
+from .units import CMB_TEMPERATURE_K
 
 
 _TEMPERATURE_TOLERANCE = 1e-12  # relative step in T at which the blackbody fit has converged
@@ -258,87 +256,6 @@ def result_kernels(result, plasma=None):
         "spread_kernels_eV": tuple(result.percentiles((16.0, 84.0))) if hasattr(result, "percentiles") else None,
         "background_kernel_eV": plasma.kernel(result.mass_eV, 0.0, float(result.run["z_max"])),
     }
-
-
-@dataclass(frozen=True, eq=False)
-class AnisotropyLimit:
-    """epsilon_max(m) from the isotropy of a sky's dT/T map (:func:`raytrace.sky.anisotropy_limit`).
-
-    ``test`` is "rms" (map rms against ``threshold``) or "C_l" (angular power
-    against the table ``cl_source``); ``omega0_eV`` the photon energy of dT/T.
-    """
-
-    name: str
-    label: str
-    mass_eV: np.ndarray
-    epsilon_max: np.ndarray
-    test: str
-    threshold: float | None
-    cl_source: str | None
-    omega0_eV: float
-    nside: int
-    sky_seed: int
-    sky_z_max: float
-
-    def __post_init__(self):
-        for field in ("mass_eV", "epsilon_max"):
-            array = np.array(getattr(self, field), dtype=float)
-            array.setflags(write=False)
-            object.__setattr__(self, field, array)
-
-    def __repr__(self):
-        return f"AnisotropyLimit({self.name!r}, {self.mass_eV.size} masses, {self.label!r})"
-
-    def columns(self):
-        """Per-mass arrays for a table."""
-        return {"epsilon_max": self.epsilon_max}
-
-    def unconstrained(self):
-        """Per mass: why epsilon is not constrained there ('' where it is)."""
-        return np.where(np.isfinite(self.epsilon_max), "", "no anisotropy at this mass (flat dT/T map)")
-
-    def metadata(self):
-        """Scalars describing the test, for a table's header."""
-        return {"label": self.label, "kind": "CMB anisotropy", "test": self.test, "threshold": self.threshold,
-                "cl_limits": self.cl_source, "omega0_eV": self.omega0_eV, "nside": self.nside,
-                "sky_seed": self.sky_seed, "sky_z_max": self.sky_z_max}
-
-
-def anisotropy_curve(sky, omega0_eV=CMB_PHOTON_ENERGY_EV, threshold=None, cl_limits=None, name="anisotropy"):
-    """The anisotropy limit of a :class:`~raytrace.sky.SkyResult` as a curve for a LimitSet.
-
-    Without ``cl_limits``: the map's rms of dT/T below ``threshold`` (default
-    :data:`raytrace.sky.ISOTROPY_LEVEL`, 1e-5), epsilon_max = sqrt(threshold / rms
-    at epsilon = 1). With ``cl_limits`` (a file for :func:`raytrace.sky.read_cl_limits`
-    or an array of (l, C_l limit) rows): the C_l test, epsilon_max = min_l (limit_l /
-    C_l at epsilon = 1)^(1/4). ``omega0_eV``: the photon energy of dT/T (default k T_0).
-    """
-    from .constants import HBAR_EV_S
-    from .sky import ISOTROPY_LEVEL, anisotropy_limit, read_cl_limits
-
-    omega0 = float(require_positive_finite(omega0_eV, "omega0_eV"))
-    frequency = f"{omega0 / (2.0 * np.pi * HBAR_EV_S) / 1e9:.3g} GHz"
-    if cl_limits is None:
-        threshold = ISOTROPY_LEVEL if threshold is None else threshold
-        limit = anisotropy_limit(sky, omega0, threshold)
-        return AnisotropyLimit(name, f"sky rms < {_short(threshold)} in dT/T at {frequency}", sky.mass_eV,
-                               limit["epsilon_max_rms"], "rms", float(threshold), None, omega0, sky.nside,
-                               int(sky.run["seed"]), float(sky.run["z_max"]))
-    if threshold is not None:
-        raise InputError("threshold: belongs to the rms test; the C_l test takes its levels from cl_limits")
-    if isinstance(cl_limits, (str, Path)):
-        source, cl_limits = Path(cl_limits).name, read_cl_limits(cl_limits)
-    else:
-        source = "a given table"
-    limit = anisotropy_limit(sky, omega0, cl_limits=cl_limits)
-    return AnisotropyLimit(name, f"C_l limits from {source} at {frequency}", sky.mass_eV,
-                           limit["epsilon_max_cl"], "C_l", None, source, omega0, sky.nside,
-                           int(sky.run["seed"]), float(sky.run["z_max"]))
-
-
-def _short(value):
-    """1e-05 -> 1e-5: numbers as people write them in a legend."""
-    return f"{value:.3g}".replace("e-0", "e-").replace("e+0", "e+")
 
 
 # -- internals ------------------------------------------------------------------

@@ -148,10 +148,11 @@ _SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "ray
 SHOWN_MASS = Option("output.mass_eV", float, None, "dark-photon mass in eV of the map shown: the figure and the "
                     "first FITS map (default: the middle of the masses resonating in most pixels)", above=0.0,
                     flag_name="mass", metavar="EV")
-ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "dT/T rms the map must stay below (CMB isotropy ~1e-5)",
+ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "the quick look's level: the signal rms of dT/T "
+                            "the map must stay below (CMB isotropy ~1e-5)",
                             above=0.0, flag_name="isotropy-threshold", metavar="DT_T", aliases=("--threshold",))
 CL_LIMITS = Option("anisotropy.cl_limits", str, None, "two-column text table of l and C_l upper limits in (dT/T)^2: "
-                   "the C_l test instead of the rms", path=True)
+                   "a limit from it beside the measured spectrum's", path=True)
 
 SKY_OPTIONS = (
     BOX_OPTIONS + MASS_OPTIONS
@@ -160,7 +161,9 @@ SKY_OPTIONS = (
         replace(TRACE_OPTIONS[6], default=1024, help="pixels per batch, the checkpoint's granularity "
                 "(results do not depend on it)", aliases=("--batch-pixels",), old_keys=("sky.batch_pixels",)),
         Option("sky.nside", int, 32, "HEALPix nside of the map (a power of 2)", at_least=1),
-        Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
+        Option("sky.rays_per_pixel", int, 4, "rays per pixel (2 or more: two independent splits at random "
+               "sub-pixel positions, whose cross-spectrum is free of the rays' sampling noise; 1: one ray at the "
+               "pixel centre, noise unknown, no anisotropy limit)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
         ISOTROPY_THRESHOLD,
@@ -173,7 +176,12 @@ SKY_OPTIONS = (
         Option("output.plot", str, None, "Mollweide view of the shown mass's map (PNG or PDF)", path=True),
         SHOWN_MASS,
     )
-    + OUTPUT_OPTIONS[2:]
+    + (replace(OUTPUT_OPTIONS[2], help="kinetic mixing of the dT/T figure and of P maps beside K in the FITS file "
+               "(without it: the figure at the anisotropy limit of the shown mass, no P maps)"),)
+    + (replace(OUTPUT_OPTIONS[3], help="observed photon frequency or energy with a unit of the dT/T maps, the P "
+               "maps and the anisotropy limits, e.g. '100 GHz' (default: 143 GHz, the central channel of the "
+               "Planck TT spectrum, whose 100-217 GHz the limit from the measured spectrum needs)"),)
+    + OUTPUT_OPTIONS[4:]
 )
 
 #: Options of subcommands without a run file, spelled as in the schema above.

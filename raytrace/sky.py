@@ -2,9 +2,11 @@
 
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
-its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
-angular power spectra (healpy.anafast), FITS maps, Mollweide plots, and the
-anisotropy limit on epsilon.
+the maps of two independent splits of each pixel's rays (:mod:`raytrace.skysplits`;
+their signal and noise: :mod:`raytrace.skyspectra`), its maps of P and of the CMB
+temperature anisotropy dT/T = -P (1 - e^-x)/x, angular power spectra
+(healpy.anafast), FITS maps and Mollweide plots (:mod:`raytrace.skyfigures`). The
+limits on epsilon from its anisotropy are :mod:`raytrace.anisotropy`'s.
 
 The observer sits at a seeded random point of the lattice of box copies around
 it. Each copy, indexed by its integer position and by the snapshot serving its
@@ -18,7 +20,6 @@ angle at each distance (about box size / chi), so beyond chi ~ box size / theta
 the map of one copy is no longer a fair sample of larger structures.
 """
 
-import math
 from pathlib import Path
 
 import numpy as np
@@ -34,6 +35,7 @@ from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
 from .resultfiles import open_result, save_arrays
 from .results import KernelRows, tangent_arrays
+from .skysplits import SPLITS, check_rays_per_pixel, check_split_geometry, pixel_means, ray_directions, split_counts
 from .units import CMB_PHOTON_ENERGY_EV
 
 FORMAT = "raytrace-sky-2"
@@ -48,6 +50,13 @@ SKY_LAYOUT = {
     "kernel_tangent": (lambda r, m: (r, m), np.float64),
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
 }
+#: With two or more rays per pixel: the boxes' kernel of each independent split (:mod:`raytrace.skysplits`).
+SPLIT_LAYOUT = {"kernel_splits": (lambda r, m: (r, SPLITS, m), np.float64)}
+
+
+def sky_layout(rays_per_pixel):
+    """The per-pixel arrays of a sky of ``rays_per_pixel`` rays per pixel."""
+    return {**SKY_LAYOUT, **SPLIT_LAYOUT} if split_counts(rays_per_pixel) else dict(SKY_LAYOUT)
 
 
 def _healpy():
@@ -65,17 +74,6 @@ def _check_nside(nside):
     return nside
 
 
-def _sub_pixel_level(rays_per_pixel):
-    """rays_per_pixel = 4^k: the rays follow the centres of the pixels at nside * 2^k inside each pixel."""
-    rays_per_pixel = require_number(rays_per_pixel, "rays_per_pixel", whole=True, at_least=1,
-                                    expected="1, 4, 16, 64 ...")
-    level = round(math.log(rays_per_pixel, 4))
-    if 4**level != rays_per_pixel:
-        raise InputError(f"rays_per_pixel: expected a power of 4 (1, 4, 16, 64 ...) so the rays sit at the "
-                         f"centres of sub-pixels, got {rays_per_pixel}")
-    return level
-
-
 def observer_position(seed, box_size_cMpc):
     """The observer's seeded random point in copy (0, 0, 0) of the first box, in Mpc."""
     rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x0B5E]))
@@ -89,7 +87,7 @@ class SkyTracer(Tracer):
                  randomise_copies=True):
         self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
         self.nside = nside
-        self.level = _sub_pixel_level(rays_per_pixel)
+        self.rays_per_pixel = check_rays_per_pixel(rays_per_pixel)
         self.randomise = bool(randomise_copies)
         self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
         # Blended snapshots share a grid and are mixed point by point: they must see the
@@ -97,11 +95,9 @@ class SkyTracer(Tracer):
         self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
 
     def ray_directions(self, pixels):
-        """Unit vectors of the sub-pixel centres of NESTED ``pixels``, (n_pixels * 4^level, 3)."""
-        healpy = _healpy()
-        children = (np.asarray(pixels, dtype=np.int64)[:, None] * 4**self.level
-                    + np.arange(4**self.level)[None, :]).ravel()
-        return np.ascontiguousarray(np.array(healpy.pix2vec(self.nside * 2**self.level, children, nest=True)).T)
+        """Unit vectors of the rays of NESTED ``pixels``, (n_pixels * rays_per_pixel, 3), per pixel split A's
+        then split B's (:func:`raytrace.skysplits.ray_directions`)."""
+        return ray_directions(self.nside, pixels, self.rays_per_pixel, self.seed)
 
     def trace(self, pixels):
         plan = self.plan
@@ -115,39 +111,51 @@ class SkyTracer(Tracer):
                           CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
                           out["dispersion_measure_boxes"])
-        per_pixel = 4**self.level
-        return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
-                for name, values in out.items()}
+        means = {}
+        for name, values in out.items():
+            means[name], splits = pixel_means(values, len(pixels), self.rays_per_pixel)
+            if name == "kernel_boxes" and splits is not None:
+                means["kernel_splits"] = splits
+        return means
 
 
-def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
-    ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
-    are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
-    result's pixel order. ``randomise_copies=False`` leaves every copy of the
-    lattice untransformed: a diagnostic that shows the replication pattern.
-    Other arguments (``backend``, ``executor`` for a cluster) as in
-    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
-    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    ``rays_per_pixel`` (>= 2) rays per pixel, at random stratified positions inside
+    it, form two independent splits (:mod:`raytrace.skysplits`); the result keeps
+    the mean of all of them (the map) and each split's map, whose cross-spectrum
+    is free of the sampling noise (:mod:`raytrace.skyspectra`). ``rays_per_pixel=1``
+    is a plain map, one ray at each pixel's centre, whose noise is unknown.
+    ``ordering`` is "RING" or "NESTED" for the result's pixel order.
+    ``randomise_copies=False`` leaves every copy of the lattice untransformed: a
+    diagnostic that shows the replication pattern. Other arguments (``backend``,
+    ``executor`` for a cluster) as in :func:`raytrace.cast_sightlines`, including
+    ``photon_energy_eV``; results are bit-identical for any ``n_jobs``,
+    ``batch_pixels`` or cluster.
     """
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
     nside = _check_nside(nside)
-    level = _sub_pixel_level(rays_per_pixel)
+    rays_per_pixel = check_rays_per_pixel(rays_per_pixel)
+    check_split_geometry(nside, rays_per_pixel)
     if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
-    check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
+    layout = sky_layout(rays_per_pixel)
+    npix = 12 * nside * nside
+    # The split maps hold as much again as the map's kernel arrays (a conservative count).
+    check_run_memory(npix * (2 if "kernel_splits" in layout else 1), mass.size,
+                     "nside and mass_eV (--nside, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
-    npix = 12 * nside * nside
     run = {
-        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
+        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": rays_per_pixel,
+        "split_rays": list(split_counts(rays_per_pixel)),
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
         "seed": int(seed), "photon_energy_eV": photon_energy_eV, "batch_pixels": int(batch_pixels),
         "randomise_copies": bool(randomise_copies),
@@ -156,13 +164,12 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "cosmology": plasma.cosmology.name,
     }
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
+    tracer = SkyTracer(series, mass, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, plasma.cosmology,
                        randomise_copies)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
-    # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
-    # stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,
+    # Pixels are traced in NESTED order and stored in that order; the result reorders to RING on request.
+    arrays = run_batches(tracer, backend, mass, run, layout, FORMAT, npix, batch_pixels, n_jobs, executor,
                          progress, unit="pixel", description="sky")
     if ordering == "RING":
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
@@ -170,7 +177,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
             values[...] = values[ring_to_nest]
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run,
-                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"],
+                       kernel_splits=arrays.get("kernel_splits"))
     attach_pdf_check(result, series, plasma, n_jobs)  # the built-in check (raytrace.meancheck)
     return backend.finish(result)
 
@@ -190,10 +198,13 @@ class SkyResult(KernelRows):
     """Kernel maps of one observer's sky.
 
     ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
+    ``kernel_splits`` is (npix, 2, n_masses): the boxes' kernel of each independent
+    split of the pixels' rays (:mod:`raytrace.skysplits`), None for a sky of one
+    ray per pixel (or a file from before the splits): its noise is unknown.
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
-                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
+                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None, kernel_splits=None):
         self.mass_eV = np.asarray(mass_eV, dtype=float)
         self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         self.kernel_background = np.asarray(kernel_background, dtype=float)
@@ -202,6 +213,7 @@ class SkyResult(KernelRows):
         self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
+        self.kernel_splits = None if kernel_splits is None else np.asarray(kernel_splits, dtype=float)
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
@@ -212,6 +224,18 @@ class SkyResult(KernelRows):
     @property
     def npix(self):
         return self.kernel_boxes.shape[0]
+
+    @property
+    def split_rays(self):
+        """Rays per pixel of each split, () where the sky has no splits."""
+        return tuple(self.run.get("split_rays", ())) if self.kernel_splits is not None else ()
+
+    def require_splits(self, what="the signal"):
+        """Refuse, in one line, what needs the splits on a sky without them."""
+        if self.kernel_splits is None:
+            raise InputError(f"{what}: this sky has {self.run.get('rays_per_pixel', 1)} ray per pixel and no "
+                             "independent splits, so its map's sampling noise is unknown; cast it with "
+                             "rays_per_pixel >= 2 (--rays-per-pixel)")
 
     def mass_index(self, mass_eV):
         """Index of the grid mass nearest (in log) to ``mass_eV``."""
@@ -234,9 +258,8 @@ class SkyResult(KernelRows):
     def angular_power(self, sky_map, lmax=None):
         """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
 
-        The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
-        are not deconvolved: divide by healpy.pixwin(nside)**2 where healpy's window
-        files are installed (healpy fetches them over the network on first use).
+        The raw auto-spectrum: the pixel window not removed, the rays' sampling noise
+        included. The signal and noise spectra are :func:`raytrace.skyspectra.sky_spectra`'s.
         """
         healpy = _healpy()
         ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
@@ -245,7 +268,8 @@ class SkyResult(KernelRows):
 
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
+        layout = sky_layout(self.run.get("rays_per_pixel", 1) if self.kernel_splits is not None else 1)
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, layout, self, overwrite,
                            {"dispersion_measure_background": self.dispersion_measure_background})
 
     @classmethod
@@ -258,7 +282,8 @@ class SkyResult(KernelRows):
             result = cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
                          handle["crossings"][...], handle["dispersion_measure_boxes"][...],
                          handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
-                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
+                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...],
+                         kernel_splits=handle["kernel_splits"][...] if "kernel_splits" in handle else None)
             result.pdf_check = read_pdf_check(handle, result.mass_eV)
         return result
 
@@ -314,75 +339,14 @@ class SkyResult(KernelRows):
                              dtype=np.float64)
         return path
 
-    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
-        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
+    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None,
+                       spectra=None):
+        """Mollweide view of dT/T (mean removed) at ``epsilon`` (default 1e-7, said in the title) and
+        ``omega0_eV`` (default 143 GHz), with the signal and noise spectra beside it when ``spectra``
+        (:func:`raytrace.skyspectra.sky_spectra`) are given (:mod:`raytrace.skyfigures`)."""
+        from .anisotropy import DEFAULT_PHOTON_ENERGY_EV
+        from .skyfigures import shown_epsilon, sky_figure
 
-        Colour-bar ticks in three significant digits (scientific notation where the
-        values need it); ``owner`` marks the file as in :func:`raytrace.plots.save_figure`.
-        """
-        from .plots import _pyplot, save_figure
-
-        healpy = _healpy()
-        plt = _pyplot()
-        if epsilon is None:
-            values, label = self.kernel_map(mass_eV), "K [eV]"
-        else:
-            values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
-                        title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
-        figure = plt.gcf()
-        if path is not None:
-            save_figure(figure, path, overwrite=overwrite, owner=owner)
-            plt.close(figure)
-        return figure
-
-
-def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
-    """Largest epsilon per mass whose dT/T map passes the isotropy test.
-
-    dT/T scales as epsilon^2: from the map's rms (monopole removed) against
-    ``threshold``, epsilon_max = sqrt(threshold / rms_1); from an upper-limit table
-    of C_l (``cl_limits``: array of (l, limit) rows, dT/T units squared),
-    C_l scales as epsilon^4 and epsilon_max = min over l of (limit_l / C_l,1)^(1/4).
-    Returns a dict with "mass_eV", "epsilon_max_rms" and, with a table, "epsilon_max_cl".
-    """
-    if not (np.isfinite(threshold) and threshold > 0):
-        raise InputError(f"threshold: expected a positive dT/T level, got {threshold!r}")
-    shape_factor = anisotropy_per_probability(omega0_eV)
-    dtt = -sky.kernel / omega0_eV * shape_factor  # dT/T at epsilon = 1, (npix, n_masses)
-    # A map whose pixels are all equal has no anisotropy; np.std's rounding would give it a tiny rms.
-    flat = np.ptp(dtt, axis=0) == 0
-    rms = np.where(flat, 0.0, dtt.std(axis=0))
-    with np.errstate(divide="ignore"):
-        out = {"mass_eV": sky.mass_eV, "epsilon_max_rms": np.where(rms > 0, np.sqrt(threshold / np.where(rms > 0, rms, 1)), np.inf)}
-    if cl_limits is not None:
-        table = np.asarray(cl_limits, dtype=float)
-        if table.ndim != 2 or table.shape[1] != 2 or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
-            raise InputError("cl_limits: expected rows of (l >= 1, positive C_l limit)")
-        ells = table[:, 0].astype(int)
-        lmax = min(int(ells.max()), 3 * sky.nside - 1)
-        keep = ells <= lmax
-        best = np.full(sky.mass_eV.size, np.inf)
-        for k in np.flatnonzero(~flat):
-            cl = sky.angular_power(dtt[:, k], lmax=lmax)
-            ratio = table[keep, 1] / np.where(cl[ells[keep]] > 0, cl[ells[keep]], np.nan)
-            if np.any(np.isfinite(ratio)):
-                best[k] = np.nanmin(ratio) ** 0.25
-        out["epsilon_max_cl"] = best
-    return out
-
-
-def read_cl_limits(path):
-    """A two-column text table (l, C_l upper limit in (dT/T)^2), '#' comments."""
-    path = Path(path)
-    try:
-        table = np.loadtxt(path, comments="#", ndmin=2)
-    except FileNotFoundError:
-        raise InputError(f"{path}: C_l limit table not found") from None
-    except ValueError as error:
-        raise InputError(f"{path}: cannot read as two columns l, C_l limit ({error})") from None
-    if table.shape[1] != 2:
-        raise InputError(f"{path}: expected two columns (l, C_l limit), found {table.shape[1]}")
-    if not np.all(np.isfinite(table)) or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
-        raise InputError(f"{path}: expected l >= 1 and positive finite limits")
-    return table
+        epsilon, _ = shown_epsilon(None, 0, epsilon)
+        omega0 = DEFAULT_PHOTON_ENERGY_EV if omega0_eV is None else omega0_eV
+        return sky_figure(path, self, self.mass_index(mass_eV), epsilon, omega0, spectra, overwrite, owner)
