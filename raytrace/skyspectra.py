@@ -57,7 +57,8 @@ class SkySpectra:
     ``auto_a``, ``auto_b``, ``full``: the auto-spectra of the splits and of the map.
     ``variance``: the map's signal variance (eV^2, covariance of the splits over
     pixels) with its bootstrap ``variance_low``, ``variance_high`` (at ``level``)
-    and standard error ``variance_error``; ``noise_variance`` the map's. ``mean``:
+    and standard error ``variance_error``; ``noise_variance`` the map's, with its bootstrap standard
+    error ``noise_variance_error`` (the noise is independent between pixels). ``mean``:
     the map's mean K; ``flat``: masses whose map has no anisotropy.
     """
 
@@ -77,6 +78,7 @@ class SkySpectra:
     variance_low: np.ndarray
     variance_high: np.ndarray
     noise_variance: np.ndarray
+    noise_variance_error: np.ndarray
     flat: np.ndarray
     n_resamples: int
     level: float
@@ -156,29 +158,28 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
         for name, (one, two) in zip(names, ((alm_a, alm_b), (alm_a, alm_a), (alm_b, alm_b), (alm_full, alm_full),
                                             (alm_diff, alm_diff))):
             spectra[name][:, k] = healpy.alm2cl(one, two, lmax=lmax) / window2
-    variance, error, low, high = _split_covariance(sky, flat, n_resamples, seed, level)
-    difference = (sky.kernel_splits[:, 0] - sky.kernel_splits[:, 1]) * (math.sqrt(n_a * n_b) / total)
-    noise_variance = np.where(flat, 0.0, difference.var(axis=0))
-    return SkySpectra(sky.mass_eV, sky.nside, int(total), (n_a, n_b), np.sqrt(window2), mean, **spectra,
-                      variance=variance, variance_error=error, variance_low=low, variance_high=high,
-                      noise_variance=noise_variance, flat=flat, n_resamples=int(n_resamples), level=float(level),
-                      seed=int(seed))
+    moments = _split_moments(sky, flat, n_resamples, seed, level)
+    return SkySpectra(sky.mass_eV, sky.nside, int(total), (n_a, n_b), np.sqrt(window2), mean, **spectra, **moments,
+                      flat=flat, n_resamples=int(n_resamples), level=float(level), seed=int(seed))
 
 
-def _split_covariance(sky, flat, n_resamples, seed, level):
-    """Covariance over pixels of the two split maps per mass, with its bootstrap error and interval."""
+def _split_moments(sky, flat, n_resamples, seed, level):
+    """Per mass: the covariance over pixels of the two split maps (the signal variance) with its bootstrap
+    error and interval, and the variance of the difference map (the noise) with its bootstrap error."""
+    n_a, n_b = sky.split_rays
     a = sky.kernel_splits[:, 0] - sky.kernel_splits[:, 0].mean(axis=0)
     b = sky.kernel_splits[:, 1] - sky.kernel_splits[:, 1].mean(axis=0)
+    d = (a - b) * (math.sqrt(n_a * n_b) / (n_a + n_b))
     n = a.shape[0]
-    product = a * b
-    samples = np.empty((n_resamples, a.shape[1]))
+    samples = np.empty((2, n_resamples, a.shape[1]))
     for start, count, weights in resample_weights(n, n_resamples, seed):
-        samples[start:start + count] = weights @ product / n - (weights @ a / n) * (weights @ b / n)
-    low, high = percentile_interval(samples, level)
-    value = product.mean(axis=0)
-    zero = np.zeros_like(value)
-    return (np.where(flat, zero, value), np.where(flat, zero, samples.std(axis=0, ddof=1)),
-            np.where(flat, zero, low), np.where(flat, zero, high))
+        samples[0, start:start + count] = weights @ (a * b) / n - (weights @ a / n) * (weights @ b / n)
+        samples[1, start:start + count] = weights @ d**2 / n - (weights @ d / n) ** 2
+    low, high = percentile_interval(samples[0], level)
+    values = {"variance": (a * b).mean(axis=0), "variance_error": samples[0].std(axis=0, ddof=1),
+              "variance_low": low, "variance_high": high, "noise_variance": d.var(axis=0),
+              "noise_variance_error": samples[1].std(axis=0, ddof=1)}
+    return {name: np.where(flat, 0.0, value) for name, value in values.items()}
 
 
 def rays_for_noise_below_signal(spectra, signal, noise, signal_error):
