@@ -98,13 +98,14 @@ def planck_tt(unbinned=None, binned=None):
     ``binned`` (model: its own column). None reads the shipped copies."""
     ell, power, low, high = read_unbinned(unbinned)
     below = ell < HIGH_ELL_START
-    ell_b, power_b, low_b, high_b, model_b = read_binned(binned)
+    _, power_b, low_b, high_b, model_b = read_binned(binned)
     edges = np.array(PLANCK_BIN_EDGES)
     source = f"Planck 2018 TT ({_name(unbinned, UNBINNED)} for l < {HIGH_ELL_START}, {_name(binned, BINNED)} above)"
     return BandPowers(
         ell_low=np.concatenate([ell[below], edges[:-1]]).astype(int),
         ell_high=np.concatenate([ell[below], edges[1:] - 1]).astype(int),
-        ell_effective=np.concatenate([ell[below], ell_b]),
+        # The bins' effective multipoles computed, not read: the file prints them to 9 digits.
+        ell_effective=np.concatenate([ell[below], _effective_multipoles()]),
         power=np.concatenate([power[below], power_b]),
         error_low=np.concatenate([low[below], low_b]), error_high=np.concatenate([high[below], high_b]),
         model=np.concatenate([lcdm_power(HIGH_ELL_START - 1)[ell[below].astype(int)], model_b]), source=source)
@@ -129,12 +130,17 @@ def read_binned(path=None):
     if table.shape[0] != edges.size - 1:
         raise InputError(f"{path}: expected {edges.size - 1} bins (Planck 2018's: Delta l = 30 from l = 30, "
                          f"the last 2490-2508), found {table.shape[0]} rows")
-    expected = np.array([(bin_weights(np.arange(a, b)) * np.arange(a, b)).sum() / bin_weights(np.arange(a, b)).sum()
-                         for a, b in zip(edges[:-1], edges[1:])])
-    if not np.allclose(table[:, 0], expected, rtol=1e-6, atol=0):
+    if not np.allclose(table[:, 0], _effective_multipoles(), rtol=1e-6, atol=0):
         raise InputError(f"{path}: column 1 is not the effective multipole of Planck 2018's bins "
                          "(weights l (l + 1), Delta l = 30 from l = 30)")
     return tuple(table[:, i] for i in range(5))
+
+
+def _effective_multipoles():
+    """sum w_l l / sum w_l of each of Planck's bins (:data:`PLANCK_BIN_EDGES`), w_l = l (l + 1)."""
+    edges = PLANCK_BIN_EDGES
+    return np.array([(bin_weights(np.arange(a, b)) * np.arange(a, b)).sum() / bin_weights(np.arange(a, b)).sum()
+                     for a, b in zip(edges[:-1], edges[1:])])
 
 
 def check_frequency(omega0_eV, what="frequency (--frequency)"):
