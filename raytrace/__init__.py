@@ -7,8 +7,10 @@ Data flow, one module per stage::
       -> sightlines (rays.py)              random rays through stacked, transformed copies
       -> crossings + per-ray kernel        kernels/ (numba), engine.py
       -> statistics (results.py)           SightlineResult: mean, spread (files: resultfiles.py, backends.py)
-      -> sky maps (sky.py)                 HEALPix light cone, C_l, dT/T
-      -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum and sky (tables, plots: limitset.py)
+      -> sky maps (sky.py)                 HEALPix light cone, dT/T; two independent splits per pixel (skysplits.py),
+                                           signal and noise spectra (skyspectra.py, pixelwindow.py)
+      -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum; from the sky against the Planck TT
+                                           spectrum (anisotropy.py, cmbpower.py) (tables, plots: limitset.py)
 
 A notebook session::
 
@@ -50,6 +52,10 @@ _PUBLIC = {
     "cast_sky": "sky",
     "SkyResult": "sky",
     "spectral_limit": "limits",
+    "sky_spectra": "skyspectra",
+    "anisotropy_limits": "anisotropy",
+    "pixel_window": "pixelwindow",
+    "planck_tt": "cmbpower",
     "pdf_mean": "onepoint",
     "PdfMean": "onepoint",
     "degrade": "resolution",

@@ -130,9 +130,11 @@ TRACE_OPTIONS = (
 OUTPUT_OPTIONS = (
     Option("output.path", str, None, "result file (HDF5)", flag_name="output", path=True, metavar="RESULT.h5"),
     Option("output.plot", str, None, "figure of the kernel versus mass (PNG or PDF)", path=True),
-    Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel", above=0.0),
-    Option("output.frequency", str, None, "observed photon frequency or energy with a unit, e.g. '160 GHz' or "
-           "'5.45 1/cm' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)", metavar="FREQUENCY"),
+    Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel (a sky: its dT/T figure, "
+           "by default at the shown mass's limit, and P maps in FITS)", above=0.0),
+    Option("output.frequency", str, None, "observed photon frequency or energy with a unit, e.g. '160 GHz' (default: "
+           "k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009; a sky's dT/T and anisotropy limits: 143 GHz, "
+           "the measured TT spectrum's limit needs 100-217 GHz)", metavar="FREQUENCY"),
     Option("output.overwrite", bool, False, "replace this run's existing outputs (never another run's files)"),
     Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
 )
@@ -148,11 +150,9 @@ _SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "ray
 SHOWN_MASS = Option("output.mass_eV", float, None, "dark-photon mass in eV of the map shown: the figure and the "
                     "first FITS map (default: the middle of the masses resonating in most pixels)", above=0.0,
                     flag_name="mass", metavar="EV")
-ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "the quick look's level: the signal rms of dT/T "
-                            "the map must stay below (CMB isotropy ~1e-5)",
+ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "quick look: signal rms of dT/T to stay below (~1e-5)",
                             above=0.0, flag_name="isotropy-threshold", metavar="DT_T", aliases=("--threshold",))
-CL_LIMITS = Option("anisotropy.cl_limits", str, None, "two-column text table of l and C_l upper limits in (dT/T)^2: "
-                   "a limit from it beside the measured spectrum's", path=True)
+CL_LIMITS = Option("anisotropy.cl_limits", str, None, "table of l, C_l upper limit in (dT/T)^2: a further limit", path=True)
 
 SKY_OPTIONS = (
     BOX_OPTIONS + MASS_OPTIONS
@@ -161,9 +161,7 @@ SKY_OPTIONS = (
         replace(TRACE_OPTIONS[6], default=1024, help="pixels per batch, the checkpoint's granularity "
                 "(results do not depend on it)", aliases=("--batch-pixels",), old_keys=("sky.batch_pixels",)),
         Option("sky.nside", int, 32, "HEALPix nside of the map (a power of 2)", at_least=1),
-        Option("sky.rays_per_pixel", int, 4, "rays per pixel (2 or more: two independent splits at random "
-               "sub-pixel positions, whose cross-spectrum is free of the rays' sampling noise; 1: one ray at the "
-               "pixel centre, noise unknown, no anisotropy limit)", at_least=1),
+        Option("sky.rays_per_pixel", int, 4, "rays per pixel, two independent splits (1: noise unknown)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
         ISOTROPY_THRESHOLD,
@@ -176,12 +174,7 @@ SKY_OPTIONS = (
         Option("output.plot", str, None, "Mollweide view of the shown mass's map (PNG or PDF)", path=True),
         SHOWN_MASS,
     )
-    + (replace(OUTPUT_OPTIONS[2], help="kinetic mixing of the dT/T figure and of P maps beside K in the FITS file "
-               "(without it: the figure at the anisotropy limit of the shown mass, no P maps)"),)
-    + (replace(OUTPUT_OPTIONS[3], help="observed photon frequency or energy with a unit of the dT/T maps, the P "
-               "maps and the anisotropy limits, e.g. '100 GHz' (default: 143 GHz, the central channel of the "
-               "Planck TT spectrum, whose 100-217 GHz the limit from the measured spectrum needs)"),)
-    + OUTPUT_OPTIONS[4:]
+    + OUTPUT_OPTIONS[2:]
 )
 
 #: Options of subcommands without a run file, spelled as in the schema above.

@@ -4,8 +4,8 @@ In: a :class:`~raytrace.sky.SkyResult`, a mass, epsilon and the observed photon
 energy omega_0 (and its :class:`~raytrace.skyspectra.SkySpectra`). Out: a
 Mollweide view of the temperature anisotropy dT/T = -g(x) epsilon^2 K / omega_0
 with its mean removed (a conversion monopole is a spectral distortion, not an
-anisotropy), its colours spanning the 2nd to 98th percentile of the pixels (said
-on the colour bar); and the signal and noise spectra D_l = l (l + 1) C_l / 2 pi of
+anisotropy), its colours symmetric about 0 up to the larger size of the 2nd and
+98th percentiles of the pixels (said in the title); and the signal and noise spectra D_l = l (l + 1) C_l / 2 pi of
 Delta T = T_0 dT/T in muK^2 at that epsilon, pixel window removed, signal with
 its Gaussian errors (Knox 1995), beside the 1-sigma errors of the Planck 2018 TT
 band powers: where the signal reaches those, the measured spectrum notices it.
@@ -34,14 +34,13 @@ def draw_map(sky, index, epsilon, omega0_eV, sub=None, margins=None, title=None)
     from .anisotropy import frequency_label
 
     values = anisotropy_map(sky, index, epsilon, omega0_eV)
-    low, high = np.percentile(values, COLOUR_PERCENTILES)
-    if not high > low:
-        low, high = low - 1e-30, high + 1e-30  # a flat map: one colour
+    # Symmetric about 0, so that white is no anisotropy: the larger of the two percentiles' sizes.
+    reach = np.max(np.abs(np.percentile(values, COLOUR_PERCENTILES))) or 1e-30  # a flat map: one colour
     head = title or f"m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}"
-    title = (f"{head}\ndT/T at epsilon = {epsilon:.3g}, {frequency_label(omega0_eV)}, mean removed "
-             f"(colours: {COLOUR_PERCENTILES[0]:g}-{COLOUR_PERCENTILES[1]:g} % of pixels)")
+    title = (f"{head}\ndT/T at epsilon = {epsilon:.3g}, {frequency_label(omega0_eV)}, mean removed (colours to "
+             f"+-the larger of the {COLOUR_PERCENTILES[0]:g} and {COLOUR_PERCENTILES[1]:g} % points)")
     options = {key: value for key, value in (("sub", sub), ("margins", margins)) if value is not None}
-    healpy.mollview(values, nest=sky.ordering == "NESTED", unit="dT/T", format="%.2g", min=low, max=high,
+    healpy.mollview(values, nest=sky.ordering == "NESTED", unit="dT/T", format="%.2g", min=-reach, max=reach,
                     title=title, cmap="RdBu_r", **options)
 
 
