@@ -246,7 +246,8 @@ def _print(limits, every_mass=False):
             print(f"#   eps_{_short(curve.name)}: {curve.label}")
         caveat = next((curve.details["caveat"] for curve in sky if "caveat" in curve.details), None)
         if caveat:
-            text = f"'*': noise exceeds signal in the bands that decide the limit; {caveat}"
+            text = (f"'*': noise exceeds signal in the bands that decide the limit, which the noise biases "
+                    f"tight there: quote the band's upper edge (eps_skyhi); {caveat}")
             print("\n".join("#   " + line for line in textwrap.wrap(text, 94)))
         columns = {"mass_eV": first.mass_eV}
         columns.update({f"eps_{_short(curve.name)}": curve.epsilon_max for curve in sky})

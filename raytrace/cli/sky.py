@@ -105,7 +105,8 @@ def print_summary(sky, spectra, limits, omega0, shown):
     else:
         by_name = {curve.name: curve for curve in limits.all_curves()}
         print(f"# anisotropy limits at {frequency_label(omega0)}: eps_Cl = {by_name['anisotropy'].label} "
-              f"(band: signal +-1 sigma; '*': noise exceeds signal in the bands that decide it); eps_rms = "
+              f"(band: signal +-1 sigma; '*': noise exceeds signal in the bands that decide it, biasing it tight: "
+              f"quote the band's upper edge); eps_rms = "
               f"{by_name['anisotropy_rms'].label}")
         print(f"# {COMPONENT_SEPARATION_CAVEAT}")
     header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'raw rms':>8} {'MC/PDF':>7}"
