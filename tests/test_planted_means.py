@@ -18,18 +18,17 @@ import numpy as np
 import pytest
 from astropy.cosmology import Planck18
 from astropy.modeling.models import BlackBody
+from conftest import camb_background_for_planck18
+from reference_tracer import PLASMA_M2_PER_DENSITY, one_point_pdf_mean
 from scipy import integrate, ndimage, optimize, stats
 from scipy.interpolate import CubicSpline
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.ionisation import IonisationHistory
-from raytrace.limits import spectral_limit
-from raytrace.onepoint import FrozenBlendWarning
-
-from conftest import camb_background_for_planck18
-from reference_tracer import PLASMA_M2_PER_DENSITY, one_point_pdf_mean
+from raytrace.limits.spectral import spectral_limit
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.onepoint import FrozenBlendWarning
 
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 
@@ -76,7 +75,7 @@ def test_blended_one_point_mean_equals_the_reference_integral_of_the_blended_fie
 
 
 # -- the dispersion measure with the background ------------------------------------------------------
-# Planted error this catches: the background's dispersion measure without its (1+z) (engine.py,
+# Planted error this catches: the background's dispersion measure without its (1+z) (tracing/checks.py,
 # background_dispersion_measure); the suite's DM test ran without the background.
 def deng_zhang_dispersion_measure(z_from, z_to, x_e, helium_fraction):
     """Deng & Zhang 2014, eq. 4 with f_IGM = 1: DM = 3 c H0 Omega_b / (8 pi G m_p) int chi (1+z) / E(z) dz,
@@ -112,7 +111,7 @@ def test_dispersion_measure_with_the_background_follows_deng_and_zhang():
 
 
 # -- the spectral limit from the published FIRAS table ------------------------------------------------
-# Planted error this catches: a 1 % unit slip in the FIRAS errors (spectrum.py, the monopole reader's
+# Planted error this catches: a 1 % unit slip in the FIRAS errors (limits/spectrum.py, the monopole reader's
 # kJy/sr -> MJy/sr for sigma), which only the reader test saw. Here the result, epsilon_max, is
 # compared with a fit written here from the shared copy of the table.
 def firas_profile_limit(kernel_eV, data_folder, confidence=0.95):

@@ -12,15 +12,15 @@ import math
 import numpy as np
 import pytest
 
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box
-from raytrace.ionisation import IonisationHistory
-from raytrace.resolution import resolution_convergence, richardson
-from raytrace.spread import hill_index
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.resolution import resolution_convergence, richardson
+from raytrace.statistics.spread import hill_index
 
 
 # -- Hill's tail index --------------------------------------------------------------------------------
-# Planted error this catches: the Hill index off by one order statistic (spread.py; ~1 % bias at k = 100).
+# Planted error this catches: the Hill index off by one order statistic (statistics/spread.py; ~1 % bias at k = 100).
 def exact_pareto(n, alpha):
     """x_i = (n / i)^(1/alpha), i = 1..n: the quantiles of a Pareto tail P(X > x) = x^-alpha, in a shuffled order."""
     values = (n / np.arange(1, n + 1)) ** (1 / alpha)
@@ -56,7 +56,7 @@ def test_hill_index_approaches_the_true_tail_as_k_grows():
 
 
 # -- Richardson extrapolation ----------------------------------------------------------------------
-# Planted error this catches: the extrapolation dividing by r^p instead of r^p - 1 (resolution.py).
+# Planted error this catches: the extrapolation dividing by r^p instead of r^p - 1 (statistics/resolution.py).
 @pytest.mark.parametrize("ratio, order", [(2.0, 2.0), (3.0, 2.0), (1.5, 1.0), (2.0, 1.5), (4.0, 3.0)])
 def test_richardson_recovers_k0_of_an_exact_power_law_to_rounding(ratio, order):
     k0 = np.array([3.2e5, 1.0, -7.5e-3])

@@ -12,16 +12,15 @@ import healpy
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import PlanckRedshift, trace_run_with_pairs
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.ionisation import IonisationHistory
-from raytrace.rays import draw_rays, plan_rays
-from raytrace.sky import SKY_LAYOUT
-
-from reference_tracer import PlanckRedshift, trace_run_with_pairs
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.tracing.lattice import SKY_LAYOUT
+from raytrace.tracing.rays import draw_rays, plan_rays
 
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 RUN_ARRAYS = ("kernel", "crossings", "tangent_events", "kernel_tangent", "pair_peak", "dm")
@@ -78,7 +77,7 @@ def engine_and_reference(box, plasma, mass, z_max, rays, seed, photon_energy_eV)
 # makes the (1+z) visible.
 # Ten rays are too few for the run's built-in mean check at the ends of the mass range, and it says
 # so; this test compares ray by ray.
-@pytest.mark.filterwarnings("ignore::raytrace.meancheck.MeanCheckWarning")
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_near_tangent_events_match_an_independent_tracer_on_every_ray(plasma):
     box = lumpy_box(plasma, "20 cMpc")
     z_max = 0.1
@@ -129,7 +128,7 @@ def test_every_crossing_of_every_ray_matches_to_the_root_accuracy(plasma):
 
 # -- every dataset of a sky in both pixel orders -----------------------------------------------------
 # Planted error this catches: the RING reordering skipped for the near-tangent kernel map only
-# (sky.py's reorder loop). The loop runs over the result's whole layout, so a dataset added later
+# (sky/maps.py, the reorder loop). The loop runs over the result's whole layout, so a dataset added later
 # is covered too; a photon energy of 1e-2 eV gives near-tangent events in many pixels.
 def test_every_sky_dataset_in_ring_order_is_healpy_reorder_of_the_nested_one(plasma):
     box = lumpy_box(plasma, "15 cMpc")
