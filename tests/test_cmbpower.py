@@ -1,4 +1,4 @@
-"""The measured CMB TT spectrum (raytrace.cmbpower) and the Delta chi^2 limit over its band powers.
+"""The measured CMB TT spectrum (raytrace.limits.cmbpower) and the Delta chi^2 limit over its band powers.
 
 Sources: the published Planck 2018 TT files in ../shared/data (Planck Collaboration 2020, A&A 641,
 A5; read here with numpy.loadtxt, not through raytrace), whose binned file states its rule: C_b =
@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from raytrace import cmbpower
-from raytrace.anisotropy import delta_chi2_limit
-from raytrace.errors import InputError
+from raytrace.core.errors import InputError
+from raytrace.limits import cmbpower
+from raytrace.limits.anisotropy import delta_chi2_limit
 
 EDGES = list(range(30, 2491, 30)) + [2509]  # the binned file's header: [30, 60), ..., [2490, 2509)
 

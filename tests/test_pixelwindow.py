@@ -1,4 +1,4 @@
-"""The HEALPix pixel window computed offline (raytrace.pixelwindow) against healpy and a closed form.
+"""The HEALPix pixel window computed offline (raytrace.sky.pixelwindow) against healpy and a closed form.
 
 Sources: healpy's spherical-harmonic transform (map2alm, alm2cl) and geometry (pix2vec,
 boundaries) (Gorski et al. 2005, ApJ 622, 759); the definition W_l^2 = mean over pixels of
@@ -13,8 +13,8 @@ import healpy
 import numpy as np
 import pytest
 
-from raytrace import pixelwindow
-from raytrace.errors import InputError
+from raytrace.core.errors import InputError
+from raytrace.sky import pixelwindow
 
 
 def healpy_window_squared(nside, level, lmax):

@@ -1,9 +1,9 @@
-"""The one-page report (raytrace.report, ``raytrace report``), the limits CLI on a result file and the
+"""The one-page report (raytrace.report.page, ``raytrace report``), the limits CLI on a result file and the
 anisotropy-limit curves of a sky's quick look and of a C_l table, against numbers computed here from
 the stored arrays.
 
 Sources: the result files' arrays read with h5py (not through SightlineResult / SkyResult); the
-spectral limit of raytrace.limits (itself checked in tests/test_limits.py against astropy's
+spectral limit of raytrace.limits.spectral (itself checked in tests/test_limits.py against astropy's
 blackbody and scipy); PHYSICS.md section 6 for dT/T = -epsilon^2 K / omega_0 (1 - e^-x)/x with
 x = h nu / (k T_0), T_0 = 2.72548 K (Fixsen 2009, ApJ 707, 916), k and h from astropy (CODATA 2018);
 section 10 for the signal of the two splits (their covariance over pixels, their cross-spectrum
@@ -26,16 +26,16 @@ import pytest
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box
 from raytrace.cli import limits as limits_cli
 from raytrace.cli import report as report_cli
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.anisotropy import rms_limit, table_limit
-from raytrace.limits import UnconstrainedMassWarning, spectral_limit
-from raytrace.pixelwindow import pixel_window
-from raytrace.report import DPI, PAGE_WIDTH_IN, histogram_masses, make_report
-from raytrace.sky import SkyResult
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.limits.anisotropy import rms_limit, table_limit
+from raytrace.limits.spectral import UnconstrainedMassWarning, spectral_limit
+from raytrace.physics.background import MeanPlasma
+from raytrace.report.page import DPI, PAGE_WIDTH_IN, histogram_masses, make_report
+from raytrace.sky.maps import SkyResult
+from raytrace.sky.pixelwindow import pixel_window
 
 T0_K = 2.72548  # Fixsen 2009
 K_EV_PER_K = const.k_B.to_value(u.eV / u.K)

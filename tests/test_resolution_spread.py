@@ -15,13 +15,13 @@ import sys
 import numpy as np
 import pytest
 
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.onepoint import pdf_mean
-from raytrace.resolution import degrade, resolution_convergence, richardson, write_convergence_page
-from raytrace.spread import hill_index, relative_spread_interval, spread, top_share
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.onepoint import pdf_mean
+from raytrace.statistics.resolution import degrade, resolution_convergence, richardson, write_convergence_page
+from raytrace.statistics.spread import hill_index, relative_spread_interval, spread, top_share
 
 
 @pytest.fixture(scope="module")

@@ -1,5 +1,5 @@
-"""A sky's signal and noise from independent splits (raytrace.skysplits, raytrace.skyspectra) and the
-anisotropy limit from the measured CMB spectrum (raytrace.anisotropy).
+"""A sky's signal and noise from independent splits (raytrace.tracing.splits, raytrace.sky.spectra) and
+the anisotropy limit from the measured CMB spectrum (raytrace.limits.anisotropy).
 
 Sources: healpy (HEALPix geometry: vec2pix, pix2vec; synfast, ud_grade, anafast; Gorski et al. 2005,
 ApJ 622, 759); the Gaussian variance of a cross-spectrum, var(C_l^AB) = ((C_l^AB)^2 + C_l^AA C_l^BB) /
@@ -22,18 +22,18 @@ import pytest
 from scipy import optimize, stats
 
 import raytrace
-from raytrace.anisotropy import anisotropy_limits, measured_spectrum_limit
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
 from raytrace.cli import main
-from raytrace.cmbpower import lcdm_power
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-from raytrace.limitset import limit_table
-from raytrace.pixelwindow import pixel_window
-from raytrace.sky import SkyResult
-from raytrace.skysplits import ray_directions
-from raytrace.skyspectra import noise_excess_line, sky_spectra
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.limits.anisotropy import anisotropy_limits, measured_spectrum_limit
+from raytrace.limits.cmbpower import lcdm_power
+from raytrace.limits.limitset import limit_table
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.sky.maps import SkyResult
+from raytrace.sky.pixelwindow import pixel_window
+from raytrace.sky.spectra import noise_excess_line, sky_spectra
+from raytrace.tracing.splits import ray_directions
 
 T0_UK = 2.72548e6  # Fixsen 2009, in muK
 OMEGA_143 = (const.h * 143 * u.GHz).to_value(u.eV)

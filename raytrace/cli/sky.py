@@ -2,9 +2,16 @@
 
 import numpy as np
 
-from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import (_warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy,
-                         output_paths)
+from raytrace.cli.runfile import SKY_OPTIONS, add_flags, settings
+from raytrace.cli.sightlines import (
+    _warn_spread,
+    cluster_executor,
+    load_boxes,
+    masses,
+    note_without_outputs,
+    observed_energy,
+    output_paths,
+)
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
 
@@ -18,7 +25,7 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..provenance import output_set
+    from raytrace.core.provenance import output_set
 
     values = settings(args, SKY_OPTIONS)
     keys = ("output.path", "output.fits", "output.plot")
@@ -37,7 +44,7 @@ def run(args):
 
 def check_fits_path(path):
     """A FITS map needs a FITS name: healpy and other readers go by the suffix."""
-    from ..errors import InputError
+    from raytrace.core.errors import InputError
 
     if not str(path).lower().endswith(FITS_SUFFIXES):
         raise InputError(f"--fits (TOML output.fits): {path}: expected a FITS file name ending in "
@@ -46,13 +53,14 @@ def check_fits_path(path):
 
 def run_outputs(values):
     """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
-    from ..anisotropy import DEFAULT_PHOTON_ENERGY_EV, anisotropy_limits
-    from ..backends import HDF5Backend, MemoryBackend
-    from ..companions import owner_name
-    from ..plots import shown_mass_index
-    from ..sky import cast_sky
-    from ..skyfigures import shown_epsilon
-    from ..skyspectra import sky_spectra
+    from raytrace.core.companions import owner_name
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV, anisotropy_limits
+    from raytrace.report.plots import shown_mass_index
+    from raytrace.report.skyfigures import sky_figure
+    from raytrace.sky.figures import shown_epsilon
+    from raytrace.sky.maps import cast_sky
+    from raytrace.sky.spectra import sky_spectra
+    from raytrace.tracing.backends import HDF5Backend, MemoryBackend
 
     overwrite = values["output.overwrite"]
     output = values["output.path"]
@@ -84,15 +92,15 @@ def run_outputs(values):
         sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
                        omega0_eV=omega0, overwrite=overwrite, owner=owner)
     if values["output.plot"]:
-        sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=epsilon, omega0_eV=omega0,
-                           overwrite=overwrite, owner=owner, spectra=spectra)
+        sky_figure(values["output.plot"], sky, shown, epsilon, omega0, spectra, overwrite=overwrite, owner=owner)
         print(f"# figure: dT/T at epsilon = {epsilon:.3g} ({why})")
     return float(sky.mass_eV[shown])
 
 
 def print_summary(sky, spectra, limits, omega0, shown):
     """The run, per mass its map's mean and spreads, the anisotropy limits; then signal and noise."""
-    from ..anisotropy import COMPONENT_SEPARATION_CAVEAT, frequency_label
+    from raytrace.limits.anisotropy import COMPONENT_SEPARATION_CAVEAT
+    from raytrace.physics.units import frequency_label
 
     mean = sky.kernel.mean(axis=0)
     check = sky.mean_check()
@@ -126,7 +134,7 @@ def print_summary(sky, spectra, limits, omega0, shown):
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean")
     _warn_spread(sky)
     if spectra is not None:
-        from ..skyspectra import signal_noise_lines
+        from raytrace.sky.spectra import signal_noise_lines
 
         for line in signal_noise_lines(spectra, [shown]):
             print("# " + line)

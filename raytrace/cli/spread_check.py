@@ -7,7 +7,7 @@ HELP = ("Bootstrap intervals of std/mean, the share of the variance in the top 1
 
 
 def add_arguments(parser):
-    from ..runfile import add_option
+    from raytrace.cli.runfile import add_option
 
     parser.add_argument("result", metavar="RESULT.h5", help="sightline or sky result file")
     parser.add_argument("--resamples", type=int, default=1000, metavar="N", help="bootstrap resamples (default: 1000)")
@@ -18,7 +18,7 @@ def add_arguments(parser):
 def run(args):
     import warnings
 
-    from ..spread import spread
+    from raytrace.statistics.spread import spread
 
     result = load_rows(args.result)
     is_sky = hasattr(result, "nside")
@@ -32,7 +32,7 @@ def run(args):
     if message:
         warnings.warn(message)
     if is_sky:
-        from ..skyspectra import signal_noise_lines, sky_spectra
+        from raytrace.sky.spectra import signal_noise_lines, sky_spectra
 
         if result.kernel_splits is None:
             print(f"# {args.result}: one ray per pixel, no independent splits: the map's signal and noise cannot "
@@ -49,10 +49,11 @@ def run(args):
 
 def load_rows(path):
     """A sightline or sky result from its file, by the file's format attribute."""
-    from ..resultfiles import open_result
-    from ..results import FORMAT, SightlineResult
-    from ..sky import FORMAT as SKY_FORMAT
-    from ..sky import SkyResult
+    from raytrace.core.resultfiles import open_result
+    from raytrace.statistics.results import SightlineResult
+    from raytrace.tracing.sightlines import FORMAT
+    from raytrace.tracing.lattice import FORMAT as SKY_FORMAT
+    from raytrace.sky.maps import SkyResult
 
     import h5py
 
@@ -70,7 +71,7 @@ def load_rows(path):
 
 
 def _flag_names():
-    from .background import flags_named
+    from raytrace.cli.background import flags_named
 
     return flags_named({"n_resamples": "--resamples", "level": "--level", "seed": "--seed",
                         "threshold": "--isotropy-threshold"})

@@ -20,7 +20,7 @@ independent; and a pixel's rays are the same on any thread and in any batch.
 import numba
 import numpy as np
 
-from .geometry import _GOLDEN, _mix, _uniform
+from raytrace.kernels.geometry import _GOLDEN, _mix, _uniform
 
 
 @numba.njit(cache=True)
