@@ -32,8 +32,8 @@ def draw_map(sky, index, epsilon, omega0_eV, sub=None, margins=None, title=None)
     # Symmetric about 0, so that white is no anisotropy: the larger of the two percentiles' sizes.
     reach = np.max(np.abs(np.percentile(values, COLOUR_PERCENTILES))) or 1e-30  # a flat map: one colour
     head = title or f"m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}"
-    title = (f"{head}\ndT/T at epsilon = {epsilon:.3g}, {frequency_label(omega0_eV)}, mean removed (colours to "
-             f"+-the larger of the {COLOUR_PERCENTILES[0]:g} and {COLOUR_PERCENTILES[1]:g} % points)")
+    title = (f"{head}\ndT/T at epsilon = {epsilon:.3g}, {frequency_label(omega0_eV)}, mean removed\n"
+             f"colours: +-max |{COLOUR_PERCENTILES[0]:g} %, {COLOUR_PERCENTILES[1]:g} % point|")
     options = {key: value for key, value in (("sub", sub), ("margins", margins)) if value is not None}
     healpy.mollview(values, nest=sky.ordering == "NESTED", unit="dT/T", format="%.2g", min=-reach, max=reach,
                     title=title, cmap="RdBu_r", **options)
