@@ -202,8 +202,9 @@ def grid_particles(
 
 def _grid_numbers(n_cells, redshift, hubble_h, hydrogen_fraction):
     """The grid's size, the redshift, h (or None) and X_H, checked."""
-    if isinstance(n_cells, bool) or not isinstance(n_cells, numbers.Integral) or n_cells < 1:
-        raise InputError(f"{option_label('n_cells')}: expected a whole number of cells >= 1, got {n_cells!r}")
+    # Every box loader needs 2 cells a side: a grid of one would be written and then refused.
+    if isinstance(n_cells, bool) or not isinstance(n_cells, numbers.Integral) or n_cells < 2:
+        raise InputError(f"{option_label('n_cells')}: expected a whole number of cells >= 2, got {n_cells!r}")
     redshift = _number(redshift, "redshift", "the snapshot redshift, a number >= 0", lambda z: z >= 0)
     if hubble_h is not None:
         hubble_h = _number(hubble_h, "hubble_h", "H0 / (100 km/s/Mpc), a positive number", lambda h: h > 0)

@@ -12,14 +12,22 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..onepoint import pdf_mean
-    from ..provenance import output_set
-    from .sightlines import load_boxes, masses, output_paths
+    from ..outputguard import output_lock
+    from .sightlines import prepare_outputs
 
     values = settings(args, ONEPOINT_OPTIONS)
+    prepare_outputs(args, values, ("output.path", "output.plot"))  # before the work
+    with output_lock([values["output.path"], values["output.plot"]]):  # one run per output at a time
+        return _run(values)
+
+
+def _run(values):
+    from ..onepoint import pdf_mean
+    from ..provenance import output_set
+    from .sightlines import load_boxes, masses
+
     overwrite = values["output.overwrite"]
     output, plot = values["output.path"], values["output.plot"]
-    output_paths(values, ("output.path", "output.plot"))  # before the work
     series = load_boxes(values)
     result = pdf_mean(series, masses(values), values["rays.z_max"],
                       include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],

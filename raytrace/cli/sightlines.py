@@ -1,5 +1,7 @@
 """``raytrace sightlines``: random sightlines through a box series, from a TOML run file or flags."""
 
+import os
+
 import numpy as np
 
 from ..errors import InputError
@@ -64,25 +66,63 @@ def note_without_outputs(command, values, keys):
               "this run kept", file=sys.stderr)
 
 
-def output_paths(values, keys):
-    """The run's output paths among ``keys``, checked once before any work; write them in an output_set.
+def run_inputs(args, values):
+    """The input files of a run from a run file: (path or glob patterns, option) pairs."""
+    inputs = [(getattr(args, "run_file", None), "run file"), (values.get("boxes.files"), "--boxes (TOML boxes.files)")]
+    if values.get("anisotropy.cl_limits"):
+        inputs.append((values["anisotropy.cl_limits"], _flag("anisotropy.cl_limits")))
+    return inputs
 
-    Refuses a --resume of a finished result, outputs that exist (without
+
+def prepare_outputs(args, values, keys):
+    """Check the run's outputs once before any work; returns a note when --resume finds the run complete.
+
+    Refuses an output that is an input file, outputs that exist (without
     --overwrite), cannot be made or repeat a path, files marked by another run
-    (:func:`raytrace.companions.check_outputs`), and a figure name without a known format.
+    (:func:`raytrace.companions.check_outputs`), and a figure name without a known
+    format. With --resume, first completes a final write a kill interrupted
+    (:mod:`raytrace.journal`); a run whose outputs are then all in place is done.
     """
     from ..companions import check_outputs
+    from ..outputguard import output_lock, refuse_outputs_over_inputs
 
+    refuse_outputs_over_inputs([(values[key], _flag(key)) for key in keys], run_inputs(args, values))
     if values["output.path"] and values.get("output.resume"):
-        from ..backends import HDF5Backend
-
-        HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
+        with output_lock([values[key] for key in keys]):
+            done = finished_run(values["output.path"])
+        if done:
+            return done
     check_outputs([(values[key], _flag(key)) for key in keys], values["output.overwrite"], values["output.path"])
     if values.get("output.plot"):
         from ..plots import check_figure_path
 
         check_figure_path(values["output.plot"], _flag("output.plot"))
-    return [values[key] for key in keys if values[key]]
+    return None
+
+
+def finished_run(output):
+    """With --resume: complete an interrupted final write; a note when the run is then complete, else None."""
+    from ..backends import HDF5Backend
+    from ..journal import complete_interrupted_write
+
+    moved = complete_interrupted_write(output)
+    if not (HDF5Backend(output, resume=True).finished() or moved):
+        return None
+    completed = (f"; a kill during its final write had left {', '.join(str(path) for path in moved)} unmoved, "
+                 "now in place") if moved else ""
+    return f"{output}: this run is already complete{completed}; nothing left to resume"
+
+
+def report_outputs(command, values, keys, done=None):
+    """Print the outputs in place (a note on stderr first when --resume found the run complete)."""
+    import sys
+
+    if done:
+        print(f"raytrace {command}: note: {done}", file=sys.stderr)
+    names = {"output.path": "result", "output.plot": "plot", "output.fits": "maps"}
+    for key in keys:
+        if values[key] and os.path.exists(values[key]):
+            print(f"{names[key]}: {values[key]}")
 
 
 def _flag(key):
@@ -90,19 +130,19 @@ def _flag(key):
 
 
 def run(args):
+    from ..outputguard import output_lock
     from ..provenance import output_set
 
     values = settings(args, SIGHTLINE_OPTIONS)
     output = values["output.path"]
     plot = values["output.plot"]
     keys = ("output.path", "output.plot")
-    output_paths(values, keys)
-    with output_set():  # checked above; the result and the plot appear together or not at all
-        run_outputs(values, output, plot)
-    if output:
-        print(f"result: {output}")
-    if plot:
-        print(f"plot: {plot}")
+    done = prepare_outputs(args, values, keys)
+    if done is None:
+        # One run per output at a time; the result and the plot appear together or not at all.
+        with output_lock([output, plot]), output_set():
+            run_outputs(values, output, plot)
+    report_outputs("sightlines", values, keys, done)
     note_without_outputs("sightlines", values, keys)
     return 0
 

@@ -4,7 +4,7 @@ import numpy as np
 
 from ..runfile import SKY_OPTIONS, add_flags, settings
 from .sightlines import (_warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy,
-                         output_paths)
+                         prepare_outputs, report_outputs)
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
 
@@ -18,19 +18,22 @@ def add_arguments(parser):
 
 
 def run(args):
+    from ..outputguard import output_lock
     from ..provenance import output_set
 
     values = settings(args, SKY_OPTIONS)
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
-    output_paths(values, keys)  # every output, and another run's files, checked once before any work
-    with output_set():  # the result, the maps and the plot appear together or not at all
-        shown_eV = run_outputs(values)
-    for key, what in zip(keys, ("result", "maps", "plot")):
-        if values[key]:
-            first = f" (first map: m = {shown_eV:.4g} eV)" if key == "output.fits" else ""
-            print(f"{what}: {values[key]}{first}")
+    done = prepare_outputs(args, values, keys)  # every output, and another run's files, once before any work
+    if done is None:
+        # One run per output at a time; the result, the maps and the plot appear together or not at all.
+        with output_lock([values[key] for key in keys]), output_set():
+            shown_eV = run_outputs(values)
+        if values["output.fits"]:
+            print(f"# {values['output.fits']}: HDU 1 the shown mass m = {shown_eV:.4g} eV (healpy.read_map's "
+                  "default), HDU 2 every grid mass in the grid's order")
+    report_outputs("sky", values, keys, done)
     note_without_outputs("sky", values, keys)
     return 0
 
@@ -72,10 +75,9 @@ def run_outputs(values):
     print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
     owner = owner_name(output)
     if values["output.fits"]:
-        # The shown mass first: healpy.read_map gives it by default.
-        order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
-        sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
-                       omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        # HDU 1 the shown mass (healpy.read_map's default), HDU 2 the grid in its own order.
+        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"], omega0_eV=omega0,
+                       overwrite=overwrite, owner=owner, shown_eV=float(sky.mass_eV[shown]))
     if values["output.plot"]:
         sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
                            omega0_eV=omega0, overwrite=overwrite, owner=owner)
