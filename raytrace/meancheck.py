@@ -175,8 +175,12 @@ def read_pdf_check(handle, mass_eV):
     """The PdfMean stored by :func:`write_pdf_check`, or None for a file without one."""
     from .onepoint import PdfMean
 
+    from .resultchecks import read_arrays, run_record
+
     if "pdf_mean" not in handle:
         return None
-    group = handle["pdf_mean"]
-    return PdfMean(mass_eV, group["kernel_boxes"][...], group["kernel_background"][...], group["error"][...],
-                   json.loads(group.attrs["run"]))
+    group, path = handle["pdf_mean"], handle.file.filename
+    arrays = read_arrays(group, path, ("kernel_boxes", "kernel_background", "error"), mass_eV.size, prefix="pdf_mean/",
+                          per_mass=True)
+    return PdfMean(mass_eV, arrays["kernel_boxes"], arrays["kernel_background"], arrays["error"],
+                   run_record(group, path, where="attribute run of group pdf_mean"))

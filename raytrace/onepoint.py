@@ -123,13 +123,15 @@ class PdfMean:
 
     @classmethod
     def load(cls, path):
-        import json
-
+        from .resultchecks import mass_grid, read_arrays, run_record
         from .resultfiles import open_result
 
         with open_result(path, FORMAT, "one-point-PDF mean") as handle:
-            return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                       handle["error"][...], json.loads(handle.attrs["run"]))
+            run = run_record(handle, path, ("z_max", "z_boxes"))
+            mass = mass_grid(handle, path)
+            arrays = read_arrays(handle, path, ("kernel_boxes", "kernel_background", "error"), mass.size,
+                                 per_mass=True)
+            return cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["error"], run)
 
 
 def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plasma=None, points=POINTS,

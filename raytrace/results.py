@@ -9,13 +9,11 @@ and loaded from HDF5 with provenance (the file format is
 of :mod:`raytrace.backends`.
 """
 
-import json
-
 import numpy as np
 
 from .conversion import probability_from_kernel
 from .errors import InputError
-from .resultfiles import open_result, save_arrays
+from .resultfiles import ROW_DATASETS, open_result, read_rows, save_arrays
 # The backends and the file format were this module's before raytrace.backends and raytrace.resultfiles;
 # their names stay importable from here.
 from .backends import HDF5Backend, MemoryBackend  # noqa: F401
@@ -164,18 +162,10 @@ class SightlineResult(KernelRows):
         from .meancheck import read_pdf_check
 
         with open_result(path, FORMAT, "sightline") as handle:
-            result = cls(
-                handle["mass_eV"][...],
-                handle["kernel_boxes"][...],
-                handle["kernel_background"][...],
-                handle["crossings"][...],
-                handle["dispersion_measure_boxes"][...],
-                handle.attrs["dispersion_measure_background"],
-                handle["direction"][...],
-                json.loads(handle.attrs["run"]),
-                tangent_events=handle["tangent_events"][...],
-                kernel_tangent=handle["kernel_tangent"][...],
-            )
+            run, mass, arrays, dm_background = read_rows(handle, path, ROW_DATASETS + ("direction",))
+            result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
+                         arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
+                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
             result.pdf_check = read_pdf_check(handle, result.mass_eV)
         return result
 
