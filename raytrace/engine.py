@@ -320,6 +320,19 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
     return backend.read()
 
 
+def check_backend_and_executor(backend, executor):
+    """The run's backend (None: in memory) and executor, or an InputError saying what each must be."""
+    if backend is None:
+        backend = MemoryBackend()
+    needed = ("open", "completed_batches", "write_batch", "read", "finish")
+    if not all(callable(getattr(backend, name, None)) for name in needed):
+        raise InputError(f"backend: expected raytrace.MemoryBackend() or raytrace.HDF5Backend(path), got {backend!r}")
+    if executor is not None and not callable(executor):
+        raise InputError(f"executor: expected None or a callable executor(tracer, batches) such as "
+                         f"raytrace.cluster.DaskExecutor('local'), got {executor!r}")
+    return backend
+
+
 def check_no_other_options(function, options):
     """Refuse removed options with their reason, and any other unknown keyword by name."""
     refuse_removed(options)
@@ -379,10 +392,10 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    backend = check_backend_and_executor(backend, executor)
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
-    backend = backend if backend is not None else MemoryBackend()
     arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
                          executor, progress, unit="ray", description="sightlines")
     result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],

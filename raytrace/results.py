@@ -12,7 +12,7 @@ of :mod:`raytrace.backends`.
 import numpy as np
 
 from .conversion import probability_from_kernel
-from .errors import InputError
+from .errors import InputError, float_array
 from .resultfiles import ROW_DATASETS, open_result, read_rows, save_arrays
 # The backends and the file format were this module's before raytrace.backends and raytrace.resultfiles;
 # their names stay importable from here.
@@ -125,8 +125,11 @@ class SightlineResult(KernelRows):
         return np.sqrt(self.variance() / self.n_rays)
 
     def percentiles(self, q=PERCENTILES):
-        """Kernel percentiles between rays, shape (len(q), n_masses)."""
-        return np.percentile(self.kernel, q, axis=0)
+        """Kernel percentiles between rays, shape (len(q), n_masses) (``q`` one number: (n_masses,))."""
+        levels = float_array(q, "q (percentiles)")
+        if levels.size == 0 or not np.all(np.isfinite(levels) & (levels >= 0) & (levels <= 100)):
+            raise InputError(f"q (percentiles): expected percentiles from 0 to 100, got {q!r}")
+        return np.percentile(self.kernel, levels, axis=0)
 
     def variance_error(self, n_resamples=200, seed=0):
         """Bootstrap standard error of :meth:`variance`, per mass."""

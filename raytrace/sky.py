@@ -24,10 +24,9 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .backends import MemoryBackend
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
-                     check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
-                     check_trace_options, run_batches, warn_outside_probed_range)
+                     check_background, check_backend_and_executor, check_masses, check_no_other_options,
+                     check_run_memory, check_seed, check_trace_options, run_batches, warn_outside_probed_range)
 from .errors import InputError, require_number
 from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
@@ -155,11 +154,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    backend = check_backend_and_executor(backend, executor)
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
                        randomise_copies)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
-    backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
     # stored in that order; the result reorders to RING on request.
     arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,

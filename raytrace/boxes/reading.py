@@ -270,6 +270,7 @@ def load_box(
     comoving_scale=None,
     memory_map=True,
     check=True,
+    **unknown,
 ):
     """Read one electron-density box from an HDF5 file.
 
@@ -290,6 +291,7 @@ def load_box(
     """
     from ..provenance import file_checksum
 
+    _refuse_unknown(unknown)
     path = require_path(path, "path (--boxes)")
     sources = {}
     with _open(path) as handle:
@@ -327,6 +329,23 @@ def load_box(
     return Box(
         values, scale, z, size, quantity, path.resolve(), dataset_name, file_checksum(path), _load=reopen, _info=info
     )
+
+
+#: load_box's keywords, for the message naming one that is not.
+_KEYWORDS = ("dataset", "quantity", "box_size", "redshift", "hubble_h", "ionised_fraction", "plasma", "neutral_fraction",
+             "helium_electrons", "mean_density", "comoving_scale", "memory_map", "check")
+
+
+def _refuse_unknown(unknown):
+    """An InputError naming keywords load_box does not take, with the nearest it does."""
+    import difflib
+
+    if unknown:
+        named = []
+        for name in sorted(unknown):
+            close = difflib.get_close_matches(name, _KEYWORDS, n=1)
+            named.append(f"{name!r}" + (f" (did you mean {close[0]!r}?)" if close else ""))
+        raise InputError(f"load_box: unknown option {', '.join(named)}; it takes {', '.join(_KEYWORDS)}")
 
 
 def _box_values(node, path, where, quantity, fraction, memory_map):
