@@ -24,6 +24,7 @@ def run(args):
 def _run(values):
     from ..onepoint import pdf_mean
     from ..provenance import output_set
+    from ..textcells import NO_RESONANCE
     from .sightlines import load_boxes, masses
 
     overwrite = values["output.overwrite"]
@@ -39,7 +40,10 @@ def _run(values):
           f"per box in {run['groups']} groups, seed {run['seed']}")
     print(f"# {'mass_eV':>11} {'mean_K_eV':>11} {'error_eV':>10} {'boxes':>6}")
     for k in range(result.mass_eV.size):
-        share = result.kernel_boxes[k] / result.kernel[k] if result.kernel[k] > 0 else float("nan")
+        if not result.kernel[k] > 0:
+            print(f"  {result.mass_eV[k]:11.4e} {NO_RESONANCE} at any point of the boxes nor in the background)")
+            continue
+        share = result.kernel_boxes[k] / result.kernel[k]
         print(f"  {result.mass_eV[k]:11.4e} {result.kernel[k]:11.4e} {result.error[k]:10.3e} {share:6.2f}")
     with output_set():  # the result and the plot, or neither
         if output:
