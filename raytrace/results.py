@@ -57,6 +57,17 @@ class KernelRows:
         """DM to z_max in pc cm^-3 per row, boxes plus background."""
         return self.dispersion_measure_boxes + self.dispersion_measure_background
 
+    def saturates(self, epsilon, omega0_eV):
+        """Whether P = epsilon^2 K / omega_0 leaves the linear regime on some row and mass (then P is
+        given in the saturating form; :func:`raytrace.conversion.needs_saturation` warns once)."""
+        from .conversion import needs_saturation
+
+        cache = self.__dict__.setdefault("_saturation", {})
+        key = (float(epsilon), float(omega0_eV))
+        if key not in cache:
+            cache[key] = needs_saturation(self.kernel, epsilon, omega0_eV)
+        return cache[key]
+
     def tangent_events_per_row(self):
         """Mean number of near-tangent (Airy) events per row, per mass."""
         return self.tangent_events.mean(axis=0)
@@ -143,8 +154,10 @@ class SightlineResult(KernelRows):
             samples[b] = kernel[pick].var(axis=0, ddof=1)
         return samples.std(axis=0, ddof=1)
 
-    def probability(self, epsilon, omega0_eV, saturate=False):
-        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``."""
+    def probability(self, epsilon, omega0_eV, saturate=None):
+        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``: linear,
+        or (``saturate`` None) in the saturating form where the linear one is not small (:meth:`saturates`)."""
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel, epsilon, omega0_eV, saturate=saturate)
 
     def boxes_fraction(self):

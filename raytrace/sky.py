@@ -221,9 +221,12 @@ class SkyResult(KernelRows):
     def kernel_map(self, mass_eV):
         return self.kernel[:, self.mass_index(mass_eV)]
 
-    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
+    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=None):
+        """P per pixel at one mass: linear, or (``saturate`` None) saturating where the sky leaves the
+        linear regime (:meth:`KernelRows.saturates`)."""
         from .conversion import probability_from_kernel
 
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel_map(mass_eV), epsilon, omega0_eV, saturate=saturate)
 
     def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
