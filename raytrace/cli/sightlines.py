@@ -24,9 +24,18 @@ def load_boxes(values):
 
 
 def masses(values):
+    """The run's mass grid: [masses] values_eV (--mass-values), or min_eV, max_eV and count (log-spaced)."""
     from ..engine import check_run_memory
+    from ..errors import require_positive_finite
 
-    low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
+    grid_keys = ("masses.min_eV", "masses.max_eV", "masses.count")
+    if values.get("masses.values_eV") is not None:  # settings() let only one of the two grids through
+        mass = require_positive_finite(values["masses.values_eV"], "--mass-values (TOML masses.values_eV)")
+        if np.any(np.diff(mass) <= 0):
+            raise InputError(f"--mass-values (TOML masses.values_eV): expected increasing masses, got "
+                             f"{', '.join(f'{m:g}' for m in mass)}")
+        return mass
+    low, high, count = (values[key] for key in grid_keys)
     if not low < high and count > 1:
         raise InputError(f"masses: expected min_eV < max_eV, got {low:g} and {high:g}")
     check_run_memory(1, count, "--mass-count (TOML masses.count)")  # the grid alone, before it is made
@@ -178,6 +187,7 @@ def run_outputs(values, output, plot):
 
 def print_summary(result, epsilon, omega0):
     from ..spread import robust_spread, top_share
+    from ..textcells import cell, no_resonance
 
     mean, error = result.mean(), result.standard_error()
     q16, q84 = result.percentiles((16.0, 84.0))
@@ -196,14 +206,19 @@ def print_summary(result, epsilon, omega0):
               f"{'MC/PDF':>7} {'sem/PDF':>7} {'hw16-84':>9} {'MAD':>9} {'top1%':>6}")
     if epsilon is not None:
         header += f" {'P_mean':>10}"
+        probability = result.probability(epsilon, omega0).mean(axis=0)  # saturating where it must be
     print(header)
     step = max(1, result.mass_eV.size // 16)
     for k in range(0, result.mass_eV.size, step):
+        empty = no_resonance(result.kernel[:, k], "ray")
+        if empty:
+            print(f"  {result.mass_eV[k]:11.4e} {empty}")
+            continue
         line = (f"  {result.mass_eV[k]:11.4e} {mean[k]:11.4e} {error[k]:10.3e} {q16[k]:10.3e} {q84[k]:10.3e} "
-                f"{fraction[k]:6.2f} {ratio[k]:7.4f} {relative_sem[k]:7.4f} {half_width[k]:9.3e} {mad[k]:9.3e} "
-                f"{100 * top[k]:5.1f}%")
+                f"{cell(fraction[k], '.2f', 6)} {cell(ratio[k], '.4f', 7)} {cell(relative_sem[k], '.4f', 7)} "
+                f"{half_width[k]:9.3e} {mad[k]:9.3e} {cell(100 * top[k], '.1f', 5)}%")
         if epsilon is not None:
-            line += f" {epsilon**2 * mean[k] / omega0:10.3e}"
+            line += f" {probability[k]:10.3e}"
         print(line)
     print("# MC/PDF: the mean over rays / the one-point-PDF mean of the same boxes (the built-in check), "
           "sem/PDF its standard error; hw16-84: half the 16-84 % range; top1%: the variance share of the top 1 % of rays")

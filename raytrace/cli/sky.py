@@ -86,6 +86,7 @@ def run_outputs(values):
 
 def print_summary(sky, limit, threshold, omega0, shown):
     from ..spread import robust_spread, sky_rms_interval
+    from ..textcells import cell, no_resonance
 
     mean = sky.kernel.mean(axis=0)
     rms = sky.kernel.std(axis=0)
@@ -104,15 +105,22 @@ def print_summary(sky, limit, threshold, omega0, shown):
     print(header)
     step = max(1, sky.mass_eV.size // 16)
     for k in range(0, sky.mass_eV.size, step):
+        empty = no_resonance(sky.kernel[:, k], "pixel")
+        if empty:
+            print(f"  {sky.mass_eV[k]:11.4e} {empty}")
+            continue
         relative = rms[k] / mean[k] if mean[k] > 0 else 0.0
+        band = (f"{interval['epsilon_low'][k]:.3e}-{interval['epsilon_high'][k]:.3e}"
+                if np.isfinite(interval['epsilon_high'][k]) else "-")
         line = (f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {half_width[k]:9.3e} {mad[k]:9.3e} "
-                f"{ratio[k]:7.4f} {relative_sem[k]:7.4f} {limit['epsilon_max_rms'][k]:12.3e} "
-                f"{interval['epsilon_low'][k]:10.3e}-{interval['epsilon_high'][k]:<10.3e}")
+                f"{cell(ratio[k], '.4f', 7)} {cell(relative_sem[k], '.4f', 7)} "
+                f"{cell(limit['epsilon_max_rms'][k], '.3e', 12)} {band:>21}")
         if "epsilon_max_cl" in limit:
-            line += f" {limit['epsilon_max_cl'][k]:11.3e}"
+            line += f" {cell(limit['epsilon_max_cl'][k], '.3e', 11)}"
         print(line)
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
-          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
+          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width); "
+          "'-': no number there (a flat map sets no limit)")
     _warn_spread(sky)
     resonating = (sky.crossings[:, shown] > 0).mean()
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "
