@@ -165,6 +165,8 @@ def assert_matches_schema(found):
             assert value in option.choices
         if option.kind is NumberOrText:
             assert (isinstance(value, float) and math.isfinite(value)) or (isinstance(value, str) and value)
+        elif option.kind is list and option.numbers:
+            assert isinstance(value, list) and value and all(isinstance(v, float) and math.isfinite(v) for v in value)
         elif option.kind is list:
             assert isinstance(value, list) and value and all(isinstance(v, str) for v in value)
         elif option.kind is float:

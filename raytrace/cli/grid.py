@@ -155,8 +155,6 @@ def _run_particles(args):
     for name in ("yt_field", "yt_particle_type"):
         if getattr(args, name) is not None:
             raise InputError(f"--{name.replace('_', '-')}: applies with --yt SNAPSHOT only")
-    if args.positions is None:
-        raise InputError("--positions: required for a particle file: the dataset of positions, shape (N, 3)")
     large = args.cells >= LARGE_CELLS
     _check_memory(args.cells)
     start = time.perf_counter()
