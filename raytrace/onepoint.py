@@ -127,7 +127,7 @@ class PdfMean:
         from .resultfiles import open_result
 
         with open_result(path, FORMAT, "one-point-PDF mean") as handle:
-            run = run_record(handle, path, ("z_max", "z_boxes"))
+            run = run_record(handle, path, ("z_max",))
             mass = mass_grid(handle, path)
             arrays = read_arrays(handle, path, ("kernel_boxes", "kernel_background", "error"), mass.size,
                                  per_mass=True)

@@ -121,7 +121,7 @@ ROW_DATASETS = ("kernel_boxes", "kernel_background", "crossings", "dispersion_me
                 "kernel_tangent")
 
 
-def read_rows(handle, path, names=ROW_DATASETS, required=("z_max", "z_boxes", "seed"), sky=False):
+def read_rows(handle, path, names=ROW_DATASETS, required=("z_max",), sky=False):
     """``(run record, mass grid, arrays, background DM)`` of an open result, every piece checked
     (:mod:`raytrace.resultchecks`): a sky's pixel count against its nside. Files of format version 1
     may lack the near-tangent arrays (None: zeros)."""
