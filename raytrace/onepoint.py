@@ -209,6 +209,8 @@ def warn_frozen_blend(series, z_boxes, blend_steps):
     if not pairs:
         return
     ratio = max(blend_rate(series.boxes[a], series.boxes[b]) * (1.0 + series.redshifts[b]) / 3.0 for a, b in pairs)
+    if ratio < 1e-3:  # a blend of (nearly) one field: nothing the frozen blend leaves out could show
+        return
     warnings.warn(FrozenBlendWarning(
         f"one-point-PDF mean of blended snapshots: the blend is frozen over 1/{blend_steps} of each pair, which "
         f"leaves out its own rate d ln n_e/dz, up to {100 * ratio:.2g} % of the expansion's here; where the field "

@@ -10,6 +10,18 @@ FITS map and the report show.
 import numpy as np
 
 
+def mollview(*arguments, **keywords):
+    """healpy.mollview, without the PendingDeprecationWarning healpy's own colour-map calls raise in
+    matplotlib (healpy's to change, not the user's: a warning nobody can act on)."""
+    import warnings
+
+    import healpy
+
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=PendingDeprecationWarning, module=r"healpy\.")
+        return healpy.mollview(*arguments, **keywords)
+
+
 def _pyplot():
     import matplotlib
 

@@ -375,15 +375,15 @@ def _sky_map(sky, index, epsilon, omega0):
 
 
 def _draw_sky(plt, figure, where, sky, index, epsilon, omega0):
-    import healpy
+    from .plots import mollview
 
     values, _, unit, _ = _sky_map(sky, index, epsilon, omega0)
     left, bottom, width, height = where
     plt.figure(figure.number)  # mollview draws on pyplot's current figure
     # sub=(1, 1, 1) spans the page; the margins cut it down to this panel's place.
-    healpy.mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
-                    margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
-                    title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
+    mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
+             margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
+             title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
     plt.gca().title.set_fontsize(10)  # mollview leaves its map axes current, the colour bar last
     figure.axes[-1].tick_params(labelsize=8)
 

@@ -286,15 +286,14 @@ class SkyResult(KernelRows):
         Colour-bar ticks in three significant digits (scientific notation where the
         values need it); ``owner`` marks the file as in :func:`raytrace.plots.save_figure`.
         """
-        from .plots import _pyplot, save_figure
+        from .plots import _pyplot, mollview, save_figure
 
-        healpy = _healpy()
         plt = _pyplot()
         if epsilon is None:
             values, label = self.kernel_map(mass_eV), "K [eV]"
         else:
             values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
+        mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
                         title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
         figure = plt.gcf()
         if path is not None:

@@ -1,10 +1,12 @@
-"""A box file that states its redshift, h or box size twice, differently.
+"""A box file whose simulation header says another redshift, h or box size than its dataset.
 
 In: the file's metadata, the values the loader took (from the attribute nearest
 the dataset, metadata.py's search order) and where each came from. Out: one
-warning line naming every disagreement and what was used, and the other values
-added to ``sources`` so that ``inspect`` shows both. Values given as flags are
-the user's choice and are not compared.
+warning line naming every disagreement with a header group (Header, Parameters,
+Cosmology ...) and what was used, and the header's values added to ``sources``
+so that ``inspect`` shows both. The dataset's own parent groups are not
+compared: their attributes are defaults its nearer ones override by design.
+Values given as flags are the user's choice and are not compared either.
 """
 
 import math
@@ -52,7 +54,7 @@ def _box_size_conflicts(metadata, redshift, hubble_h, size_cMpc):
     sizes = metadata.box_sizes()
     first = _number(sizes[0][0]) if sizes else None
     found = []
-    for value, unit, source, _ in sizes[1:]:
+    for value, unit, source, _ in [size for size in sizes[1:] if metadata.in_header(size[2])]:
         other = _other_size(value, unit, redshift, hubble_h)
         if other is not None and _differ(other, size_cMpc):
             found.append(f"{source} says {_number(value):g} {unit} = {other:.6g} cMpc")
@@ -68,7 +70,7 @@ def warn_conflicts(metadata, where, sources, redshift, hubble_h, size_cMpc):
     for key, chosen in (("redshift", redshift), ("hubble_h", hubble_h)):
         if chosen is not None and sources.get(key, "").startswith("attribute"):
             others = [f"{source} says {_number(value):g}" for value, source in metadata.find_all(key)[1:]
-                      if _differ(_number(value), chosen)]
+                      if metadata.in_header(source) and _differ(_number(value), chosen)]
             if others:
                 conflicts[key] = (f"{chosen:g}", others)
     if sources.get("box_size", "").startswith("attribute"):

@@ -21,8 +21,12 @@ from functools import lru_cache
 import numpy as np
 
 from ..constants import PROTON_MASS_G
-from ..errors import InputError
+from ..errors import InputError, RaytraceWarning
 from .values import _number
+
+class PlausibilityWarning(RaytraceWarning):
+    """A box's mean density, ionisation or size is far from what a cosmological box has: a unit slip?"""
+
 
 #: What a box's values can mean (the ``quantity`` attribute or argument).
 QUANTITIES = {
@@ -237,11 +241,12 @@ LARGEST_BOX_CMPC = 20000.0
 def warn_box_size(size_cMpc, where, given, source):
     """Warn when a box side is beyond :data:`LARGEST_BOX_CMPC`, naming what was given and where from."""
     if size_cMpc > LARGEST_BOX_CMPC:
-        warnings.warn(f"{where}: a box of {size_cMpc:.4g} cMpc (from '{given}', {source}) is larger than the "
-                      f"distance to last scattering (about 14000 cMpc); its unit is probably wrong", stacklevel=4)
+        warnings.warn(PlausibilityWarning(
+            f"{where}: a box of {size_cMpc:.4g} cMpc (from '{given}', {source}) is larger than the distance to last "
+            "scattering (about 14000 cMpc); its unit is probably wrong"), stacklevel=4)
 
 
 def warn_plausibility(*arguments, **keywords):
     """Issue :func:`plausibility_warnings` as Python warnings (the CLI prints each on one line)."""
     for message in plausibility_warnings(*arguments, **keywords):
-        warnings.warn(message, stacklevel=3)
+        warnings.warn(PlausibilityWarning(message), stacklevel=3)

@@ -84,6 +84,11 @@ class Metadata:
                       for owner in self._headers for name in names if name in owner.attrs]
         return found
 
+    def in_header(self, source):
+        """Whether a source found here is a header group's (a simulation's Header, Parameters ...), not one
+        of the dataset's own groups, whose attributes the nearer ones override by design."""
+        return source.split(" of ", 1)[1] in {_describe(owner) for owner in self._headers}
+
     def find_named(self, names):
         """``(value, source)`` of the first attribute named one of ``names`` on the search path, header
         groups included (simulation codes' parameters such as UnitLength_in_cm), or ``(None, None)``."""
