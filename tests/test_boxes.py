@@ -26,6 +26,10 @@ from raytrace.ionisation import IonisationHistory
 
 from reference_tracer import PLASMA_M2_PER_DENSITY
 
+# The reading tests store values of order 1 (not cosmic densities): the plausibility warning is the
+# subject of test_box_sources.py and test_box_metadata.py, not of these.
+pytestmark = pytest.mark.filterwarnings("ignore::raytrace.boxes.meanings.PlausibilityWarning")
+
 HELIUM = 0.245
 X_E = 1.08
 H_SIM = 0.6766
