@@ -24,10 +24,10 @@ import pytest
 from astropy.cosmology import Planck18
 
 import raytrace.cli as cli
-from raytrace.background import MeanPlasma
+from raytrace.physics.background import MeanPlasma
 from raytrace.boxes import load_box
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
+from raytrace.core.errors import InputError
+from raytrace.physics.ionisation import IonisationHistory
 from safety_support import error_lines
 
 HELIUM, X_E = 0.245, 1.08

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 from conftest import REPOSITORY
-from raytrace.backends import HDF5Backend
+from raytrace.tracing.backends import HDF5Backend
 from safety_support import box_folder
 
 distributed = pytest.importorskip("distributed")
@@ -36,8 +36,8 @@ BOUND_S = 120  # the longest any run below may take before the test calls it a h
 @pytest.fixture(scope="module")
 def inputs(tmp_path_factory):
     import raytrace
-    from raytrace.background import MeanPlasma
-    from raytrace.ionisation import IonisationHistory
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.physics.ionisation import IonisationHistory
 
     folder = tmp_path_factory.mktemp("cluster")
     box_folder(folder)
@@ -69,7 +69,7 @@ def bounded(target):
 
 def test_a_run_that_never_gets_a_worker_stops_after_its_stated_time(inputs, monkeypatch):
     import raytrace
-    from raytrace import cluster
+    from raytrace.tracing import cluster
 
     folder, files, mass, arguments, _ = inputs
     monkeypatch.setattr(cluster, "_WAIT_S", 0.5)
@@ -81,7 +81,7 @@ def test_a_run_that_never_gets_a_worker_stops_after_its_stated_time(inputs, monk
         finished, value = bounded(lambda: raytrace.cast_sightlines(
             raytrace.load_series(files), mass, backend=backend, executor=cluster.DaskExecutor(client), **arguments))
         assert finished, f"still waiting for a worker after {BOUND_S} s"
-    from raytrace.errors import InputError
+    from raytrace.core.errors import InputError
 
     assert isinstance(value, InputError), repr(value)
     assert "no dask worker" in str(value) and "--resume" in str(value) and "3 s" in str(value)
@@ -90,7 +90,7 @@ def test_a_run_that_never_gets_a_worker_stops_after_its_stated_time(inputs, monk
 
 def test_a_local_cluster_whose_workers_are_gone_for_good_starts_new_ones(inputs, monkeypatch):
     import raytrace
-    from raytrace import cluster
+    from raytrace.tracing import cluster
 
     folder, files, mass, arguments, serial = inputs
     monkeypatch.setattr(cluster, "_WAIT_S", 0.5)
@@ -140,8 +140,8 @@ def scheduler_and_worker(tmp_path):
 def test_a_killed_scheduler_stops_the_run_in_one_line_and_the_checkpoint_resumes(inputs, scheduler_and_worker,
                                                                                  tmp_path):
     import raytrace
-    from raytrace.cluster import DaskExecutor
-    from raytrace.errors import InputError
+    from raytrace.tracing.cluster import DaskExecutor
+    from raytrace.core.errors import InputError
 
     _, files, mass, arguments, serial = inputs
     address, scheduler = scheduler_and_worker

@@ -89,7 +89,7 @@ def _case_report_spectrum(folder):
     import shutil
 
     from conftest import REPOSITORY
-    from raytrace.spectrum import DEFAULT_SPECTRUM
+    from raytrace.limits.spectrum import DEFAULT_SPECTRUM
 
     result = _result(folder)
     shutil.copy(REPOSITORY / "raytrace" / "data" / DEFAULT_SPECTRUM, folder / "firas.txt")
@@ -219,7 +219,7 @@ def test_two_runs_started_together_on_one_output_one_writes_the_other_stops(tmp_
 
 
 def test_a_run_never_claims_a_file_another_process_replaced(folder, monkeypatch, capsys):
-    from raytrace import provenance
+    from raytrace.core import provenance
 
     real = os.replace
 

@@ -13,16 +13,15 @@ import astropy.constants as const
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, one_point_pdf_mean  # exact CODATA (astropy)
 from scipy import integrate, ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-from raytrace.meancheck import MeanCheckWarning
-
-from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, one_point_pdf_mean  # exact CODATA (astropy)
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
 
 # 4 pi alpha / m_e in eV^2 per cm^-3 (PHYSICS.md section 1, whose NRL Plasma Formulary check value
 # 8.98 kHz sqrt(n_e / cm^-3) has 3 digits), from the exact CODATA constants in astropy.
@@ -179,7 +178,7 @@ def test_monte_carlo_mean_matches_one_point_pdf_integral(lognormal_run, lognorma
 
 
 # 37 rays: the built-in MC/PDF check rightly finds them few; the bits of every layout are the subject.
-@pytest.mark.filterwarnings("ignore::raytrace.meancheck.MeanCheckWarning")
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_same_seed_same_result_for_any_jobs_or_batch(lognormal_run, constant_plasma):
     values, n_com, box, mass, _ = lognormal_run
     runs = [raytrace.cast_sightlines(box, mass, 37, z_max=0.5, include_background=False, plasma=constant_plasma,

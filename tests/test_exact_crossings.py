@@ -10,21 +10,20 @@ homogeneous kernel of PHYSICS.md section 3 with H(z) from astropy's Planck18.
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, one_point_pdf_mean, trace_run
 from scipy import ndimage, optimize, special
 from scipy.integrate import solve_ivp
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.onepoint import FrozenBlendWarning
-from raytrace.kernels.tangent import XI_CUT, pair_kernel
+from raytrace.core.errors import InputError
 from raytrace.kernels.polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root, roots_in
-from raytrace.rays import draw_rays, plan_rays
-
-from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, one_point_pdf_mean, trace_run
+from raytrace.kernels.tangent import XI_CUT, pair_kernel
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.statistics.onepoint import FrozenBlendWarning
+from raytrace.tracing.rays import draw_rays, plan_rays
 
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 
@@ -100,7 +99,7 @@ def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
 
 # At 1e-2 eV the Airy form moves K away from the one-point mean, which has no Airy form, and 8 rays are few:
 # the built-in check's warning is expected; the counts are the subject here.
-@pytest.mark.filterwarnings("ignore::raytrace.meancheck.MeanCheckWarning")
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_airy_pairs_count_both_of_their_crossings_on_every_ray(plasma):
     # A high photon energy widens the Airy window (~omega^(2/3)), so many pairs are taken in the Airy form:
     # each claimed pair still counts its two crossings, and no claim hides any other crossing, so the
@@ -370,7 +369,7 @@ def test_the_spread_between_sightlines_is_stable_on_the_demo_series(demo_series)
 
 
 # -- options ------------------------------------------------------------------------------------
-@pytest.mark.filterwarnings("ignore::raytrace.meancheck.MeanCheckWarning")  # 2 rays: too few for the built-in check, as it says
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")  # 2 rays: too few for the built-in check, as it says
 def test_the_photon_energy_is_recorded_and_checked(plasma):
     box = Box.from_array(random_box(8, seed=1), "10 cMpc", 0.0, quantity="overdensity", plasma=plasma)
     mass = np.geomspace(1e-14, 2e-14, 3)
@@ -392,7 +391,7 @@ def test_removed_options_are_refused_with_the_reason(plasma, removed):
 
 
 def test_a_run_file_that_still_sets_the_step_is_refused_with_the_reason(tmp_path):
-    from raytrace.runfile import SIGHTLINE_OPTIONS, read_run_file
+    from raytrace.cli.runfile import SIGHTLINE_OPTIONS, read_run_file
 
     path = tmp_path / "run.toml"
     path.write_text("[rays]\nstep_cells = 0.5\n")

@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 from raytrace.cli import main
-from raytrace.units import CMB_PHOTON_ENERGY_EV
+from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 from safety_support import box_folder
 
 # 1e-16, 1e-15, 1e-14 and 1e-13 eV: the lowest two resonate nowhere in the boxes (plasma masses 7e-15 to 1.2e-13 eV).

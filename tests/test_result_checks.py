@@ -150,7 +150,7 @@ def test_the_good_files_the_damages_start_from_are_read(good, tmp_path, capsys, 
 # -- item 10: API mistakes are one InputError, not a traceback --------------------------------------------
 def test_api_mistakes_are_input_errors_naming_what_was_wrong(good):
     import raytrace
-    from raytrace.errors import InputError
+    from raytrace.core.errors import InputError
 
     series = raytrace.load_series([str(good / "box_z0.h5"), str(good / "box_z1.h5")])
     mass = np.geomspace(1e-14, 1e-13, 3)

@@ -1,4 +1,4 @@
-"""Sky maps (raytrace.sky) against independent calculations.
+"""Sky maps (raytrace.sky.maps) against independent calculations.
 
 Sources: PHYSICS.md section 3 (homogeneous kernel), section 2 (P = epsilon^2 K / omega_0)
 and section 6 (dT/T = -P (1 - e^-x)/x, T_0 = 2.72548 K, Fixsen 2009, ApJ 707, 916);
@@ -20,20 +20,23 @@ import healpy
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import HBAR_EV_S, PlanckRedshift, one_point_pdf_mean, trace_run
+from reference_tracer import PLASMA_M2_PER_DENSITY as M2_PER_DENSITY  # exact CODATA (PHYSICS.md section 1)
 from scipy import ndimage, stats
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
+from raytrace.core.errors import InputError, ProbedRangeWarning
 from raytrace.kernels.geometry import copy_transform
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.rays import CUBE_SYMMETRIES
-from raytrace.sky import SkyResult, SkyTracer, anisotropy_limit, observer_position, photon_x, read_cl_limits
+from raytrace.limits.anisotropy import anisotropy_limit, read_cl_limits
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.conversion import ISOTROPY_LEVEL, photon_x
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.sky.maps import SkyResult
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.tracing.lattice import SkyTracer, observer_position
+from raytrace.tracing.rays import CUBE_SYMMETRIES
 
-from reference_tracer import HBAR_EV_S, PlanckRedshift, one_point_pdf_mean, trace_run
-from reference_tracer import PLASMA_M2_PER_DENSITY as M2_PER_DENSITY  # exact CODATA (PHYSICS.md section 1)
 X_E = 1.08  # hydrogen plus singly ionised helium (PHYSICS.md section 5)
 T0_K = 2.72548  # Fixsen 2009
 
@@ -421,7 +424,7 @@ def test_rms_limit_scales_with_threshold_and_kernel(small_sky):
     assert np.all(np.isfinite(base))
     for k, mass in enumerate(small_sky.mass_eV):
         rms = small_sky.temperature_anisotropy(mass, base[k], omega0).std()
-        assert rms == pytest.approx(raytrace.sky.ISOTROPY_LEVEL, rel=1e-9)
+        assert rms == pytest.approx(ISOTROPY_LEVEL, rel=1e-9)
     np.testing.assert_allclose(anisotropy_limit(small_sky, omega0, threshold=4e-5)["epsilon_max_rms"],
                                base * 2, rtol=1e-12)
     doubled = SkyResult(small_sky.mass_eV, 2 * small_sky.kernel_boxes, 2 * small_sky.kernel_background,
@@ -501,7 +504,7 @@ def test_sub_pixel_rays_average_the_finer_map(structured_box, plasma):
     # of a pixel at nside 4 are the rays of its 4 NESTED children at nside 8; healpy.ud_grade
     # degrades a map by averaging those children.
     # The rays of a pixel are the centres of its NESTED children at 2 nside (healpy).
-    tracer = raytrace.sky.SkyTracer(BoxSeries([structured_box]), STRUCTURED_MASSES, 4, 4, STRUCTURED_Z_MAX, 6, 0.5,
+    tracer = SkyTracer(BoxSeries([structured_box]), STRUCTURED_MASSES, 4, 4, STRUCTURED_Z_MAX, 6, 0.5,
                                     plasma.cosmology)
     directions = tracer.ray_directions(np.arange(192))
     np.testing.assert_array_equal(healpy.vec2pix(4, *directions.T, nest=True), np.repeat(np.arange(192), 4))

@@ -18,7 +18,7 @@ practice, no source):
 import math
 from dataclasses import dataclass
 
-from ..errors import InputError
+from raytrace.core.errors import InputError
 
 _GADGET = {"length": "UnitLength_in_cm", "mass": "UnitMass_in_g"}
 _SWIFT = {"length": "Unit length in cgs (U_L)", "mass": "Unit mass in cgs (U_M)"}

@@ -14,8 +14,8 @@ import warnings
 
 import numpy as np
 
-from ..errors import InputError, RaytraceWarning
-from .values import _parse_length_unit
+from raytrace.boxes.values import _parse_length_unit
+from raytrace.core.errors import InputError, RaytraceWarning
 
 # Two statements of one value agree to this relative difference (float32 storage, printed digits).
 _AGREE = 1e-6

@@ -20,9 +20,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from ..constants import PROTON_MASS_G
-from ..errors import InputError, RaytraceWarning
-from .values import _number
+from raytrace.boxes.values import _number
+from raytrace.core.errors import InputError, RaytraceWarning
+from raytrace.physics.constants import PROTON_MASS_G
 
 class PlausibilityWarning(RaytraceWarning):
     """A box's mean density, ionisation or size is far from what a cosmological box has: a unit slip?"""
@@ -113,13 +113,13 @@ def electrons_per_ionised_hydrogen(helium_electrons, helium_fraction):
 
 @lru_cache(maxsize=1)
 def _default_plasma():
-    from ..background import MeanPlasma
+    from raytrace.physics.background import MeanPlasma
 
     return MeanPlasma()
 
 
 def _plasma_or_default(plasma):
-    from ..background import MeanPlasma
+    from raytrace.physics.background import MeanPlasma
 
     if plasma is None:
         return _default_plasma()

@@ -1,14 +1,14 @@
 """``raytrace grid``: gas particles in an HDF5 file, or any snapshot yt loads -> a box file of comoving n_e.
 
 In: the particle file, the names of its datasets and their units (flags below,
-the same options as raytrace.gridding.grid_particles); or ``--yt SNAPSHOT``
-(raytrace.ytgrid.grid_yt). Out: a box file that ``raytrace.load_box`` reads with
+the same options as raytrace.boxes.gridding.grid_particles); or ``--yt SNAPSHOT``
+(raytrace.boxes.ytgrid.grid_yt). Out: a box file that ``raytrace.load_box`` reads with
 no extra flags, and the electron totals before and after deposition on stdout.
 ``--ionised-fraction`` means electrons per hydrogen nucleus n_e / n_H, as in
 every other subcommand; hydrogen's own n_HII / n_H is ``--hydrogen-ionised-fraction``.
 """
 
-from ..runfile import add_option
+from raytrace.cli.runfile import add_option
 
 NAME = "grid"
 HELP = ("Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths), or any snapshot yt loads "
@@ -120,7 +120,7 @@ def _warn_empty(density, written, cells):
 
     import numpy as np
 
-    from ..errors import RaytraceWarning
+    from raytrace.core.errors import RaytraceWarning
 
     empty = float(np.mean(np.asarray(density) <= 0))
     if empty > EMPTY_WARNING:
@@ -131,9 +131,9 @@ def _warn_empty(density, written, cells):
 
 
 def run(args):
-    from ..errors import InputError
-    from ..outputguard import output_lock, refuse_outputs_over_inputs
-    from ..provenance import check_writable
+    from raytrace.core.errors import InputError
+    from raytrace.core.outputguard import output_lock, refuse_outputs_over_inputs
+    from raytrace.core.provenance import check_writable
 
     refuse_outputs_over_inputs([(args.output, "--output")], [(args.particles, "PARTICLES.h5"), (args.yt, "--yt")])
     check_writable(args.output, args.overwrite)  # before the work, not after it
@@ -149,8 +149,8 @@ def _run_particles(args):
     import sys
     import time
 
-    from ..errors import InputError
-    from ..gridding import grid_particles
+    from raytrace.boxes.gridding import grid_particles
+    from raytrace.core.errors import InputError
 
     for name in ("yt_field", "yt_particle_type"):
         if getattr(args, name) is not None:
@@ -190,8 +190,8 @@ def _run_particles(args):
 
 
 def _run_yt(args):
-    from ..errors import InputError
-    from ..ytgrid import grid_yt
+    from raytrace.boxes.ytgrid import grid_yt
+    from raytrace.core.errors import InputError
 
     for name in _PARTICLE_FILE_OPTIONS:
         if getattr(args, name) is not None:

@@ -1,6 +1,6 @@
 """``raytrace onepoint-mean``: <K>(m) straight from the boxes' one-point PDF, no rays (a fast mode)."""
 
-from ..runfile import ONEPOINT_OPTIONS, add_flags, settings
+from raytrace.cli.runfile import ONEPOINT_OPTIONS, add_flags, settings
 
 NAME = "onepoint-mean"
 HELP = ("The mean conversion kernel <K>(m) from the one-point density PDF of the boxes' interpolated field "
@@ -12,8 +12,8 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..outputguard import output_lock
-    from .sightlines import prepare_outputs
+    from raytrace.cli.sightlines import prepare_outputs
+    from raytrace.core.outputguard import output_lock
 
     values = settings(args, ONEPOINT_OPTIONS)
     prepare_outputs(args, values, ("output.path", "output.plot"))  # before the work
@@ -22,10 +22,10 @@ def run(args):
 
 
 def _run(values):
-    from ..onepoint import pdf_mean
-    from ..provenance import output_set
-    from ..textcells import NO_RESONANCE
-    from .sightlines import load_boxes, masses
+    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.core.provenance import output_set
+    from raytrace.core.textcells import NO_RESONANCE
+    from raytrace.statistics.onepoint import pdf_mean
 
     overwrite = values["output.overwrite"]
     output, plot = values["output.path"], values["output.plot"]
@@ -49,9 +49,9 @@ def _run(values):
         if output:
             result.save(output, overwrite=overwrite)
         if plot:
-            from ..plots import _pyplot, save_figure
+            from raytrace.core.figures import pyplot, save_figure
 
-            plt = _pyplot()
+            plt = pyplot()
             figure, ax = plt.subplots(figsize=(6.4, 4.4))
             ax.loglog(result.mass_eV, result.kernel, label="boxes + background")
             ax.loglog(result.mass_eV, result.kernel_boxes, ls=":", label="boxes")

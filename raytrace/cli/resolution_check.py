@@ -1,6 +1,6 @@
 """``raytrace resolution-check``: how <K>(m) changes as the boxes are degraded, and its extrapolation."""
 
-from ..runfile import RESOLUTION_OPTIONS, add_flags, require, settings
+from raytrace.cli.runfile import RESOLUTION_OPTIONS, add_flags, require, settings
 
 NAME = "resolution-check"
 HELP = ("Degrade every box by 2, 4 ... (electrons conserved), compute the one-point-PDF mean at each "
@@ -12,10 +12,10 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..errors import InputError
-    from ..outputguard import output_lock, refuse_outputs_over_inputs
-    from ..provenance import check_outputs
-    from .sightlines import run_inputs
+    from raytrace.cli.sightlines import run_inputs
+    from raytrace.core.errors import InputError
+    from raytrace.core.outputguard import output_lock, refuse_outputs_over_inputs
+    from raytrace.core.provenance import check_outputs
 
     values = settings(args, RESOLUTION_OPTIONS)
     stem = require(values, "output.report", RESOLUTION_OPTIONS)
@@ -30,8 +30,8 @@ def run(args):
 
 
 def _run(values, stem, factors):
-    from ..resolution import resolution_convergence, write_convergence_page
-    from .sightlines import load_boxes, masses
+    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.statistics.resolution import resolution_convergence, write_convergence_page
 
     series = load_boxes(values)
     convergence = resolution_convergence(

@@ -10,7 +10,7 @@ kernel, crossing counts, near-tangent counts and kernel, and dispersion measure.
 import numba
 import numpy as np
 
-from .crossings import scratch, walk_segment
+from raytrace.kernels.crossings import scratch, walk_segment
 
 
 @numba.njit(cache=True, parallel=True)
