@@ -28,12 +28,11 @@ def _expanded(pattern):
 
 
 def _same_file(a, b):
-    """Whether two paths are one file: the same path after symlinks, or the same inode (a hard link)."""
-    if os.path.realpath(a) == os.path.realpath(b):
-        return True
+    """Whether two paths are one existing file: the same device and inode, so symlinks and hard links
+    count; where either does not exist there is nothing of the input's to lose."""
     try:
         return os.path.samefile(a, b)
-    except OSError:  # one of them does not exist (yet): only the paths could tell
+    except OSError:
         return False
 
 
