@@ -13,6 +13,11 @@ are independent). The pixels of one sky are not: they share the structures of
 one light cone, so a sky's error is that of the mean of the 12 base HEALPix
 pixels (batch means over the 12 independent-looking faces; still an
 underestimate where structures span faces, as they do at low redshift).
+Measured over 64 skies each, the pulls of this check have a standard deviation
+of 1.4-2.5 for a light cone 2.5 box lengths deep at nside 16 (tests/test_sky.py)
+and 1.0-1.9 for the demo series to z = 6 at nside 8 (largest at the lowest
+masses), not the 1.1 of 11 degrees of freedom: a sky may be flagged without a
+defect, while the mean over independent skies agrees with the one-point mean.
 """
 
 import json
