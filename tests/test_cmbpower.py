@@ -134,7 +134,7 @@ def test_frequency_outside_the_channels_is_refused():
     ("unbinned", "2 100 -10 10\n", "positive errors"),
     ("binned", "47.7 1479 50 50\n", "expected 5 columns"),
     ("binned", "47.7 1479 50 50 1461\n", "expected 83 bins"),
-    ("binned", "", "expected 5 columns"),
+    ("binned", "", "expected 5 columns.*no rows"),
 ])
 def test_bad_spectrum_files_are_refused_in_one_line(tmp_path, reader, text, message):
     path = tmp_path / "spectrum.txt"

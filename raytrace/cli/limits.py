@@ -132,8 +132,8 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     :func:`run` before any work. Returns the :class:`~raytrace.limits.limitset.LimitSet`.
     """
     from raytrace.limits.spectral import sightline_limits
-    from raytrace.limits.limitset import limit_table, plot_limits
     from raytrace.core.provenance import output_set
+    from raytrace.limits.limitset import limit_table, plot_limits
     from raytrace.limits.spectrum import read_spectrum
 
     limits = sightline_limits(
@@ -152,17 +152,31 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
 
 
 def run(args):
-    from raytrace.physics.background import MeanPlasma
-    from raytrace.report.crosscheck import warn_differences
-    from raytrace.core.errors import InputError
-    from raytrace.limits.spectral import result_kernels
-    from raytrace.limits.limitset import same_mass_grid
-    from raytrace.statistics.results import load_mean_result
-    from raytrace.sky.maps import SkyResult
+    from raytrace.core.outputguard import output_lock
 
     check_confidence(args)
     refuse_unused_sky_options(args)
     _check_outputs(args)
+    with output_lock([*args.output, args.plot]):  # one run per output at a time
+        return _limits(args)
+
+
+def input_files(args):
+    """The input files of ``limits`` and ``report``: (path, flag) pairs of those given."""
+    flags = {"result": "--result", "sky": "--sky", "spectrum": "--spectrum", "ionisation_table": "--ionisation-table",
+             "cl_limits": "--cl-limits"}
+    return [(getattr(args, name, None), flag) for name, flag in flags.items()]
+
+
+def _limits(args):
+    from raytrace.core.errors import InputError
+    from raytrace.limits.limitset import same_mass_grid
+    from raytrace.limits.spectral import result_kernels
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.report.crosscheck import warn_differences
+    from raytrace.sky.maps import SkyResult
+    from raytrace.statistics.results import load_mean_result
+
     masses = masses_from_args(args, required=False)
     if args.result is not None and masses is not None:
         raise InputError("--result: its masses are the grid; leave out --mass-values and --mass-min/--mass-max/--mass-count")
@@ -197,12 +211,15 @@ def run(args):
 
 
 def _check_outputs(args):
-    """Refuse, before any work is done, outputs that exist, are folders, or cannot be made."""
+    """Refuse, before any work is done, outputs that are inputs, exist, are folders, or cannot be made."""
+    from raytrace.core.outputguard import refuse_outputs_over_inputs
     from raytrace.core.provenance import check_outputs
 
     args.output = [path for path in args.output if path]  # '' switches the table off
     flags = ["--output"] * len(args.output) + (["--plot"] if args.plot else [])
-    check_outputs([*args.output, *([args.plot] if args.plot else [])], args.overwrite, flags)
+    paths = [*args.output, *([args.plot] if args.plot else [])]
+    refuse_outputs_over_inputs(list(zip(paths, flags)), input_files(args))
+    check_outputs(paths, args.overwrite, flags)
 
 
 # Rows printed without --all: a handful of masses spread over the grid, plus the tightest limit.

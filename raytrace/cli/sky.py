@@ -10,7 +10,8 @@ from raytrace.cli.sightlines import (
     masses,
     note_without_outputs,
     observed_energy,
-    output_paths,
+    prepare_outputs,
+    report_outputs,
 )
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
@@ -25,19 +26,22 @@ def add_arguments(parser):
 
 
 def run(args):
+    from raytrace.core.outputguard import output_lock
     from raytrace.core.provenance import output_set
 
     values = settings(args, SKY_OPTIONS)
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
-    output_paths(values, keys)  # every output, and another run's files, checked once before any work
-    with output_set():  # the result, the maps and the plot appear together or not at all
-        shown_eV = run_outputs(values)
-    for key, what in zip(keys, ("result", "maps", "plot")):
-        if values[key]:
-            first = f" (first map: m = {shown_eV:.4g} eV)" if key == "output.fits" else ""
-            print(f"{what}: {values[key]}{first}")
+    done = prepare_outputs(args, values, keys)  # every output, and another run's files, once before any work
+    if done is None:
+        # One run per output at a time; the result, the maps and the plot appear together or not at all.
+        with output_lock([values[key] for key in keys]), output_set():
+            shown_eV = run_outputs(values)
+        if values["output.fits"]:
+            print(f"# {values['output.fits']}: HDU 1 the shown mass m = {shown_eV:.4g} eV (healpy.read_map's "
+                  "default), HDU 2 every grid mass in the grid's order")
+    report_outputs("sky", values, keys, done)
     note_without_outputs("sky", values, keys)
     return 0
 
@@ -87,10 +91,9 @@ def run_outputs(values):
     owner = owner_name(output)
     epsilon, why = shown_epsilon(limits.curves[0] if limits else None, shown, values["output.epsilon"])
     if values["output.fits"]:
-        # The shown mass first: healpy.read_map gives it by default.
-        order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
-        sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
-                       omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        # HDU 1 the shown mass (healpy.read_map's default), HDU 2 the grid in its own order.
+        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"], omega0_eV=omega0,
+                       overwrite=overwrite, owner=owner, shown_eV=float(sky.mass_eV[shown]))
     if values["output.plot"]:
         sky_figure(values["output.plot"], sky, shown, epsilon, omega0, spectra, overwrite=overwrite, owner=owner)
         print(f"# figure: dT/T at epsilon = {epsilon:.3g} ({why})")
@@ -99,6 +102,7 @@ def run_outputs(values):
 
 def print_summary(sky, spectra, limits, omega0, shown):
     """The run, per mass its map's mean and spreads, the anisotropy limits; then signal and noise."""
+    from raytrace.core.textcells import cell, no_resonance
     from raytrace.limits.anisotropy import COMPONENT_SEPARATION_CAVEAT
     from raytrace.physics.units import frequency_label
 
@@ -124,8 +128,12 @@ def print_summary(sky, spectra, limits, omega0, shown):
     step = max(1, sky.mass_eV.size // 16)
     rows = list(range(0, sky.mass_eV.size, step))
     for k in rows:
+        empty = no_resonance(sky.kernel[:, k], "pixel")
+        if empty:
+            print(f"  {sky.mass_eV[k]:11.4e} {empty}")
+            continue
         relative = sky.kernel[:, k].std() / mean[k] if mean[k] > 0 else 0.0
-        line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:8.3f} {ratio[k]:7.4f}"
+        line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:8.3f} {cell(ratio[k], '.4f', 7)}"
         if spectra is not None:
             scale = mean[k] if mean[k] > 0 else 1.0
             line += (f" {spectra.rms()[0][k] / scale:10.3g} {np.sqrt(spectra.noise_variance[k]) / scale:9.3g} "

@@ -26,7 +26,7 @@ def run(args):
         found = spread(result.kernel, result.mass_eV, args.resamples, args.seed, args.level)
     rows = range(result.mass_eV.size)
     print(f"# {args.result}: {result.kernel.shape[0]} {'pixels' if is_sky else 'rays'}")
-    for line in found.table(rows):
+    for line in found.table(rows, result.kernel, "pixel" if is_sky else "ray"):
         print(line)
     message = found.warning()
     if message:

@@ -176,10 +176,16 @@ def _table(path, default, columns, meaning):
             return _table(Path(shipped), default, columns, meaning)
     path = require_path(path, "CMB power spectrum file")
     try:
-        table = np.loadtxt(path, comments="#", ndmin=2)
+        text = path.read_text()
     except FileNotFoundError:
         raise InputError(f"{path}: CMB power spectrum file not found") from None
-    except (ValueError, UnicodeDecodeError) as error:
+    except (OSError, UnicodeDecodeError) as error:
+        raise InputError(f"{path}: cannot read the CMB power spectrum file as text ({error})") from None
+    if not any(line.strip() and not line.lstrip().startswith("#") for line in text.splitlines()):
+        raise InputError(f"{path}: expected {columns} columns ({meaning}), found no rows")
+    try:
+        table = np.loadtxt(path, comments="#", ndmin=2)
+    except ValueError as error:
         raise InputError(f"{path}: cannot read as {columns} columns ({meaning}): {error}") from None
     if table.shape[1] != columns or table.shape[0] == 0:
         raise InputError(f"{path}: expected {columns} columns ({meaning}), found {table.shape[1]}")

@@ -195,7 +195,8 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
 def _run_lines(result):
     """The report's lines on the run: rays, redshifts, boxes and background, ionisation, cosmology, each box."""
     run = result.run
-    z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
+    z_max = float(run["z_max"])
+    z_boxes = float(run.get("z_boxes", z_max))  # a result made by hand may not say: then the boxes served all
     with_background = bool(run.get("include_background")) and z_max > z_boxes
     lines = [
         f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "

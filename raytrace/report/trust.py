@@ -34,7 +34,7 @@ def trust_lines(result, rows, sky=None, sky_index=None, spectra=None, n_resample
                       f"top 1 % {100 * found.top_share[k]:.0f} %",
                       f"tail {_number(found.tail_index[k], '.2f')}+-{_number(found.tail_error[k], '.2f')}",
                       f"hw {found.half_width[k]:.3g}", f"MAD {found.mad[k]:.3g}"]
-        lines.append(", ".join(cells[:2]) + ", " + ", ".join(cells[2:]) if len(cells) > 2 else cells[0])
+        lines.append(cells[0] + " " + ", ".join(cells[1:]))
     if check is None:
         lines.append("  this result carries no one-point-PDF mean (made before the check existed)")
     for message in ([check.message()] if check is not None else []) + ([found.warning()] if found else []):

@@ -26,7 +26,7 @@ def anisotropy_map(sky, index, epsilon, omega0_eV):
 
 def draw_map(sky, index, epsilon, omega0_eV, sub=None, margins=None, title=None):
     """healpy.mollview of :func:`anisotropy_map` on pyplot's current figure; the colour range is stated."""
-    import healpy
+    from raytrace.core.figures import mollview
 
     values = anisotropy_map(sky, index, epsilon, omega0_eV)
     # Symmetric about 0, so that white is no anisotropy: the larger of the two percentiles' sizes.
@@ -35,7 +35,7 @@ def draw_map(sky, index, epsilon, omega0_eV, sub=None, margins=None, title=None)
     title = (f"{head}\ndT/T at epsilon = {epsilon:.3g}, {frequency_label(omega0_eV)}, mean removed\n"
              f"colours: +-max |{COLOUR_PERCENTILES[0]:g} %, {COLOUR_PERCENTILES[1]:g} % point|")
     options = {key: value for key, value in (("sub", sub), ("margins", margins)) if value is not None}
-    healpy.mollview(values, nest=sky.ordering == "NESTED", unit="dT/T", format="%.2g", min=-reach, max=reach,
+    mollview(values, nest=sky.ordering == "NESTED", unit="dT/T", format="%.2g", min=-reach, max=reach,
                     title=title, cmap="RdBu_r", **options)
 
 

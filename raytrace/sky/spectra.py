@@ -207,7 +207,9 @@ def noise_excess_line(spectra, lmax=None, most=6):
                 worst = max(worst or (0, False), (needed, bool(bound)))
         if ranges:
             prefix = "> " if worst[1] else "~"
-            cells.append(f"{spectra.mass_eV[k]:.3g} eV (l {', '.join(ranges)}; {prefix}{worst[0]:.0f} rays/pixel)")
+            rays = (f"{prefix}{worst[0]:.0f} rays/pixel" if np.isfinite(worst[0])
+                    else "no signal measured to say how many rays")
+            cells.append(f"{spectra.mass_eV[k]:.3g} eV (l {', '.join(ranges)}; {rays})")
     if not cells:
         return (f"signal above noise in every band at every mass with anisotropy "
                 f"({spectra.rays_per_pixel} rays per pixel)")
