@@ -31,6 +31,8 @@ from .runfile import REMOVED_OPTIONS
 from .units import CMB_PHOTON_ENERGY_EV
 from .meancheck import attach_pdf_check
 from .results import FORMAT, SIGHTLINE_LAYOUT, MemoryBackend, SightlineResult
+from .binstats import BinAccumulator, run_layout
+from .redshiftbins import DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, run_bins
 
 #: The default observed photon energy of near-tangent (Airy) events: k T_0, the
 #: energy at which the report evaluates the anisotropy (x = h nu / k T_0 = 1).
@@ -157,7 +159,7 @@ class Tracer:
     """What sightline and sky tracers share: the ray plan, the mass targets, the
     kernel's constants, and (for a cluster) their state without the boxes."""
 
-    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
+    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
         self.boxes = series.boxes
         self.blend = bool(series.blend)
         self.redshifts = np.array([box.redshift for box in self.boxes])
@@ -169,6 +171,9 @@ class Tracer:
         spacing = np.diff(self.ln_targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
         self.photon_energy_eV = float(photon_energy_eV)
+        # Each crossing's kernel also goes to its redshift cell (raytrace.redshiftbins); none without bins.
+        self.cell_edges = np.zeros((mass_eV.size, 0)) if bins is None else bins.inner_opz
+        self.cell_count = 0 if bins is None else bins.n_cells
 
     def _span_arguments(self, span):
         """The leading arguments of a kernel call for span ``span``: cubes, scales, blending."""
@@ -191,7 +196,12 @@ class Tracer:
                 "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "tangent_events": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "kernel_tangent": np.zeros((n_rows, n_masses)),
-                "dispersion_measure_boxes": np.zeros(n_rows)}
+                "dispersion_measure_boxes": np.zeros(n_rows),
+                "kernel_cells": np.zeros((n_rows, self.cell_count, n_masses))}
+
+    def _cell_arguments(self, out):
+        """The last arguments of a kernel call: the cells' edges and the rows they fill."""
+        return self.cell_edges, out["kernel_cells"]
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -217,13 +227,13 @@ class RayTracer(Tracer):
     boxes' files); :meth:`trace` is a pure function of the ray indices.
     """
 
-    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
-        dispersion_measure_boxes, direction) for the given rays."""
+        dispersion_measure_boxes, kernel_cells, direction) for the given rays."""
         plan = self.plan
         ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
         out = self._outputs(len(ray_indices))
@@ -233,7 +243,8 @@ class RayTracer(Tracer):
             trace_pieces(*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
                          plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts,
                          directions, *self._physics_arguments(), out["kernel_boxes"], out["crossings"],
-                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"])
+                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"],
+                         *self._cell_arguments(out))
         out["direction"] = ray_direction
         return out
 
@@ -272,12 +283,14 @@ def background_part(plasma, mass, z_boxes, z_max, include_background):
 
 
 def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
-                unit, description):
+                unit, description, reducer=None):
     """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` and return its arrays.
 
     Batches the backend already holds (a resumed checkpoint) are skipped; the rest
     run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
-    written to the backend as it completes. The box files must not change meanwhile:
+    written to the backend as it completes, then given to ``reducer`` (``add(batch,
+    start, arrays)``; a resume gives it the finished batches' rows of ``reducer.names``
+    first). The box files must not change meanwhile:
     their size and modification time are compared after every batch, their
     checksums once at the end (InputError naming the file).
     """
@@ -292,6 +305,9 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
     backend.open(mass, n_rows, run, len(starts), layout, format_name)
     done = backend.completed_batches()
     todo = [(b, s, min(s + batch_size, n_rows)) for b, s in enumerate(starts) if not done[b]]
+    if reducer is not None:
+        for b in np.flatnonzero(done):
+            reducer.add(b, starts[b], backend.read_rows(starts[b], min(starts[b] + batch_size, n_rows), reducer.names))
     with tqdm(total=n_rows, initial=n_rows - sum(stop - start for _, start, stop in todo), unit=unit,
               desc=description, disable=not progress) as bar:
         if executor is None:
@@ -309,15 +325,21 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
                         bar.update(min(first + step, stop) - first)
                     arrays = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
                     watch.quick()  # before the write: a batch that read a changed box is never stored
-                    backend.write_batch(b, start, arrays)
+                    _store(backend, reducer, b, start, arrays)
         else:
             finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):
                 watch.quick()
-                backend.write_batch(b, start, arrays)
+                _store(backend, reducer, b, start, arrays)
                 bar.update(finished[b])
     watch.final()
     return backend.read()
+
+
+def _store(backend, reducer, batch, start, arrays):
+    backend.write_batch(batch, start, arrays)
+    if reducer is not None:
+        reducer.add(batch, start, arrays)
 
 
 def check_no_other_options(function, options):
@@ -329,7 +351,8 @@ def check_no_other_options(function, options):
 
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                     batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=DEFAULT_BIN_COUNT,
+                    density_classes=DEFAULT_DENSITY_EDGES, keep_ray_bins=False, **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Parameters
@@ -354,6 +377,13 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     photon_energy_eV : observed photon energy (eV) at which near-tangent pairs take
         their Airy form (PHYSICS.md section 9); every other crossing's kernel is
         frequency-free. Default: k T_0.
+    redshift_bins : the kernel per redshift bin as well (:mod:`raytrace.redshiftbins`): a count
+        (equal steps in ln(1+z) over the boxes' redshifts, the background beyond in one bin;
+        default 16), edges in z, or None; the result's ``redshift_bins`` holds the mean,
+        variance and percentiles over rays per bin, per density class and per cumulative edge
+    density_classes : edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density classes
+        (default 1 and 100: voids, sheets and filaments, halos)
+    keep_ray_bins : also keep every ray's bins (rays x bins x masses) in the result
     """
     check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
@@ -379,14 +409,19 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
+    run.update(bins.run_record() if bins is not None else {}, keep_ray_bins=bool(keep_ray_bins))
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
+    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
+    reducer = None if bins is None else BinAccumulator.for_run(
+        bins, mass, plasma, z_max if include_background else z_boxes, kernel_background, n_rays, keep_ray_bins)
     backend = backend if backend is not None else MemoryBackend()
-    arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
-                         executor, progress, unit="ray", description="sightlines")
+    arrays = run_batches(tracer, backend, mass, run, run_layout(SIGHTLINE_LAYOUT, bins), FORMAT, n_rays, batch_size,
+                         n_jobs, executor, progress, unit="ray", description="sightlines", reducer=reducer)
     result = SightlineResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                              arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
                              tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    result.redshift_bins = None if reducer is None else reducer.finish()
     attach_pdf_check(result, series, plasma, n_jobs)  # the built-in check (raytrace.meancheck)
     return backend.finish(result)

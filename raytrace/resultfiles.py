@@ -37,22 +37,32 @@ DATASETS = {
     "pdf_mean/kernel_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per mass, over the run's redshifts"),
     "pdf_mean/kernel_background": ("eV", "the homogeneous background's kernel per mass in the one-point-PDF mean"),
     "pdf_mean/error": ("eV", "error estimate of the one-point-PDF mean of the boxes' kernel per mass"),
+    "pdf_mean/bin_edges_z": ("1", "edges in z of the redshift bins of the one-point-PDF mean"),
+    "pdf_mean/bins_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per redshift bin and mass"),
+    "pdf_mean/bins_background": ("eV", "the homogeneous background's kernel per redshift bin and mass"),
+    "pdf_mean/bins_error": ("eV", "error estimate of pdf_mean/bins_boxes per redshift bin and mass"),
 }
 # Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
 # a sky's are means over a pixel's rays).
 FILE_DTYPES = {"crossings": np.float64, "tangent_events": np.float64}
 
 
+def describe(dataset, unit, description):
+    """Give ``dataset`` its unit and one-line description, as every dataset of a result file has."""
+    dataset.attrs["unit"] = unit
+    dataset.attrs["description"] = description
+
+
 def _describe(dataset, name, format_name):
     unit, description = DATASETS[name]
-    dataset.attrs["unit"] = unit
     sky = "sky" in format_name
-    dataset.attrs["description"] = description.format(row="pixel" if sky else "ray",
-                                                       mean=" (mean over the pixel's rays)" if sky else "")
+    describe(dataset, unit, description.format(row="pixel" if sky else "ray",
+                                               mean=" (mean over the pixel's rays)" if sky else ""))
 
 
-def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes):
-    """Write ``layout``'s arrays of ``source`` plus the background kernel to HDF5, atomically.
+def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes, extra=None):
+    """Write ``layout``'s arrays of ``source`` plus the background kernel to HDF5, atomically;
+    ``extra(handle)`` adds what else the result holds (its redshift bins).
 
     NaN or inf in any array aborts the write: no result file ever holds them.
     """
@@ -73,6 +83,8 @@ def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attr
                 write_pdf_check(handle, source.pdf_check)
                 for name in handle["pdf_mean"]:
                     _describe(handle["pdf_mean"][name], f"pdf_mean/{name}", format_name)
+            if extra is not None:
+                extra(handle)
             if "dispersion_measure_background" in attributes:
                 handle.attrs["dispersion_measure_background_unit"] = "pc cm^-3"
             handle.attrs["complete"] = True
@@ -121,9 +133,11 @@ def _write_header(handle, format_name, mass_eV, run):
 
 
 def _check_finite(handle, path):
-    for name, item in handle.items():
+    def visit(name, item):
         if isinstance(item, h5py.Dataset) and item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
             raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
+
+    handle.visititems(visit)
     # Numbers stored as attributes (the background's dispersion measure) are results too.
     for name, value in handle.attrs.items():
         if np.asarray(value).dtype.kind == "f" and not np.all(np.isfinite(value)):

@@ -42,6 +42,8 @@ class KernelRows:
 
     #: The one-point-PDF mean over the same redshifts (:mod:`raytrace.meancheck`), when computed.
     pdf_check = None
+    #: The kernel per redshift bin and density class (:class:`raytrace.binstats.BinnedKernels`), when asked.
+    redshift_bins = None
 
     def mean_check(self):
         """The Monte Carlo mean against :attr:`pdf_check` per mass (a MeanCheck), or None without one."""
@@ -155,12 +157,17 @@ class SightlineResult(KernelRows):
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
         """Write the result to HDF5 atomically, with its provenance."""
+        from .binstats import write_binned
+
+        bins = self.redshift_bins
         return save_arrays(path, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background})
+                           {"dispersion_measure_background": self.dispersion_measure_background},
+                           extra=None if bins is None else lambda handle: write_binned(handle, bins))
 
     @classmethod
     def load(cls, path):
         """Read a result written by :meth:`save`."""
+        from .binstats import read_binned
         from .meancheck import read_pdf_check
 
         with open_result(path, FORMAT, "sightline") as handle:
@@ -177,6 +184,7 @@ class SightlineResult(KernelRows):
                 kernel_tangent=handle["kernel_tangent"][...],
             )
             result.pdf_check = read_pdf_check(handle, result.mass_eV)
+            result.redshift_bins = read_binned(handle)
         return result
 
 

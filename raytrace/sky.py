@@ -114,7 +114,7 @@ class SkyTracer(Tracer):
                           directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
                           CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
-                          out["dispersion_measure_boxes"])
+                          out["dispersion_measure_boxes"], *self._cell_arguments(out))
         per_pixel = 4**self.level
         return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
                 for name, values in out.items()}
