@@ -49,7 +49,7 @@ class BinnedKernels:
     ``bin_percentiles`` (5, B, m) at :data:`PERCENTILES`; the same for ``class_*``
     (C, m) and ``cumulative_*`` (B+1, m), K(z_c < edge); ``joint_mean`` (B, C, m);
     ``background_bins`` (B, m) the background's part of each bin (the same on every
-    ray); ``bin_hits`` (B, m) the number of rays with a kernel in each bin; ``ray_bins``
+    ray); ``bin_hits`` (B, m) the number of rays with a kernel from the boxes in each bin; ``ray_bins``
     (n_rays, B, m) each ray's bins, where they were kept.
     """
 
@@ -117,7 +117,7 @@ BINNED_DATASETS = {
     "cumulative_percentiles": ("eV", "percentiles over rays of K(z_c < edge), per edge and mass, to a factor 1.037"),
     "joint_mean": ("eV", "mean over rays of the kernel per redshift bin, density class and mass"),
     "background_bins": ("eV", "the homogeneous background's part of each bin, the same on every ray"),
-    "bin_hits": ("1", "number of rays with a kernel in each redshift bin, per bin and mass"),
+    "bin_hits": ("1", "number of rays with a kernel from the boxes in each redshift bin, per bin and mass"),
     "ray_bins": ("eV", "every ray's kernel per redshift bin and mass"),
 }
 
@@ -176,19 +176,21 @@ class BinAccumulator:
     def __init__(self, setup, mass_eV, background_bins, background_below, background_total, n_rays,
                  keep_rays=False):
         self.setup = setup
-        self.background = (background_bins, background_below, background_total)
+        self.background_bins = background_bins
         self.scale = kernel_scale(mass_eV)
-        n_masses, n_cells = setup.cell_bin.shape
+        n_masses = setup.cell_bin.shape[0]
         b, c = setup.n_bins, setup.n_classes
-        # Per mass, which cells make each quantity: bins, box classes, cumulative edges, (bin, class) pairs.
-        self.select = np.zeros((n_masses, n_cells, b + c + (b + 1) + b * c))
-        for k in range(n_masses):
-            for j in range(n_cells):
-                if setup.cell_bin[k, j] >= 0:
-                    self.select[k, j, setup.cell_bin[k, j]] = 1.0
-                    self.select[k, j, 2 * b + c + 1 + setup.cell_bin[k, j] * c + setup.cell_class[k, j]] = 1.0
-                self.select[k, j, b + setup.cell_class[k, j]] = 1.0
-                self.select[k, j, b + c: 2 * b + c + 1] = setup.cell_top[k, j] <= setup.edges_z
+        # Per mass, which cells make each quantity: bins, classes, cumulative edges, (bin, class) pairs.
+        self.select = np.concatenate([setup.bin_selector(), setup.class_selector(), setup.below_selector(),
+                                      setup.pair_selector()], axis=2).astype(np.float64)
+        # The background's part of each quantity, the same on every ray: the rays' statistics are taken
+        # without it (so the histogram resolves the boxes' part alone) and it is added to means and
+        # percentiles at the end, exactly.
+        self.offset = np.zeros((self.select.shape[2], n_masses))
+        self.offset[:b] = background_bins
+        self.offset[b + c - 1] = background_total  # the background's own class (no cell of the boxes is in it)
+        self.offset[b + c: 2 * b + c + 1] = background_below
+        self.offset[2 * b + c + 1 + np.arange(b) * c + (c - 1)] = background_bins  # the pairs (bin, background)
         self.n_histogram = 2 * b + c + 1
         self.histogram = np.zeros((self.n_histogram, n_masses, _SLOTS), dtype=np.int64)
         self.pending, self.next_batch = {}, 0
@@ -196,23 +198,16 @@ class BinAccumulator:
         self.ray_bins = np.zeros((n_rays, b, n_masses)) if keep_rays else None
 
     def quantities(self, cells):
-        """(rays, quantities, masses): every ray's bins, classes, cumulative edges and pairs, background included."""
+        """(rays, quantities, masses): every ray's bins, classes, cumulative edges and pairs, from the boxes."""
         cells = np.asarray(cells, dtype=np.float32).astype(np.float64)
-        values = np.matmul(cells.transpose(2, 0, 1), self.select).transpose(1, 2, 0)
-        b, c = self.setup.n_bins, self.setup.n_classes
-        by_bin, below, total = self.background
-        values[:, :b] += by_bin
-        values[:, b + c - 1] += total  # the background's own class (no cell of the boxes is in it)
-        values[:, b + c: 2 * b + c + 1] += below
-        values[:, 2 * b + c + 1 + np.arange(b) * c + (c - 1)] += by_bin  # the pairs (bin, background)
-        return values
+        return np.matmul(cells.transpose(2, 0, 1), self.select).transpose(1, 2, 0)
 
     def add(self, batch, start, arrays):
         """Take one batch's ``arrays["kernel_cells"]`` (rays, cells, masses), rows ``start``... of the run."""
         values = self.quantities(arrays["kernel_cells"])
         self._add_to_histogram(values[:, :self.n_histogram])
         if self.ray_bins is not None:
-            self.ray_bins[start:start + len(values)] = values[:, :self.setup.n_bins]
+            self.ray_bins[start:start + len(values)] = values[:, :self.setup.n_bins] + self.background_bins
         mean = values.mean(axis=0)
         self.pending[batch] = (len(values), mean, ((values - mean) ** 2).sum(axis=0))
         while self.next_batch in self.pending:
@@ -241,13 +236,14 @@ class BinAccumulator:
             raise RuntimeError(f"binned statistics: batches {sorted(self.pending)} came without those before them")
         setup = self.setup
         b, c = setup.n_bins, setup.n_classes
-        parts = _split(self.mean, b, c)
-        m2 = _split(self.m2, b, c)
-        percentiles = histogram_percentiles(self.histogram, self.count, self.scale)
+        parts = _split(self.mean + self.offset, b, c)
+        m2 = _split(self.m2 + np.zeros_like(self.offset), b, c)
+        percentiles = (histogram_percentiles(self.histogram, self.count, self.scale)
+                       + self.offset[None, :self.n_histogram])
         return BinnedKernels(setup.edges_z, setup.density_edges, setup.names, self.count,
                              parts[0], m2[0], percentiles[:, :b], parts[1], m2[1], percentiles[:, b:b + c],
                              parts[2], m2[2], percentiles[:, b + c:], parts[3].reshape(b, c, -1),
-                             self.background[0], self.count - self.histogram[:b, :, 0], self.ray_bins)
+                             self.background_bins, self.count - self.histogram[:b, :, 0], self.ray_bins)
 
 
 def _split(array, b, c):

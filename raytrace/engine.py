@@ -411,6 +411,9 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     }
     bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
     run.update(bins.run_record() if bins is not None else {}, keep_ray_bins=bool(keep_ray_bins))
+    if keep_ray_bins and bins is not None:  # each kept bin takes a sixth of a ray's 48 bytes per mass
+        check_run_memory(n_rays, mass.size * (1 + bins.n_bins / 6), "n_rays, mass_eV and redshift_bins with "
+                         "keep_ray_bins (--rays, --mass-count, --redshift-bins, --keep-ray-bins)")
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)

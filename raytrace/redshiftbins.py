@@ -73,14 +73,15 @@ def bin_edges(bins, z_boxes, z_max, include_background, what="redshift_bins (--r
 def density_edges(edges, what="density_classes (--density-classes)"):
     """Checked D* edges of the density classes: positive, finite, strictly increasing."""
     values = float_array(edges, what)
-    if values.ndim != 1 or values.size < 1 or not np.all(np.isfinite(values)) or np.any(values <= 0) \
-            or np.any(np.diff(values) <= 0):
+    if values.ndim != 1 or not np.all(np.isfinite(values)) or np.any(values <= 0) or np.any(np.diff(values) <= 0):
         raise InputError(f"{what}: expected positive, strictly increasing edges in D* (e.g. 1, 100), got {edges!r}")
     return values
 
 
 def class_names(edges):
     """Names of the boxes' density classes for ``edges``, then the background's."""
+    if len(edges) == 0:
+        return ("all densities", BACKGROUND_CLASS)
     if np.array_equal(edges, DEFAULT_DENSITY_EDGES):
         return BOX_CLASS_NAMES + (BACKGROUND_CLASS,)
     bounds = [None, *(f"{e:g}" for e in edges), None]
@@ -124,6 +125,27 @@ class BinSetup:
         """What a run's record says about its bins."""
         return {"redshift_bin_edges": self.edges_z.tolist(), "density_class_edges": self.density_edges.tolist()}
 
+    def bin_selector(self):
+        """(masses, cells, B): 1 where a cell lies in a bin; cells @ it sums the cells into bins."""
+        return self.cell_bin[:, :, None] == np.arange(self.n_bins)[None, None, :]
+
+    def class_selector(self):
+        """(masses, cells, C): 1 where a cell lies in a class (the background's class has no cell)."""
+        return self.cell_class[:, :, None] == np.arange(self.n_classes)[None, None, :]
+
+    def below_selector(self):
+        """(masses, cells, B+1): 1 where a cell lies below a bin edge (for K(z_c < edge))."""
+        return self.cell_top[:, :, None] <= self.edges_z[None, None, :]
+
+    def pair_selector(self):
+        """(masses, cells, B * C): 1 where a cell lies in a (bin, class) pair, bin-major."""
+        pairs = np.where(self.cell_bin >= 0, self.cell_bin * self.n_classes + self.cell_class, -1)
+        return pairs[:, :, None] == np.arange(self.n_bins * self.n_classes)[None, None, :]
+
+    def cells_to_bins(self, cells):
+        """(rows, B, masses) kernel per bin from (rows, cells, masses) kernel per cell."""
+        return np.matmul(np.asarray(cells).transpose(2, 0, 1), self.bin_selector()).transpose(1, 2, 0)
+
 
 def run_bins(bins, classes, mass, plasma, z_boxes, z_max, include_background):
     """The :class:`BinSetup` of a run's ``bins`` and class edges ``classes`` (None: no bins)."""
@@ -153,7 +175,7 @@ def bin_setup(edges_z, d_edges, mass, plasma, z_boxes):
 
 def _cell_bounds(edges_z, d_edges, m, plasma, z_boxes):
     """0, the bin edges and the class boundaries of mass ``m`` inside (0, z_boxes), and z_boxes, sorted."""
-    class_z = plasma.crossings(m / np.sqrt(d_edges), 0.0, z_boxes).redshift
+    class_z = plasma.crossings(m / np.sqrt(d_edges), 0.0, z_boxes).redshift if d_edges.size else np.zeros(0)
     cuts = np.concatenate([edges_z, class_z])
     cuts = np.unique(cuts[(cuts > 0.0) & (cuts < z_boxes)])
     return np.concatenate([[0.0], cuts, [z_boxes]])

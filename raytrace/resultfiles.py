@@ -34,6 +34,7 @@ DATASETS = {
     "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
     "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
     "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+    "kernel_shells_boxes": ("eV", "kernel from the boxes per {row}, redshift shell (group redshift_shells) and mass"),
     "pdf_mean/kernel_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per mass, over the run's redshifts"),
     "pdf_mean/kernel_background": ("eV", "the homogeneous background's kernel per mass in the one-point-PDF mean"),
     "pdf_mean/error": ("eV", "error estimate of the one-point-PDF mean of the boxes' kernel per mass"),

@@ -32,6 +32,7 @@ from .errors import InputError, require_number
 from .kernels.lattice import trace_lattice
 from .meancheck import attach_pdf_check
 from .rays import CUBE_SYMMETRIES
+from .redshiftbins import background_by_bin, bin_edges, bin_setup
 from .resultfiles import open_result, save_arrays
 from .results import KernelRows, tangent_arrays
 from .units import CMB_PHOTON_ENERGY_EV
@@ -86,8 +87,9 @@ class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
-                 randomise_copies=True):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+                 randomise_copies=True, shells=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, shells)
+        self.shells = shells
         self.nside = nside
         self.level = _sub_pixel_level(rays_per_pixel)
         self.randomise = bool(randomise_copies)
@@ -116,13 +118,17 @@ class SkyTracer(Tracer):
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
                           out["dispersion_measure_boxes"], *self._cell_arguments(out))
         per_pixel = 4**self.level
-        return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
-                for name, values in out.items()}
+        pixel = {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
+                 for name, values in out.items()}
+        if self.shells is not None:
+            pixel["kernel_shells_boxes"] = self.shells.cells_to_bins(pixel["kernel_cells"])
+        return pixel
 
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
+             **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
@@ -132,6 +138,9 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     Other arguments (``backend``, ``executor`` for a cluster) as in
     :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
     are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
+    :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
+    (``kernel_shells``), each crossing in the shell of its redshift.
     """
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
@@ -146,6 +155,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     npix = 12 * nside * nside
+    edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
+    shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
+    if shells is not None:
+        check_run_memory(npix, mass.size * (1 + shells.n_bins / 3), "nside, mass_eV and shells_z (--nside, "
+                         "--mass-count, --shells)")  # a shell's maps take a third of a pixel's 48 bytes per mass
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
@@ -153,17 +167,17 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "randomise_copies": bool(randomise_copies),
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name,
+        "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
     }
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies)
+                       randomise_copies, shells)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
     # stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,
-                         progress, unit="pixel", description="sky")
+    arrays = run_batches(tracer, backend, mass, run, sky_layout(shells), FORMAT, npix, batch_pixels, n_jobs,
+                         executor, progress, unit="pixel", description="sky")
     if ordering == "RING":
         ring_to_nest = _healpy().ring2nest(nside, np.arange(npix))
         for values in arrays.values():  # in place, one array at a time: no second set of maps
@@ -171,8 +185,19 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result = SkyResult(mass, arrays["kernel_boxes"], kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], dm_background, run,
                        tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    if shells is not None:
+        by_shell, _ = background_by_bin(plasma, mass, z_boxes, z_max if include_background else z_boxes, edges)
+        result.set_shells(edges, arrays["kernel_shells_boxes"], by_shell)
     attach_pdf_check(result, series, plasma, n_jobs)  # the built-in check (raytrace.meancheck)
     return backend.finish(result)
+
+
+def sky_layout(shells):
+    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT`, with the maps of each shell where there are shells."""
+    if shells is None:
+        return SKY_LAYOUT
+    count = shells.n_bins
+    return dict(SKY_LAYOUT, kernel_shells_boxes=(lambda r, m: (r, count, m), np.float64))
 
 
 def photon_x(omega0_eV):
@@ -205,6 +230,33 @@ class SkyResult(KernelRows):
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
+        self.shell_edges_z = self.kernel_shells_boxes = self.shells_background = None
+
+    def set_shells(self, edges_z, kernel_shells_boxes, shells_background):
+        """Give the result its maps per redshift shell: edges (S+1), the boxes' maps (npix, S, n_masses)
+        and the background's part of each shell (S, n_masses), the same in every pixel."""
+        self.shell_edges_z = np.asarray(edges_z, dtype=float)
+        self.kernel_shells_boxes = np.asarray(kernel_shells_boxes, dtype=float)
+        self.shells_background = np.asarray(shells_background, dtype=float)
+        if self.kernel_shells_boxes.shape != (self.npix, self.shell_edges_z.size - 1, self.mass_eV.size):
+            raise InputError(f"kernel_shells_boxes: expected shape {(self.npix, self.shell_edges_z.size - 1)} + "
+                             f"(masses,), got {self.kernel_shells_boxes.shape}")
+
+    @property
+    def kernel_shells(self):
+        """K in eV per pixel, redshift shell and mass (boxes plus background); None without shells."""
+        if self.kernel_shells_boxes is None:
+            return None
+        return self.kernel_shells_boxes + self.shells_background[None]
+
+    def shell_map(self, mass_eV, shell):
+        """The map of K (eV) of shell ``shell`` (index) at the grid mass nearest ``mass_eV``."""
+        if self.kernel_shells_boxes is None:
+            raise InputError("shell_map: this sky was cast without redshift shells (shells_z, --shells)")
+        count = self.shell_edges_z.size - 1
+        if not (isinstance(shell, (int, np.integer)) and 0 <= shell < count):
+            raise InputError(f"shell: expected a shell index from 0 to {count - 1}, got {shell!r}")
+        return self.kernel_shells[:, shell, self.mass_index(mass_eV)]
 
     def __repr__(self):
         return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
@@ -245,8 +297,20 @@ class SkyResult(KernelRows):
 
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background})
+        layout = SKY_LAYOUT if self.kernel_shells_boxes is None else dict(SKY_LAYOUT, kernel_shells_boxes=None)
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, layout, self, overwrite,
+                           {"dispersion_measure_background": self.dispersion_measure_background},
+                           extra=None if self.kernel_shells_boxes is None else self._write_shells)
+
+    def _write_shells(self, handle):
+        from .resultfiles import describe
+
+        group = handle.create_group("redshift_shells")
+        group["edges_z"] = self.shell_edges_z
+        describe(group["edges_z"], "1", "edges in z of the redshift shells of kernel_shells_boxes")
+        group["background"] = self.shells_background
+        describe(group["background"], "eV", "the homogeneous background's kernel per shell and mass, the same "
+                 "in every pixel")
 
     @classmethod
     def load(cls, path):
@@ -259,6 +323,9 @@ class SkyResult(KernelRows):
                          handle["crossings"][...], handle["dispersion_measure_boxes"][...],
                          handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
                          tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
+            if "redshift_shells" in handle:
+                result.set_shells(handle["redshift_shells/edges_z"][...], handle["kernel_shells_boxes"][...],
+                                  handle["redshift_shells/background"][...])
             result.pdf_check = read_pdf_check(handle, result.mass_eV)
         return result
 
