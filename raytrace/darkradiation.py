@@ -82,6 +82,10 @@ class DecayingDarkMatter:
         """The most energetic dark photon today: M/2 (emitted at z = 0)."""
         return 0.5 * self.mass_eV
 
+    def earliest_emission(self, omega0, z_end):
+        """The highest emission redshift of a dark photon seen today at ``omega0``: 1 + z_e = M / (2 omega_0)."""
+        return np.minimum(self.mass_eV / (2.0 * omega0) - 1.0, z_end)
+
     def dark_photons(self, omega0, z_obs, z_end, cosmology, between):
         """Converted photons per comoving volume per energy today, over f_T epsilon^2: (rows, energies, masses).
 
@@ -128,6 +132,9 @@ class TabulatedSource:
 
     def highest_energy_eV(self):
         return float(self.energy_eV[-1])
+
+    def earliest_emission(self, omega0, z_end):
+        return np.full(np.shape(omega0), min(z_end, float(self.redshift[-1])))
 
     def dark_photons(self, omega0, z_obs, z_end, cosmology, between):
         """As :meth:`DecayingDarkMatter.dark_photons`: the integral over the emission redshift z of
@@ -334,6 +341,7 @@ def converted_photons(result, source, epsilon, transverse_fraction=DEFAULT_TRANS
     frequency = observer_frequencies(source, z_obs, profile.z_max, frequency_hz)
     cosmology = (plasma.cosmology if plasma is not None else _default_cosmology())
     intensity, temperature = row_temperatures(profile, source, epsilon, fraction, z_obs, frequency, cosmology)
+    warn_large_probability(profile, source, epsilon, fraction, z_obs, frequency)
     if profile.rows in ("rays", "pixels"):
         mean_i, mean_t = intensity.mean(axis=0), temperature.mean(axis=0)
         spread = np.percentile(temperature, PERCENTILES, axis=0) if temperature.shape[0] > 1 else None
@@ -346,6 +354,28 @@ def converted_photons(result, source, epsilon, transverse_fraction=DEFAULT_TRANS
                "none: an observer inside the boxes' range needs every ray's bins (keep_ray_bins, --keep-ray-bins)")
     return ConvertedPhotons(profile.mass_eV, frequency, z_obs, epsilon, fraction, source.describe(), mean_i, mean_t,
                             spread, how)
+
+
+def warn_large_probability(profile, source, epsilon, fraction, z_obs, frequency_hz, limit=0.1):
+    """Warn where a dark photon's conversion probability f_T epsilon^2 K / omega_0 reaches ``limit``: there the
+    sum over crossings overstates it (the saturating form and conversion back would matter)."""
+    import warnings
+
+    from .errors import RaytraceWarning
+
+    omega0 = H_PLANCK_EV_S * frequency_hz / (1.0 + z_obs)
+    z_e = source.earliest_emission(omega0, profile.z_max)
+    emitted = z_e > z_obs
+    if not emitted.any():
+        return
+    probability = fraction * epsilon**2 * profile.between(z_obs, z_e[emitted]) / omega0[emitted][None, :, None]
+    if probability.max() >= limit:
+        _, j, k = np.unravel_index(np.argmax(probability), probability.shape)
+        warnings.warn(RaytraceWarning(
+            f"dark radiation: a dark photon's conversion probability reaches {probability.max():.3g} (m = "
+            f"{profile.mass_eV[k]:.3g} eV, {frequency_hz[emitted][j] / 1e9:.3g} GHz at the observer); the spectrum "
+            f"sums probabilities, which overstates conversion where it is not small: take a smaller epsilon"),
+            stacklevel=3)
 
 
 def converted_photon_map(sky, source, epsilon, frequency_hz, mass_eV, transverse_fraction=DEFAULT_TRANSVERSE_FRACTION,

@@ -17,6 +17,7 @@ import numpy as np
 
 from .errors import InputError, RaytraceWarning, require_positive_finite
 from .crosscheck import warn_differences
+from .environments import environment_lines, environment_page
 from .limits import UnconstrainedMassWarning, anisotropy_curve, result_kernels, sightline_limits
 from .limitset import plot_limits, same_mass_grid
 from .plots import _pyplot, fit_log_limits, kernel_bands, shown_mass_index
@@ -58,7 +59,9 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     ``mass_eV``: the sky map's mass (default: :func:`raytrace.plots.shown_mass_index`,
     the rule the sky figure follows). A sky from another set-up (boxes, masses,
     history, seed) is warned about, one line per difference. ``kinds``: which of
-    png, pdf and txt to write. Returns a dict kind -> path.
+    png, pdf and txt to write. A run with redshift bins gets a second page,
+    ``<path_stem>_where.png`` / ``.pdf`` (:mod:`raytrace.environments`: where and when
+    conversion happens), and its lines in the text. Returns a dict kind -> path.
     """
     unknown = set(kinds) - set(KINDS)
     if unknown or not kinds:
@@ -66,6 +69,10 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS if kind in kinds}
     check_outputs(paths.values(), overwrite)  # refuse before any work
     result = _load(sightlines, SightlineResult)
+    if result.redshift_bins is not None:
+        where = {f"where_{kind}": Path(f"{path_stem}_where.{kind}") for kind in ("png", "pdf") if kind in kinds}
+        check_outputs(where.values(), overwrite)
+        paths.update(where)
     sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
     if sky is not None:
@@ -90,6 +97,9 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
                     figure.savefig(temporary, format=kind, dpi=DPI)
         finally:
             plt.close(figure)
+        for kind in ("png", "pdf"):
+            if f"where_{kind}" in paths:
+                environment_page(result, paths[f"where_{kind}"], overwrite)
         if "txt" in paths:
             with atomic_output(paths["txt"], overwrite) as temporary:
                 temporary.write_text(text)
@@ -166,6 +176,7 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
         lines.append("  " + "; ".join(legend))
     trust, warned = trust_lines(result, rows.astype(int), sky, sky_index, omega0_eV, threshold)
     lines += trust
+    lines += environment_lines(result)
     for message in warned:
         warnings.warn(message, RaytraceWarning, stacklevel=3)
     lines += [f"note: {note}" for note in notes]
