@@ -7,7 +7,8 @@ FIRAS by default) or a radio-background level (:func:`radio_limit`, the ARCADE 2
 excess by default). Out: limit curves epsilon_max(m) that a
 :class:`~raytrace.limitset.LimitSet` takes, so :func:`raytrace.limitset.limit_table`
 writes them as CSV / HDF5 and :func:`raytrace.limitset.plot_limits` draws them;
-and a figure of the converted photons' spectrum (:func:`plot_spectrum`).
+the converted photons' spectrum as a table (:func:`photon_table`) and a figure
+(:func:`plot_spectrum`).
 
 The added photons scale as epsilon^2 while P is small, so each limit comes from
 the spectrum at epsilon = 1 (a template, the mean over the rows: the monopole is
@@ -183,3 +184,55 @@ def _shown_masses(photons, masses_eV, count=4):
     if lit.size == 0:
         raise InputError("plot: no mass of the grid gives converted photons at these frequencies")
     return list(lit[np.round(np.linspace(0, lit.size - 1, min(count, lit.size))).astype(int)])
+
+
+#: Columns of a spectrum table: name -> (unit, description).
+PHOTON_COLUMNS = {
+    "frequency_hz": ("Hz", "frequency at the observer"),
+    "intensity_MJy_sr": ("MJy/sr", "mean intensity I_nu of the converted photons at the observer"),
+    "temperature_K": ("K", "mean Rayleigh-Jeans brightness temperature at the observer"),
+    "temperature_p16_K": ("K", "16 % percentile of the brightness temperature over the result's rows"),
+    "temperature_p84_K": ("K", "84 % percentile of the brightness temperature over the result's rows"),
+    "excess": ("1", "mean brightness temperature over T_CMB at the observer's redshift"),
+}
+
+
+def photon_table(path, photons, overwrite=False):
+    """Write ``photons`` (:class:`~raytrace.darkradiation.ConvertedPhotons`) as CSV (one row per mass and
+    frequency) or HDF5 (one (frequency, mass) dataset per column), atomically, with its parameters."""
+    import json
+    from pathlib import Path
+
+    from .provenance import atomic_output, hdf5_image, provenance_json
+
+    path = Path(path)
+    kind = {".csv": "csv", ".h5": "hdf5", ".hdf5": "hdf5"}.get(path.suffix.lower())
+    if kind is None:
+        raise InputError(f"{path}: expected a table file ending in .csv, .h5 or .hdf5")
+    spread = photons.temperature_percentiles_K
+    columns = {"temperature_K": photons.temperature_K, "intensity_MJy_sr": photons.intensity_MJy_sr,
+               "excess": photons.excess()}
+    if spread is not None:
+        columns.update(temperature_p16_K=spread[1], temperature_p84_K=spread[3])
+    about = {"epsilon": photons.epsilon, "transverse_fraction": photons.transverse_fraction,
+             "observer_redshift": photons.z_obs, "source": photons.source, "spread": photons.spread}
+    with atomic_output(path, overwrite) as temporary:
+        if kind == "csv":
+            with open(temporary, "w") as handle:
+                handle.write(f"# raytrace converted dark radiation: {json.dumps(about, default=str)}\n")
+                handle.write(f"# provenance: {provenance_json()}\n")
+                for name in ("frequency_hz", *columns):
+                    handle.write(f"# {name}: {PHOTON_COLUMNS[name][1]} [{PHOTON_COLUMNS[name][0]}]\n")
+                handle.write(",".join(["mass_eV", "frequency_hz", *columns]) + "\n")
+                for k, mass in enumerate(photons.mass_eV):
+                    for j, frequency in enumerate(photons.frequency_hz):
+                        values = [mass, frequency, *(column[j, k] for column in columns.values())]
+                        handle.write(",".join(f"{value:.8g}" for value in values) + "\n")
+        else:
+            with hdf5_image(temporary) as handle:
+                handle.attrs.update(provenance=provenance_json(), parameters=json.dumps(about, default=str))
+                handle["mass_eV"] = photons.mass_eV
+                for name, values in (("frequency_hz", photons.frequency_hz), *columns.items()):
+                    handle[name] = values
+                    handle[name].attrs.update(unit=PHOTON_COLUMNS[name][0], description=PHOTON_COLUMNS[name][1])
+    return path

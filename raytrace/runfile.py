@@ -15,7 +15,6 @@ one-line deprecation notice.
 """
 
 import argparse
-import math
 import os
 import sys
 from dataclasses import dataclass, replace
@@ -27,6 +26,7 @@ except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
 from .errors import InputError
+from .optionvalues import NumberOrText, check_range, convert
 from .units import CMB_PHOTON_ENERGY_EV
 
 #: Options that older releases took and this one refuses, with the reason (API keywords).
@@ -39,10 +39,6 @@ REMOVED_OPTIONS = {
 
 #: The run-file keys (and their flags) of those options: refused with the same reason, in one line.
 REMOVED_KEYS = {"rays.step_cells": ("--step-cells", REMOVED_OPTIONS["step"])}
-
-
-class NumberOrText:
-    """Option kind: a number, or text (a dataset path) when it does not read as one."""
 
 
 @dataclass(frozen=True)
@@ -137,9 +133,18 @@ OUTPUT_OPTIONS = (
     Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
 )
 
+#: When and where conversion happens (raytrace.redshiftbins): the kernel per redshift bin and density class.
+BIN_OPTIONS = (
+    Option("rays.redshift_bins", float, 16.0, "redshift bins of the kernel: a count (equal steps in ln(1+z) over the "
+           "boxes' redshifts, the background beyond in a bin of its own; 0: none) or edges in z", at_least=0.0,
+           listable=True, metavar="N|Z"),
+    Option("rays.density_classes", float, None, "edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density "
+           "classes (default: 1,100: voids, sheets and filaments, halos)", above=0.0, listable=True, metavar="D"),
+    Option("rays.keep_ray_bins", bool, False, "keep every ray's redshift bins in the result (rays x bins x masses)"),
+)
 SIGHTLINE_OPTIONS = (BOX_OPTIONS + MASS_OPTIONS
                      + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),)
-                     + TRACE_OPTIONS + OUTPUT_OPTIONS)
+                     + TRACE_OPTIONS + BIN_OPTIONS + OUTPUT_OPTIONS)
 
 _SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.photon_energy_eV", "rays.seed", "rays.jobs",
                    "rays.scheduler", "rays.workers")
@@ -163,6 +168,8 @@ SKY_OPTIONS = (
         Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
+        Option("sky.shells", float, None, "redshift shells with a map each: edges in z (or a count, as "
+               "--redshift-bins)", at_least=0.0, listable=True, metavar="Z"),
         ISOTROPY_THRESHOLD,
         CL_LIMITS,
     )
@@ -307,9 +314,9 @@ def settings(args, options):
     for option in options:
         given = getattr(args, option.dest, None)
         if given is not None:
-            values[option.key] = _convert(option, given, f"flag {option.flag}", from_flag=True)
+            values[option.key] = convert(option, given, f"flag {option.flag}", from_flag=True)
     for key, value in values.items():
-        _check_range(by_key[key], value)
+        check_range(by_key[key], value)
     return values
 
 
@@ -345,7 +352,7 @@ def read_run_file(path, options):
             if key not in known:
                 names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
                 raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")
-            found[key] = _convert(known[key], value, f"{path}: key {key}")
+            found[key] = convert(known[key], value, f"{path}: key {key}")
     # Relative paths in a run file are relative to the run file, so it runs from anywhere.
     for key, value in found.items():
         if known[key].path and value is not None:
@@ -353,102 +360,6 @@ def read_run_file(path, options):
                         for v in ([value] if isinstance(value, str) else value)]
             found[key] = anchored[0] if isinstance(value, str) else anchored
     return found
-
-
-def _convert(option, value, where, from_flag=False):
-    """The value of an option, checked: one value of its kind, or for a listable option a
-    list of them (a TOML list, or a flag's comma-separated text)."""
-    if option.listable:
-        if isinstance(value, list):
-            items = value
-        elif from_flag and isinstance(value, str) and "," in value:
-            items = [item.strip() for item in value.split(",")]
-        else:
-            return _convert_one(option, value, where, from_flag)
-        if not items:
-            raise InputError(f"{where}: expected one value or a non-empty list, got {value!r}")
-        converted = [_convert_one(option, item, where, from_flag) for item in items]
-        return converted[0] if len(converted) == 1 else converted
-    return _convert_one(option, value, where, from_flag)
-
-
-def _convert_one(option, value, where, from_flag):
-    value = _checked_kind(option, value, where, from_flag)
-    if option.choices and value not in option.choices:
-        raise InputError(f"{where}: {value!r} is not one of {', '.join(str(c) for c in option.choices)}")
-    return value
-
-
-def _checked_kind(option, value, where, from_flag):
-    """``value`` as ``option``'s kind. A flag's text is parsed; a run file's value must already be of
-    the kind (TOML has numbers: "1e-14" or 7.0 for a count is a mistake, not a number to guess)."""
-    kind = option.kind
-    if option.path and kind is str and value == "":
-        return None  # an output switched off (a run file's, from the command line)
-    try:
-        if not from_flag and kind in (int, float) and (isinstance(value, str) or (kind is int and isinstance(value, float))):
-            raise TypeError
-        if kind is bool:
-            if isinstance(value, bool):
-                return value
-            raise TypeError
-        if kind is list:
-            if isinstance(value, str):
-                return [value]
-            if isinstance(value, list) and all(isinstance(v, str) for v in value) and value:
-                return list(value)
-            raise TypeError
-        if kind is int:
-            if isinstance(value, bool) or (isinstance(value, float) and not value.is_integer()):
-                raise TypeError
-            return int(value)
-        if kind is float:
-            if isinstance(value, bool):
-                raise TypeError
-            number = float(value)
-            if not math.isfinite(number):
-                raise TypeError
-            return number
-        if kind is str:
-            if not isinstance(value, str) or not value:
-                raise TypeError
-            return value
-        if kind is NumberOrText:
-            if isinstance(value, bool) or not isinstance(value, (int, float, str)) or value == "":
-                raise TypeError
-            if isinstance(value, str):
-                try:
-                    value = float(value)
-                except ValueError:
-                    return value
-            if not math.isfinite(value):
-                raise TypeError
-            return float(value)
-    except (TypeError, ValueError):
-        pass
-    expected = {bool: "true or false", list: "a list of strings", int: "a whole number",
-                float: "a finite number", str: "a non-empty string",
-                NumberOrText: "a number or the path of a dataset"}[kind]
-    if option.listable:
-        expected += " (or a list of them, one per file)"
-    raise InputError(f"{where}: expected {expected}, got {value!r}")
-
-
-def _check_range(option, value):
-    if isinstance(value, list):
-        for item in value:
-            _check_range(option, item)
-        return
-    if value is None or option.kind not in (int, float):
-        return
-    if value in option.forbidden:
-        raise InputError(f"{option.key} ({option.flag}): {value!r} is not allowed ({option.help})")
-    if option.at_least is not None and value < option.at_least:
-        raise InputError(f"{option.key} ({option.flag}): expected a value >= {option.at_least:g}, got {value!r}")
-    if option.at_most is not None and value > option.at_most:
-        raise InputError(f"{option.key} ({option.flag}): expected a value <= {option.at_most:g}, got {value!r}")
-    if option.above is not None and value <= option.above:
-        raise InputError(f"{option.key} ({option.flag}): expected a value > {option.above:g}, got {value!r}")
 
 
 def require(values, key, options):
