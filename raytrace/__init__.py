@@ -9,6 +9,8 @@ Data flow, one module per stage::
       -> statistics (results.py)           SightlineResult: mean, spread (files: resultfiles.py, backends.py)
       -> sky maps (sky.py)                 HEALPix light cone, C_l, dT/T
       -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum and sky (tables, plots: limitset.py)
+    when and where (redshiftbins.py, binstats.py, environments.py): the kernel per redshift bin and density class
+    dark radiation into photons (darksources.py, darkradiation.py, darklimits.py): spectrum, excess, limits
 
 A notebook session::
 
@@ -55,6 +57,13 @@ _PUBLIC = {
     "degrade": "resolution",
     "resolution_convergence": "resolution",
     "read_spectrum": "spectrum",
+    "BinnedKernels": "binstats",
+    "DecayingDarkMatter": "darksources",
+    "TabulatedSource": "darksources",
+    "converted_photons": "darkradiation",
+    "converted_photon_map": "darkradiation",
+    "added_photon_limit": "darklimits",
+    "radio_limit": "darklimits",
 }
 
 __all__ = sorted(_PUBLIC) + ["__version__"]
