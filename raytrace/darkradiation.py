@@ -90,10 +90,10 @@ class KernelProfile:
             return self.boxes[:, i] + f[None, :, None] * (self.boxes[:, i + 1] - self.boxes[:, i])
 
         z_at, kernel, mass_index = self.background
-        inside = (z_at[None, :] > z_obs) & (z_at[None, :] < z_e[:, None])
-        background = np.zeros((z_e.size, self.mass_eV.size))
-        for j in range(z_e.size):
-            background[j] = np.bincount(mass_index[inside[j]], weights=kernel[inside[j]], minlength=self.mass_eV.size)
+        inside = (z_at[None, :] > z_obs) & (z_at[None, :] < z_e[:, None])  # (redshifts, crossings)
+        weights = np.zeros((z_at.size, self.mass_eV.size))
+        weights[np.arange(z_at.size), mass_index] = kernel
+        background = inside.astype(float) @ weights
         boxes = np.clip(boxes_below(z_e) - boxes_below(np.full(z_e.size, float(z_obs))), 0.0, None)
         return np.where(z_e[None, :, None] > z_obs, boxes, 0.0) + background[None]
 

@@ -112,7 +112,7 @@ class TabulatedSource:
         trapezoid = np.full(u.size, u[1] - u[0])
         trapezoid[[0, -1]] *= 0.5
         # dz = (1+z) du; K(z_obs, z) depends on z alone: once per step, then summed against every energy.
-        weight = trapezoid[:, None] * rate * (1.0 + z)[:, None] / cosmology.hubble_per_s(z)[:, None] / omega0**2
+        weight = trapezoid[:, None] * rate * (1.0 + z)[:, None] / cosmology.hubble_per_s(z)[:, None] / omega0
         return np.einsum("zf,rzm->rfm", weight, between(z_obs, z))
 
 
