@@ -180,55 +180,48 @@ class BinAccumulator:
         self.scale = kernel_scale(mass_eV)
         n_masses = setup.cell_bin.shape[0]
         b, c = setup.n_bins, setup.n_classes
-        # Per mass, which cells make each quantity: bins, classes, cumulative edges, (bin, class) pairs.
-        self.select = np.concatenate([setup.bin_selector(), setup.class_selector(), setup.below_selector(),
-                                      setup.pair_selector()], axis=2).astype(np.float64)
+        # Per mass, which cells make each quantity of a ray: its bins, classes and cumulative edges.
+        self.select = np.concatenate([setup.bin_selector(), setup.class_selector(), setup.below_selector()],
+                                     axis=2).astype(np.float64)
         # The background's part of each quantity, the same on every ray: the rays' statistics are taken
         # without it (so the histogram resolves the boxes' part alone) and it is added to means and
         # percentiles at the end, exactly.
         self.offset = np.zeros((self.select.shape[2], n_masses))
         self.offset[:b] = background_bins
         self.offset[b + c - 1] = background_total  # the background's own class (no cell of the boxes is in it)
-        self.offset[b + c: 2 * b + c + 1] = background_below
-        self.offset[2 * b + c + 1 + np.arange(b) * c + (c - 1)] = background_bins  # the pairs (bin, background)
-        self.n_histogram = 2 * b + c + 1
-        self.histogram = np.zeros((self.n_histogram, n_masses, _SLOTS), dtype=np.int64)
+        self.offset[b + c:] = background_below
+        self.histogram = np.zeros((self.select.shape[2], n_masses, _SLOTS), dtype=np.int64)
         self.pending, self.next_batch = {}, 0
-        self.count, self.mean, self.m2 = 0, 0.0, 0.0
+        self.count, self.mean, self.m2, self.cell_sum = 0, 0.0, 0.0, 0.0
         self.ray_bins = np.zeros((n_rays, b, n_masses)) if keep_rays else None
-
-    def quantities(self, cells):
-        """(rays, quantities, masses): every ray's bins, classes, cumulative edges and pairs, from the boxes."""
-        cells = np.asarray(cells, dtype=np.float32).astype(np.float64)
-        return np.matmul(cells.transpose(2, 0, 1), self.select).transpose(1, 2, 0)
 
     def add(self, batch, start, arrays):
         """Take one batch's ``arrays["kernel_cells"]`` (rays, cells, masses), rows ``start``... of the run."""
-        values = self.quantities(arrays["kernel_cells"])
-        self._add_to_histogram(values[:, :self.n_histogram])
+        from .kernels.histogram import batch_statistics
+
+        cells = np.asarray(arrays["kernel_cells"], dtype=np.float32).astype(np.float64)
+        # (quantities, masses, rays): each quantity's rays side by side for the reduction's one pass.
+        values = np.ascontiguousarray(np.matmul(cells.transpose(2, 0, 1), self.select).transpose(2, 0, 1))
+        mean, squares = np.empty(values.shape[:2]), np.empty(values.shape[:2])
+        # The slot of K is floor((log10(K / K_scale) - lowest) 64), written with log2.
+        per_log2 = _PER_DECADE * np.log10(2.0)
+        batch_statistics(values, per_log2, np.log2(self.scale) * per_log2 + _LOWEST * _PER_DECADE, _LOG_BINS,
+                         self.histogram, mean, squares)
         if self.ray_bins is not None:
-            self.ray_bins[start:start + len(values)] = values[:, :self.setup.n_bins] + self.background_bins
-        mean = values.mean(axis=0)
-        self.pending[batch] = (len(values), mean, ((values - mean) ** 2).sum(axis=0))
+            rows = len(cells)
+            self.ray_bins[start:start + rows] = values[:self.setup.n_bins].transpose(2, 0, 1) + self.background_bins
+        self.pending[batch] = (len(cells), mean, squares, cells.sum(axis=0))
         while self.next_batch in self.pending:
             self._merge(*self.pending.pop(self.next_batch))
             self.next_batch += 1
 
-    def _merge(self, count, mean, m2):
+    def _merge(self, count, mean, m2, cell_sum):
         total = self.count + count
         delta = mean - self.mean
         self.mean = self.mean + delta * (count / total)
         self.m2 = self.m2 + m2 + delta**2 * (self.count * count / total)
+        self.cell_sum = self.cell_sum + cell_sum
         self.count = total
-
-    def _add_to_histogram(self, values):
-        rows, quantities, masses = values.shape
-        with np.errstate(divide="ignore"):
-            position = (np.log10(values / self.scale) - _LOWEST) * _PER_DECADE
-        slot = np.where(values <= 0, 0, np.where(position < 0, 1, np.where(
-            position >= _LOG_BINS, _SLOTS - 1, 2 + np.floor(np.clip(position, 0, _LOG_BINS - 1)).astype(np.int64))))
-        flat = (np.arange(quantities)[:, None] * masses + np.arange(masses)[None, :])[None] * _SLOTS + slot
-        self.histogram += np.bincount(flat.ravel(), minlength=self.histogram.size).reshape(self.histogram.shape)
 
     def finish(self):
         """The :class:`BinnedKernels` of every batch added."""
@@ -236,18 +229,16 @@ class BinAccumulator:
             raise RuntimeError(f"binned statistics: batches {sorted(self.pending)} came without those before them")
         setup = self.setup
         b, c = setup.n_bins, setup.n_classes
-        parts = _split(self.mean + self.offset, b, c)
-        m2 = _split(self.m2 + np.zeros_like(self.offset), b, c)
-        percentiles = (histogram_percentiles(self.histogram, self.count, self.scale)
-                       + self.offset[None, :self.n_histogram])
+        mean = self.mean + self.offset
+        m2 = self.m2 + np.zeros_like(self.offset)
+        percentiles = histogram_percentiles(self.histogram, self.count, self.scale) + self.offset[None]
+        # Each (bin, class) pair's mean is linear in the cells': from their mean, with the background's pairs.
+        pairs = np.einsum("cm,mcq->qm", self.cell_sum / self.count, setup.pair_selector()).reshape(b, c, -1)
+        pairs[:, c - 1] += self.background_bins
         return BinnedKernels(setup.edges_z, setup.density_edges, setup.names, self.count,
-                             parts[0], m2[0], percentiles[:, :b], parts[1], m2[1], percentiles[:, b:b + c],
-                             parts[2], m2[2], percentiles[:, b + c:], parts[3].reshape(b, c, -1),
-                             self.background_bins, self.count - self.histogram[:b, :, 0], self.ray_bins)
-
-
-def _split(array, b, c):
-    return array[:b], array[b:b + c], array[b + c:2 * b + c + 1], array[2 * b + c + 1:]
+                             mean[:b], m2[:b], percentiles[:, :b], mean[b:b + c], m2[b:b + c], percentiles[:, b:b + c],
+                             mean[b + c:], m2[b + c:], percentiles[:, b + c:], pairs, self.background_bins,
+                             self.count - self.histogram[:b, :, 0], self.ray_bins)
 
 
 def histogram_percentiles(histogram, count, scale, q=PERCENTILES):

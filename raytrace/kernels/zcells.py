@@ -17,9 +17,11 @@ def add_to_cell(cell_kernel, inner_edges, k, opz, value):
     """cell_kernel[cell of (k, opz), k] += value; nothing where no cells are kept (zero rows)."""
     if cell_kernel.shape[0] == 0:
         return
-    width = inner_edges.shape[1]
-    j = 0
-    # ~20 edges per mass: a forward scan, its branch predictable, beats bisection here.
-    while j < width and inner_edges[k, j] <= opz:
-        j += 1
-    cell_kernel[j, k] += value
+    low, high = 0, inner_edges.shape[1]
+    while low < high:  # bisection: the number of inner edges <= opz
+        middle = (low + high) >> 1
+        if inner_edges[k, middle] <= opz:
+            low = middle + 1
+        else:
+            high = middle
+    cell_kernel[low, k] += value
