@@ -2,7 +2,7 @@
 
 Speed is ray length traced per second on one thread (numba threads pinned to 1),
 in cells of the box, so that engines with and without a step compare:
-(a) the exact engine (raytrace.engine.RayTracer: cell-by-cell crossing solver);
+(a) the exact engine (raytrace.tracing.sightlines.RayTracer: cell-by-cell crossing solver);
 (b) the engine of commit 8dc5f14 at step 0.5 cells (benchmarks/half_cell_engine.py:
     half-cell samples of ln n_e, finite-difference rates), the baseline;
 (c) the same half-cell calculation written the way a user would without the tool:
@@ -40,15 +40,16 @@ import numpy as np
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries, load_series
-from raytrace.constants import HBAR_EV_S
-from raytrace.engine import DEFAULT_PHOTON_ENERGY_EV, RayTracer, numba_threads
-from raytrace.errors import ProbedRangeWarning
-from raytrace.fields import lognormal_overdensity
-from raytrace.gridding import write_gridded_box
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.rays import draw_rays
+from raytrace.boxes.fields import lognormal_overdensity
+from raytrace.boxes.gridding import write_gridded_box
+from raytrace.core.errors import ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.constants import HBAR_EV_S
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, numba_threads
+from raytrace.tracing.rays import draw_rays
+from raytrace.tracing.sightlines import RayTracer
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from half_cell_engine import HalfCellTracer  # noqa: E402  (the baseline lives beside this file)
@@ -168,8 +169,8 @@ def bin_overhead(series, mass, plasma, rays, cells_per_ray, rounds, count=16):
     statistics (raytrace.binstats); by process CPU time (a loaded machine disturbs it least), best of
     ``rounds``, the two engines alternating. The reduction is timed on an accumulator already holding a
     batch, as in a run (its first batch also touches the histogram's pages)."""
-    from raytrace.binstats import BinAccumulator
-    from raytrace.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins
+    from raytrace.statistics.binstats import BinAccumulator
+    from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins
 
     bins = run_bins(count, DEFAULT_DENSITY_EDGES, mass, plasma, 1.0, 1.0, False)
     plain = RayTracer(series, mass, 1.0, 7, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology)

@@ -21,14 +21,14 @@ from scipy.interpolate import CubicSpline
 
 import raytrace
 import raytrace.cli as cli
-from raytrace.background import MeanPlasma
+from raytrace.physics.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.darklimits import added_photon_limit, radio_limit
-from raytrace.darkradiation import KernelProfile, converted_photons, kernel_profile
-from raytrace.darksources import DecayingDarkMatter, TabulatedSource
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-from raytrace.meancheck import MeanCheckWarning
+from raytrace.limits.darklimits import added_photon_limit, radio_limit
+from raytrace.limits.darkradiation import KernelProfile, converted_photons, kernel_profile
+from raytrace.physics.darksources import DecayingDarkMatter, TabulatedSource
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
 
 from reference_tracer import PLASMA_M2_PER_DENSITY
 

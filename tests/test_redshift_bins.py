@@ -16,14 +16,14 @@ from astropy.cosmology import Planck18
 from scipy import ndimage, optimize
 
 import raytrace
-from raytrace.background import MeanPlasma
+from raytrace.physics.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.engine import RayTracer
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.rays import draw_rays, plan_rays
-from raytrace.redshiftbins import bin_setup, density_edges
+from raytrace.tracing.sightlines import RayTracer
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.tracing.rays import draw_rays, plan_rays
+from raytrace.tracing.redshiftbins import bin_setup, density_edges
 
 from conftest import camb_background_for_planck18
 from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, run_crossings
@@ -155,7 +155,7 @@ def test_the_percentiles_over_rays_match_numpy_within_one_histogram_slot(demo_se
     np.testing.assert_allclose(bins.variance(), bins.ray_bins.var(axis=0, ddof=1), rtol=1e-12, atol=0)
 
 
-@pytest.mark.filterwarnings("ignore::raytrace.meancheck.MeanCheckWarning")  # 40 rays: the mean is not the point
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")  # 40 rays: the mean is not the point
 def test_batches_and_threads_give_the_same_bin_statistics(demo_series):
     mass = np.geomspace(1e-14, 2e-13, 4)
     runs = [raytrace.cast_sightlines(demo_series, mass, 40, z_max=2.0, z_boxes=2.0, seed=9, batch_size=size,

@@ -9,9 +9,9 @@ radio level as tables and a figure, and a sky map at one frequency (FITS).
 
 import numpy as np
 
-from ..runfile import add_option
-from .background import add_ionisation_arguments, ionisation_from_args
-from .limits import add_spectrum_arguments, check_confidence, flags_named
+from raytrace.cli.runfile import add_option
+from raytrace.cli.background import add_ionisation_arguments, ionisation_from_args
+from raytrace.cli.limits import add_spectrum_arguments, check_confidence, flags_named
 
 NAME = "dark-radiation"
 HELP = ("The photons a dark-photon background (decaying dark matter, or a table) becomes on the resonances of a "
@@ -20,7 +20,7 @@ HELP = ("The photons a dark-photon background (decaying dark matter, or a table)
 
 
 def add_arguments(parser):
-    from ..darkradiation import DEFAULT_TRANSVERSE_FRACTION
+    from raytrace.limits.darkradiation import DEFAULT_TRANSVERSE_FRACTION
 
     add_option(parser, "inputs.result", required=True, help="sightline result with redshift bins (raytrace "
                "sightlines), or sky result with shells (raytrace sky --shells)")
@@ -65,8 +65,8 @@ def add_arguments(parser):
 
 def source_from_args(args):
     """The decaying source of --source-mass/--lifetime/--fraction, or the table of --source-table."""
-    from ..darksources import DecayingDarkMatter, read_emission_table
-    from ..errors import InputError
+    from raytrace.physics.darksources import DecayingDarkMatter, read_emission_table
+    from raytrace.core.errors import InputError
 
     decay = [flag for flag, value in (("--source-mass", args.source_mass), ("--lifetime", args.lifetime))
              if value is not None]
@@ -80,8 +80,8 @@ def source_from_args(args):
 
 
 def level_from_args(args):
-    from ..darklimits import ARCADE2_EXCESS, RadioLevel
-    from ..errors import InputError
+    from raytrace.limits.darklimits import ARCADE2_EXCESS, RadioLevel
+    from raytrace.core.errors import InputError
 
     if args.radio_level is None:
         if args.radio_band is not None:
@@ -96,8 +96,8 @@ def level_from_args(args):
 def frequencies_from_args(args):
     import astropy.units as u
 
-    from ..errors import InputError
-    from ..units import parse_quantity
+    from raytrace.core.errors import InputError
+    from raytrace.physics.units import parse_quantity
 
     if args.frequency_range is None:
         return None
@@ -114,16 +114,17 @@ def frequencies_from_args(args):
 
 
 def run(args):
-    from ..background import MeanPlasma
-    from ..onepoint import load_mean_result
-    from ..provenance import check_outputs, output_set
-    from ..sky import FORMAT as SKY_FORMAT, SkyResult
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.statistics.results import load_mean_result
+    from raytrace.core.provenance import check_outputs, output_set
+    from raytrace.sky.maps import SkyResult
+    from raytrace.tracing.lattice import FORMAT as SKY_FORMAT
 
     check_confidence(args)
     paths = [*args.output, *args.limits, *(p for p in (args.plot, args.limits_plot, args.sky_map) if p)]
     check_outputs(paths, args.overwrite)  # every output, before any work
     if args.sky_map and (args.frequency is None or args.mass is None):
-        from ..errors import InputError
+        from raytrace.core.errors import InputError
 
         raise InputError("--sky-map: give --frequency and --mass (the map's frequency and dark-photon mass)")
     source, level, frequencies = source_from_args(args), level_from_args(args), frequencies_from_args(args)
@@ -150,10 +151,10 @@ def _format(path):
 
 def compute(args, result, source, level, frequencies, plasma):
     """The spectrum at the observer and the limits (monopole and radio level, today)."""
-    from ..darklimits import added_photon_limit, radio_limit
-    from ..darkradiation import converted_photons, kernel_profile
-    from ..limitset import LimitSet
-    from ..spectrum import read_spectrum
+    from raytrace.limits.darklimits import added_photon_limit, radio_limit
+    from raytrace.limits.darkradiation import converted_photons, kernel_profile
+    from raytrace.limits.limitset import LimitSet
+    from raytrace.limits.spectrum import read_spectrum
 
     profile = kernel_profile(result, plasma)
     photons = converted_photons(result, source, args.epsilon, args.transverse_fraction, args.observer_redshift,
@@ -165,8 +166,8 @@ def compute(args, result, source, level, frequencies, plasma):
 
 
 def write_outputs(args, result, source, photons, limits, level, plasma):
-    from ..darklimits import photon_table, plot_spectrum
-    from ..limitset import limit_table, plot_limits
+    from raytrace.limits.darklimits import photon_table, plot_spectrum
+    from raytrace.limits.limitset import limit_table, plot_limits
 
     for path in args.output:
         photon_table(path, photons, args.overwrite)
@@ -184,11 +185,11 @@ def write_sky_map(args, result, source, plasma):
     """The brightness temperature map at --frequency and --mass, as HEALPix FITS."""
     import healpy
 
-    from ..constants import H_PLANCK_EV_S
-    from ..darkradiation import converted_photon_map
-    from ..errors import InputError
-    from ..provenance import atomic_output
-    from ..units import photon_energy_eV
+    from raytrace.physics.constants import H_PLANCK_EV_S
+    from raytrace.limits.darkradiation import converted_photon_map
+    from raytrace.core.errors import InputError
+    from raytrace.core.provenance import atomic_output
+    from raytrace.physics.units import photon_energy_eV
 
     if not hasattr(result, "nside"):
         raise InputError(f"--sky-map: {args.result} is a sightline result; a map needs a sky result with shells")

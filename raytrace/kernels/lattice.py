@@ -15,8 +15,8 @@ import math
 import numba
 import numpy as np
 
-from .crossings import scratch, walk_segment
-from .geometry import copy_transform
+from raytrace.kernels.crossings import scratch, walk_segment
+from raytrace.kernels.geometry import copy_transform
 
 
 @numba.njit(cache=True, parallel=True)

@@ -11,7 +11,7 @@ kernel of each redshift cell (:mod:`.zcells`).
 import numba
 import numpy as np
 
-from .crossings import scratch, walk_segment
+from raytrace.kernels.crossings import scratch, walk_segment
 
 
 @numba.njit(cache=True, parallel=True)

@@ -13,8 +13,8 @@ import math
 import numba
 import numpy as np
 
-from .polynomial import airy_ai, evaluate
-from .zcells import add_to_cell
+from raytrace.kernels.polynomial import airy_ai, evaluate
+from raytrace.kernels.zcells import add_to_cell
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
 #: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
