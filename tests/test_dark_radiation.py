@@ -21,12 +21,12 @@ from scipy.interpolate import CubicSpline
 
 import raytrace
 import raytrace.cli as cli
-from raytrace.physics.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
+from raytrace.core.errors import InputError, ProbedRangeWarning
 from raytrace.limits.darklimits import added_photon_limit, radio_limit
 from raytrace.limits.darkradiation import KernelProfile, converted_photons, kernel_profile
+from raytrace.physics.background import MeanPlasma
 from raytrace.physics.darksources import DecayingDarkMatter, TabulatedSource
-from raytrace.core.errors import InputError, ProbedRangeWarning
 from raytrace.physics.ionisation import IonisationHistory
 from raytrace.statistics.meancheck import MeanCheckWarning
 

@@ -7,6 +7,7 @@ Ruderman 2020) estimated per bin in the test with scipy.ndimage.map_coordinates 
 of the independent tracer in tests/reference_tracer.py; numpy.percentile for the percentiles.
 """
 
+import re
 import warnings
 
 import astropy.constants as const
@@ -16,14 +17,14 @@ from astropy.cosmology import Planck18
 from scipy import ndimage, optimize
 
 import raytrace
-from raytrace.physics.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.tracing.sightlines import RayTracer
 from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
 from raytrace.statistics.meancheck import MeanCheckWarning
 from raytrace.tracing.rays import draw_rays, plan_rays
 from raytrace.tracing.redshiftbins import bin_setup, density_edges
+from raytrace.tracing.sightlines import RayTracer
 
 from conftest import camb_background_for_planck18
 from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, run_crossings
@@ -342,3 +343,38 @@ def test_shells_outside_the_run_are_one_line_errors(demo_series):
     assert "\n" not in str(caught.value) and "shells_z" in str(caught.value)
     with pytest.raises(InputError, match="D\\*"):
         raytrace.cast_sightlines(demo_series, [1e-14], 2, z_max=6.0, density_classes=[100.0, 1.0])
+
+
+# -- sky shells; the report's page -----------------------------------------------------------------------------
+
+
+def test_a_skys_shell_maps_add_up_to_its_maps_and_are_stored(demo_series, tmp_path):
+    mass = np.geomspace(1e-14, 3e-13, 4)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", MeanCheckWarning)  # 48 pixels: the mean is not the point here
+        sky = raytrace.cast_sky(demo_series, mass, 2, z_max=20.0, seed=4, rays_per_pixel=4, shells_z=[0, 1, 3, 6, 20])
+    # sum over shells = the pixel's kernel (PHYSICS.md section 11): measured 4e-16 relative; 1e-13 is rounding.
+    np.testing.assert_allclose(sky.kernel_shells.sum(axis=1), sky.kernel, rtol=1e-13, atol=0)
+    assert np.all(sky.kernel_shells[:, :3].sum(axis=1) > 0)  # the boxes' shells hold something
+    sky.save(tmp_path / "sky.h5")
+    loaded = raytrace.SkyResult.load(tmp_path / "sky.h5")
+    np.testing.assert_array_equal(loaded.kernel_shells, sky.kernel_shells)
+    np.testing.assert_array_equal(loaded.shell_map(mass[1], 2), sky.kernel_shells[:, 2, 1])
+    assert loaded.pdf_check.bins.shape == (4, 4)
+
+
+def test_the_reports_where_page_lists_the_class_shares(demo_bins_run, tmp_path):
+    from raytrace.report.page import make_report
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        paths = make_report(demo_bins_run, tmp_path / "report")
+    assert {"where_png", "where_pdf", "where_txt"} <= set(paths) and paths["where_png"].stat().st_size > 0
+    lines = [line for line in paths["where_txt"].read_text().splitlines() if " %" in line and "e-1" in line]
+    share = demo_bins_run.redshift_bins.class_share()
+    assert len(lines) == 5
+    for line in lines:
+        k = int(np.argmin(np.abs(demo_bins_run.mass_eV / float(line.split()[0]) - 1)))
+        shown = [float(value) for value in re.findall(r"([\d.]+) %", line)]
+        # Printed to one decimal of a percent; the shares themselves are tested against the reference tracer above.
+        np.testing.assert_allclose(shown, 100 * np.nan_to_num(share[:, k]), atol=0.051)
