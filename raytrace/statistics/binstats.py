@@ -178,7 +178,8 @@ class BinAccumulator:
         self.offset[:b] = background_bins
         self.offset[b + c - 1] = background_total  # the background's own class (no cell of the boxes is in it)
         self.offset[b + c:] = background_below
-        self.histogram = np.zeros((self.select.shape[2], n_masses, _SLOTS), dtype=np.int64)
+        # int32: half the cache lines of int64 (a run of 2^31 rays is far off)
+        self.histogram = np.zeros((self.select.shape[2], n_masses, _SLOTS), dtype=np.int32)
         self.pending, self.next_batch = {}, 0
         self.count, self.mean, self.m2, self.cell_sum = 0, 0.0, 0.0, 0.0
         self.ray_bins = np.zeros((n_rays, b, n_masses)) if keep_rays else None

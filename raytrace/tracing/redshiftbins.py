@@ -155,7 +155,7 @@ def run_bins(bins, classes, mass, plasma, z_boxes, z_max, include_background):
 
 def bin_setup(edges_z, d_edges, mass, plasma, z_boxes):
     """The :class:`BinSetup` of bin edges ``edges_z`` and class edges ``d_edges`` for the masses (eV)."""
-    per_mass = [_cell_bounds(edges_z, d_edges, m, plasma, z_boxes) for m in mass]
+    per_mass = [_cell_bounds(edges_z, z, z_boxes) for z in _class_redshifts(d_edges, mass, plasma, z_boxes)]
     width = max(bounds.size - 2 for bounds in per_mass)
     inner = np.full((mass.size, width), np.inf)
     cell_bin = np.full((mass.size, width + 1), -1, dtype=np.int64)
@@ -173,9 +173,18 @@ def bin_setup(edges_z, d_edges, mass, plasma, z_boxes):
     return BinSetup(edges_z, d_edges, class_names(d_edges), float(z_boxes), inner, cell_bin, cell_class, cell_top)
 
 
-def _cell_bounds(edges_z, d_edges, m, plasma, z_boxes):
-    """0, the bin edges and the class boundaries of mass ``m`` inside (0, z_boxes), and z_boxes, sorted."""
-    class_z = plasma.crossings(m / np.sqrt(d_edges), 0.0, z_boxes).redshift if d_edges.size else np.zeros(0)
+def _class_redshifts(d_edges, mass, plasma, z_boxes):
+    """Per mass, the redshifts inside (0, z_boxes) where D* equals a class edge: where the mean plasma mass is
+    m / sqrt(edge) (one search for every mass and edge)."""
+    if d_edges.size == 0:
+        return [np.zeros(0)] * mass.size
+    found = plasma.crossings((mass[:, None] / np.sqrt(d_edges)[None, :]).ravel(), 0.0, z_boxes)
+    owner = found.mass_index // d_edges.size
+    return [found.redshift[owner == k] for k in range(mass.size)]
+
+
+def _cell_bounds(edges_z, class_z, z_boxes):
+    """0, the bin edges and the class boundaries ``class_z`` inside (0, z_boxes), and z_boxes, sorted."""
     cuts = np.concatenate([edges_z, class_z])
     cuts = np.unique(cuts[(cuts > 0.0) & (cuts < z_boxes)])
     return np.concatenate([[0.0], cuts, [z_boxes]])
