@@ -5,6 +5,7 @@ import numpy as np
 from raytrace.cli.runfile import SKY_OPTIONS, add_flags, settings
 from raytrace.cli.sightlines import (
     _warn_spread,
+    bins_value,
     cluster_executor,
     load_boxes,
     masses,
@@ -80,6 +81,7 @@ def run_outputs(values):
             ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
             randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
             backend=backend, progress=True, executor=executor,
+            shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"),
         )
     spectra = limits = None
     if sky.kernel_splits is not None:

@@ -37,6 +37,7 @@ from raytrace.tracing.checks import (
     warn_outside_probed_range,
 )
 from raytrace.tracing.rays import CUBE_SYMMETRIES
+from raytrace.tracing.redshiftbins import bin_edges, bin_setup
 from raytrace.tracing.sightlines import Tracer
 from raytrace.tracing.splits import (SPLITS, check_rays_per_pixel, check_split_geometry, pixel_means, ray_directions,
                                      split_counts)
@@ -55,11 +56,6 @@ SKY_LAYOUT = {
 SPLIT_LAYOUT = {"kernel_splits": (lambda r, m: (r, SPLITS, m), np.float64)}
 
 
-def sky_layout(rays_per_pixel):
-    """The per-pixel arrays of a sky of ``rays_per_pixel`` rays per pixel."""
-    return {**SKY_LAYOUT, **SPLIT_LAYOUT} if split_counts(rays_per_pixel) else dict(SKY_LAYOUT)
-
-
 def _check_nside(nside):
     what = "nside (--nside)"
     expected = "a power of 2 (1, 2, 4, ..., 2^29)"
@@ -75,12 +71,23 @@ def observer_position(seed, box_size_cMpc):
     return rng.random(3) * box_size_cMpc
 
 
+def sky_layout(rays_per_pixel, shells=None):
+    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT`, with each split's map where a pixel has two or
+    more rays (:data:`SPLIT_LAYOUT`) and the maps of each shell where there are shells."""
+    layout = dict(SKY_LAYOUT, **(SPLIT_LAYOUT if split_counts(rays_per_pixel) else {}))
+    if shells is not None:
+        count = shells.n_bins
+        layout["kernel_shells_boxes"] = (lambda r, m: (r, count, m), np.float64)
+    return layout
+
+
 class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
-                 randomise_copies=True):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+                 randomise_copies=True, shells=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, shells)
+        self.shells = shells
         self.nside = nside
         self.rays_per_pixel = check_rays_per_pixel(rays_per_pixel)
         self.randomise = bool(randomise_copies)
@@ -105,19 +112,24 @@ class SkyTracer(Tracer):
                           directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
                           CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
-                          out["dispersion_measure_boxes"])
+                          out["dispersion_measure_boxes"], *self._cell_arguments(out))
         means = {}
         for name, values in out.items():
             means[name], splits = pixel_means(values, len(pixels), self.rays_per_pixel)
             if name == "kernel_boxes" and splits is not None:
                 means["kernel_splits"] = splits
+        if self.shells is not None:
+            means["kernel_shells_boxes"] = self.shells.cells_to_bins(means["kernel_cells"])
         return means
 
 
 def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
-    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order."""
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
+             **removed):
+    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order;
+    with ``shells_z``, its arrays hold each pixel's kernel per shell (``kernel_shells_boxes``) and its run
+    record the shells' edges (``shell_edges_z``)."""
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -128,13 +140,16 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1,
     if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
-    layout = sky_layout(rays_per_pixel)
-    npix = 12 * nside * nside
-    # The split maps hold as much again as the map's kernel arrays (a conservative count).
-    check_run_memory(npix * (2 if "kernel_splits" in layout else 1), mass.size,
-                     "nside and mass_eV (--nside, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
+    shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
+    layout = sky_layout(rays_per_pixel, shells)
+    # The split maps hold as much again as the map's kernel arrays (a conservative count); a shell's maps
+    # take a third of a pixel's 48 bytes per mass.
+    per_mass = (2 if "kernel_splits" in layout else 1) + (0 if shells is None else shells.n_bins / 3)
+    check_run_memory(12 * nside * nside, mass.size * per_mass, "nside, mass_eV and shells_z (--nside, "
+                     "--mass-count, --shells)")
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": rays_per_pixel,
         "split_rays": list(split_counts(rays_per_pixel)),
@@ -143,14 +158,14 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1,
         "randomise_copies": bool(randomise_copies),
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name,
+        "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
     }
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = SkyTracer(series, mass, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies)
+                       randomise_copies, shells)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order and stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, layout, FORMAT, npix, batch_pixels, n_jobs, executor,
-                         progress, unit="pixel", description="sky")
+    arrays = run_batches(tracer, backend, mass, run, layout, FORMAT, 12 * nside * nside, batch_pixels, n_jobs,
+                         executor, progress, unit="pixel", description="sky")
     return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)
