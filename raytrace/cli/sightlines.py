@@ -52,11 +52,12 @@ def bins_value(value, flag):
     return int(value)
 
 
-def observed_energy(values):
+def observed_energy(values, default=None):
+    """--frequency as a photon energy in eV; without it ``default`` (None: k T_0)."""
     from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     if values["output.frequency"] is None:
-        return CMB_PHOTON_ENERGY_EV
+        return CMB_PHOTON_ENERGY_EV if default is None else default
     return photon_energy_eV(values["output.frequency"], "output.frequency (--frequency)")
 
 

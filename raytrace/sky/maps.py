@@ -2,9 +2,12 @@
 
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
-its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
-angular power spectra (healpy.anafast), FITS maps, Mollweide plots, and the
-anisotropy limit on epsilon.
+the maps of two independent splits of each pixel's rays
+(:mod:`raytrace.tracing.splits`; their signal and noise: :mod:`raytrace.sky.spectra`),
+its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x, angular
+power spectra (healpy.anafast), FITS maps and Mollweide plots
+(:mod:`raytrace.sky.figures`). The limits on epsilon from its anisotropy are
+:mod:`raytrace.limits.anisotropy`'s.
 
 The light cone is traced by :mod:`raytrace.tracing.lattice`, which says how
 the copies of the boxes are laid out and transformed. The random transforms break the exact repetition a plain periodic
@@ -17,13 +20,13 @@ the map of one copy is no longer a fair sample of larger structures.
 import numpy as np
 
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, read_rows, save_arrays
+from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_arrays
 from raytrace.physics.conversion import anisotropy_per_probability
 from raytrace.statistics.meancheck import attach_pdf_check, read_pdf_check
 from raytrace.statistics.onepoint import PER_MASS
 from raytrace.statistics.results import KernelRows, tangent_arrays
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
-from raytrace.tracing.lattice import FORMAT, SKY_LAYOUT, trace_sky
+from raytrace.tracing.lattice import FORMAT, sky_layout, trace_sky
 from raytrace.tracing.redshiftbins import background_by_bin
 
 
@@ -37,10 +40,13 @@ class SkyResult(KernelRows):
     """Kernel maps of one observer's sky.
 
     ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
+    ``kernel_splits`` is (npix, 2, n_masses): the boxes' kernel of each independent
+    split of the pixels' rays (:mod:`raytrace.tracing.splits`), None for a sky of one
+    ray per pixel (or a file from before the splits): its noise is unknown.
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
-                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
+                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None, kernel_splits=None):
         self.mass_eV = np.asarray(mass_eV, dtype=float)
         self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         self.kernel_background = np.asarray(kernel_background, dtype=float)
@@ -49,6 +55,7 @@ class SkyResult(KernelRows):
         self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
+        self.kernel_splits = None if kernel_splits is None else np.asarray(kernel_splits, dtype=float)
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
@@ -87,6 +94,18 @@ class SkyResult(KernelRows):
     def npix(self):
         return self.kernel_boxes.shape[0]
 
+    @property
+    def split_rays(self):
+        """Rays per pixel of each split, () where the sky has no splits."""
+        return tuple(self.run.get("split_rays", ())) if self.kernel_splits is not None else ()
+
+    def require_splits(self, what="the signal"):
+        """Refuse, in one line, what needs the splits on a sky without them."""
+        if self.kernel_splits is None:
+            raise InputError(f"{what}: this sky has {self.run.get('rays_per_pixel', 1)} ray per pixel and no "
+                             "independent splits, so its map's sampling noise is unknown; cast it with "
+                             "rays_per_pixel >= 2 (--rays-per-pixel)")
+
     def mass_index(self, mass_eV):
         """Index of the grid mass nearest (in log) to ``mass_eV``."""
         if not (np.isfinite(mass_eV) and mass_eV > 0):
@@ -111,9 +130,8 @@ class SkyResult(KernelRows):
     def angular_power(self, sky_map, lmax=None):
         """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
 
-        The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
-        are not deconvolved: divide by healpy.pixwin(nside)**2 where healpy's window
-        files are installed (healpy fetches them over the network on first use).
+        The raw auto-spectrum: the pixel window not removed, the rays' sampling noise
+        included. The signal and noise spectra are :func:`raytrace.sky.spectra.sky_spectra`'s.
         """
         healpy = _healpy()
         ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
@@ -132,7 +150,9 @@ class SkyResult(KernelRows):
         return groups
 
     def save(self, path, overwrite=False):
-        layout = SKY_LAYOUT if self.kernel_shells_boxes is None else dict(SKY_LAYOUT, kernel_shells_boxes=None)
+        layout = sky_layout(self.run.get("rays_per_pixel", 1) if self.kernel_splits is not None else 1)
+        if self.kernel_shells_boxes is not None:
+            layout["kernel_shells_boxes"] = None
         return save_arrays(path, FORMAT, self.mass_eV, self.run, layout, self, overwrite,
                            {"dispersion_measure_background": self.dispersion_measure_background},
                            self.stored_groups())
@@ -140,11 +160,14 @@ class SkyResult(KernelRows):
     @classmethod
     def load(cls, path):
         with open_result(path, FORMAT, "sky") as handle:
+            splits = ("kernel_splits",) if "kernel_splits" in handle else ()
             run, mass, arrays, dm_background = read_rows(
-                handle, path, required=("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel"), sky=True)
+                handle, path, ROW_DATASETS + splits,
+                required=("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel"), sky=True)
             result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
                          arrays["dispersion_measure_boxes"], dm_background, run,
-                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"],
+                         kernel_splits=arrays.get("kernel_splits"))
             shells = read_group(handle, "redshift_shells", mass.size)
             if shells is not None:
                 result.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
@@ -169,20 +192,18 @@ class SkyResult(KernelRows):
                               owner=owner, shown_eV=shown_eV)
 
     def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
-        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
-
-        Colour-bar ticks in three significant digits (scientific notation where the
-        values need it); ``owner`` marks the file as in :func:`raytrace.core.figures.save_figure`.
-        """
-        from raytrace.core.figures import mollview, pyplot, save_figure
+        """Mollweide view of dT/T (mean removed) at ``epsilon`` (default 1e-7, said in the title) and
+        ``omega0_eV`` (default 143 GHz) (:func:`raytrace.sky.figures.draw_map`); with its signal and noise
+        spectra beside it: :func:`raytrace.report.skyfigures.sky_figure`."""
+        from raytrace.core.figures import pyplot, save_figure
+        from raytrace.physics.conversion import ANISOTROPY_FREQUENCY_GHZ
+        from raytrace.physics.units import photon_energy_of_ghz
+        from raytrace.sky.figures import draw_map, shown_epsilon
 
         plt = pyplot()
-        if epsilon is None:
-            values, label = self.kernel_map(mass_eV), "K [eV]"
-        else:
-            values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
-                 title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        epsilon, _ = shown_epsilon(None, 0, epsilon)
+        omega0 = photon_energy_of_ghz(ANISOTROPY_FREQUENCY_GHZ) if omega0_eV is None else omega0_eV
+        draw_map(self, self.mass_index(mass_eV), epsilon, omega0)
         figure = plt.gcf()
         if path is not None:
             save_figure(figure, path, overwrite=overwrite, owner=owner)
@@ -190,15 +211,18 @@ class SkyResult(KernelRows):
         return figure
 
 
-def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
              **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
-    ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
-    are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
-    result's pixel order. ``randomise_copies=False`` leaves every copy of the
+    ``rays_per_pixel`` (>= 2) rays per pixel, at random stratified positions inside
+    it, form two independent splits (:mod:`raytrace.tracing.splits`); the result keeps
+    the mean of all of them (the map) and each split's map, whose cross-spectrum
+    is free of the sampling noise (:mod:`raytrace.sky.spectra`). ``rays_per_pixel=1``
+    is a plain map, one ray at each pixel's centre, whose noise is unknown.
+    ``ordering`` is "RING" or "NESTED" for the result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
     Other arguments (``backend``, ``executor`` for a cluster) as in
     :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
@@ -219,7 +243,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
             values[...] = values[ring_to_nest]
     result = SkyResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], traced.dispersion_measure_background, traced.run,
-                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"],
+                       kernel_splits=arrays.get("kernel_splits"))
     edges = traced.run["shell_edges_z"]
     if edges is not None:
         run, plasma = traced.run, traced.plasma

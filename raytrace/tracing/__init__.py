@@ -5,7 +5,8 @@ HEALPix pixel): the kernel from the boxes, crossing counts, near-tangent events
 and dispersion measures, plus the homogeneous background's part. Modules:
 ``checks`` (the run checks the later stages share), ``rays`` (the ray plan and
 copy transforms), ``sightlines`` and ``lattice`` (random sightlines and the sky's
-light cone, driving the numba kernels of :mod:`raytrace.kernels`), ``batches``
+light cone, driving the numba kernels of :mod:`raytrace.kernels`), ``splits`` (a
+sky pixel's rays in two independent splits), ``batches``
 (rows in batches into a backend), ``backends`` (memory or checkpointed HDF5),
 ``cluster`` (batches on dask.distributed) and ``progress``.
 """

@@ -3,7 +3,9 @@
 In: a box series, a mass grid, nside, rays per pixel and z_max. Out: a
 :class:`~raytrace.tracing.batches.Traced` run: per-pixel means over each
 pixel's rays of the kernel from the boxes, crossings, near-tangent events and
-dispersion measure, in NESTED order, plus the homogeneous background's part.
+dispersion measure, and the boxes' kernel of each of the two independent splits
+of a pixel's rays (:mod:`raytrace.tracing.splits`), in NESTED order, plus the
+homogeneous background's part.
 
 The observer sits at a seeded random point of the lattice of box copies around
 it. Each copy, indexed by its integer position and by the snapshot serving its
@@ -13,8 +15,6 @@ transform per copy, since they are mixed sample by sample), so every ray through
 a copy sees the same structures and neighbouring directions are correlated as in
 a real sky.
 """
-
-import math
 
 import numpy as np
 
@@ -39,6 +39,8 @@ from raytrace.tracing.checks import (
 from raytrace.tracing.rays import CUBE_SYMMETRIES
 from raytrace.tracing.redshiftbins import bin_edges, bin_setup
 from raytrace.tracing.sightlines import Tracer
+from raytrace.tracing.splits import (SPLITS, check_rays_per_pixel, check_split_geometry, pixel_means, ray_directions,
+                                     split_counts)
 
 FORMAT = "raytrace-sky-2"
 ORDERINGS = ("RING", "NESTED")
@@ -50,6 +52,8 @@ SKY_LAYOUT = {
     "kernel_tangent": (lambda r, m: (r, m), np.float64),
     "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
 }
+#: With two or more rays per pixel: the boxes' kernel of each independent split.
+SPLIT_LAYOUT = {"kernel_splits": (lambda r, m: (r, SPLITS, m), np.float64)}
 
 
 def _check_nside(nside):
@@ -61,29 +65,20 @@ def _check_nside(nside):
     return nside
 
 
-def _sub_pixel_level(rays_per_pixel):
-    """rays_per_pixel = 4^k: the rays follow the centres of the pixels at nside * 2^k inside each pixel."""
-    rays_per_pixel = require_number(rays_per_pixel, "rays_per_pixel", whole=True, at_least=1,
-                                    expected="1, 4, 16, 64 ...")
-    level = round(math.log(rays_per_pixel, 4))
-    if 4**level != rays_per_pixel:
-        raise InputError(f"rays_per_pixel: expected a power of 4 (1, 4, 16, 64 ...) so the rays sit at the "
-                         f"centres of sub-pixels, got {rays_per_pixel}")
-    return level
-
-
 def observer_position(seed, box_size_cMpc):
     """The observer's seeded random point in copy (0, 0, 0) of the first box, in Mpc."""
     rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x0B5E]))
     return rng.random(3) * box_size_cMpc
 
 
-def sky_layout(shells):
-    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT`, with the maps of each shell where there are shells."""
-    if shells is None:
-        return SKY_LAYOUT
-    count = shells.n_bins
-    return dict(SKY_LAYOUT, kernel_shells_boxes=(lambda r, m: (r, count, m), np.float64))
+def sky_layout(rays_per_pixel, shells=None):
+    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT`, with each split's map where a pixel has two or
+    more rays (:data:`SPLIT_LAYOUT`) and the maps of each shell where there are shells."""
+    layout = dict(SKY_LAYOUT, **(SPLIT_LAYOUT if split_counts(rays_per_pixel) else {}))
+    if shells is not None:
+        count = shells.n_bins
+        layout["kernel_shells_boxes"] = (lambda r, m: (r, count, m), np.float64)
+    return layout
 
 
 class SkyTracer(Tracer):
@@ -94,7 +89,7 @@ class SkyTracer(Tracer):
         self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, shells)
         self.shells = shells
         self.nside = nside
-        self.level = _sub_pixel_level(rays_per_pixel)
+        self.rays_per_pixel = check_rays_per_pixel(rays_per_pixel)
         self.randomise = bool(randomise_copies)
         self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
         # Blended snapshots share a grid and are mixed point by point: they must see the
@@ -102,12 +97,9 @@ class SkyTracer(Tracer):
         self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
 
     def ray_directions(self, pixels):
-        """Unit vectors of the sub-pixel centres of NESTED ``pixels``, (n_pixels * 4^level, 3)."""
-        import healpy
-
-        children = (np.asarray(pixels, dtype=np.int64)[:, None] * 4**self.level
-                    + np.arange(4**self.level)[None, :]).ravel()
-        return np.ascontiguousarray(np.array(healpy.pix2vec(self.nside * 2**self.level, children, nest=True)).T)
+        """Unit vectors of the rays of NESTED ``pixels``, (n_pixels * rays_per_pixel, 3), per pixel split A's
+        then split B's (:func:`raytrace.tracing.splits.ray_directions`)."""
+        return ray_directions(self.nside, pixels, self.rays_per_pixel, self.seed)
 
     def trace(self, pixels):
         plan = self.plan
@@ -121,15 +113,17 @@ class SkyTracer(Tracer):
                           CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
                           out["dispersion_measure_boxes"], *self._cell_arguments(out))
-        per_pixel = 4**self.level
-        pixel = {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
-                 for name, values in out.items()}
+        means = {}
+        for name, values in out.items():
+            means[name], splits = pixel_means(values, len(pixels), self.rays_per_pixel)
+            if name == "kernel_boxes" and splits is not None:
+                means["kernel_splits"] = splits
         if self.shells is not None:
-            pixel["kernel_shells_boxes"] = self.shells.cells_to_bins(pixel["kernel_cells"])
-        return pixel
+            means["kernel_shells_boxes"] = self.shells.cells_to_bins(means["kernel_cells"])
+        return means
 
 
-def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
              **removed):
@@ -141,21 +135,24 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1,
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
     nside = _check_nside(nside)
-    level = _sub_pixel_level(rays_per_pixel)
+    rays_per_pixel = check_rays_per_pixel(rays_per_pixel)
+    check_split_geometry(nside, rays_per_pixel)
     if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
-    check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
-    npix = 12 * nside * nside
     edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
     shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
-    if shells is not None:  # a shell's maps take a third of a pixel's 48 bytes per mass
-        check_run_memory(npix, mass.size * (1 + shells.n_bins / 3), "nside, mass_eV and shells_z (--nside, "
-                         "--mass-count, --shells)")
+    layout = sky_layout(rays_per_pixel, shells)
+    # The split maps hold as much again as the map's kernel arrays (a conservative count); a shell's maps
+    # take a third of a pixel's 48 bytes per mass.
+    per_mass = (2 if "kernel_splits" in layout else 1) + (0 if shells is None else shells.n_bins / 3)
+    check_run_memory(12 * nside * nside, mass.size * per_mass, "nside, mass_eV and shells_z (--nside, "
+                     "--mass-count, --shells)")
     run = {
-        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
+        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": rays_per_pixel,
+        "split_rays": list(split_counts(rays_per_pixel)),
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
         "seed": int(seed), "photon_energy_eV": photon_energy_eV, "batch_pixels": int(batch_pixels),
         "randomise_copies": bool(randomise_copies),
@@ -164,12 +161,11 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1,
         "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
     }
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
+    tracer = SkyTracer(series, mass, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, plasma.cosmology,
                        randomise_copies, shells)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
-    # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
-    # stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, sky_layout(shells), FORMAT, npix, batch_pixels, n_jobs,
+    # Pixels are traced in NESTED order and stored in that order; the result reorders to RING on request.
+    arrays = run_batches(tracer, backend, mass, run, layout, FORMAT, 12 * nside * nside, batch_pixels, n_jobs,
                          executor, progress, unit="pixel", description="sky")
     return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)
