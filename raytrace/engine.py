@@ -23,6 +23,7 @@ from . import __version__
 from .background import MeanPlasma
 from .boxes import as_series
 from .constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from .devices import choose_device, device_record, device_tracer
 from .errors import InputError, ProbedRangeWarning, RaytraceWarning, require_number, require_positive_finite
 from .kernels.sightlines import trace_pieces
 from .progress import compile_notice, step_rows
@@ -157,6 +158,8 @@ class Tracer:
     """What sightline and sky tracers share: the ray plan, the mass targets, the
     kernel's constants, and (for a cluster) their state without the boxes."""
 
+    device = "cpu"  # where :meth:`trace` runs (raytrace.gputrace: "gpu")
+
     def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
         self.boxes = series.boxes
         self.blend = bool(series.blend)
@@ -186,6 +189,7 @@ class Tracer:
                 self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV)
 
     def _outputs(self, n_rows):
+        """The per-row output arrays, zero, in the order the kernels take them."""
         n_masses = self.mass2.size
         return {"kernel_boxes": np.zeros((n_rows, n_masses)),
                 "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
@@ -224,18 +228,26 @@ class RayTracer(Tracer):
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
         dispersion_measure_boxes, direction) for the given rays."""
-        plan = self.plan
-        ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
+        ray_direction, starts, directions = self._ray_geometry(ray_indices)
         out = self._outputs(len(ray_indices))
-        for span in range(plan.n_spans):
-            pieces = plan.pieces_of(span)
-            geometry = self.boxes[int(plan.span_box[span])]
-            trace_pieces(*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
-                         plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts,
-                         directions, *self._physics_arguments(), out["kernel_boxes"], out["crossings"],
-                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"])
+        for span in range(self.plan.n_spans):
+            trace_pieces(*self._piece_arguments(span, starts, directions), *out.values())
         out["direction"] = ray_direction
         return out
+
+    def _ray_geometry(self, ray_indices):
+        """(direction, per-segment starts, per-segment directions) of the given rays."""
+        ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), self.plan, self.n_cells)
+        return ray_direction, starts, directions
+
+    def _piece_arguments(self, span, starts, directions):
+        """The arguments of a sightline kernel for span ``span``, all but the outputs."""
+        plan = self.plan
+        pieces = plan.pieces_of(span)
+        geometry = self.boxes[int(plan.span_box[span])]
+        return (*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
+                plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts, directions,
+                *self._physics_arguments())
 
 
 @contextmanager
@@ -329,7 +341,7 @@ def check_no_other_options(function, options):
 
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                     batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu", **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Parameters
@@ -354,6 +366,9 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     photon_energy_eV : observed photon energy (eV) at which near-tangent pairs take
         their Airy form (PHYSICS.md section 9); every other crossing's kernel is
         frequency-free. Default: k T_0.
+    device : "cpu", "gpu" (CUDA through numba-cuda: the ``gpu`` extra) or "auto"
+        (a GPU where numba-cuda sees one, else the CPU); the run records the
+        device used. Per ray, a GPU's rows equal the CPU's to rounding.
     """
     check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
@@ -364,6 +379,7 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     check_run_memory(n_rays, mass.size, "n_rays and mass_eV (--rays, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    device, device_note = choose_device(device, executor)
     run = {
         "raytrace": __version__,
         "n_rays": int(n_rays),
@@ -378,9 +394,11 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         "boxes": [box.describe() for box in series.boxes],
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
+        **device_record(device, device_note),
     }
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
+    tracer, executor = device_tracer(device, "sightlines", RayTracer,
+                                     (series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology), executor)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,

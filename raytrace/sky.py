@@ -25,6 +25,7 @@ import numpy as np
 
 from . import __version__
 from .backends import MemoryBackend
+from .devices import choose_device, device_record, device_tracer
 from .engine import (DEFAULT_PHOTON_ENERGY_EV, Tracer, as_series, background_part, boxes_redshift_range,
                      check_background, check_masses, check_no_other_options, check_run_memory, check_seed,
                      check_trace_options, run_batches, warn_outside_probed_range)
@@ -104,25 +105,27 @@ class SkyTracer(Tracer):
         return np.ascontiguousarray(np.array(healpy.pix2vec(self.nside * 2**self.level, children, nest=True)).T)
 
     def trace(self, pixels):
-        plan = self.plan
         directions = self.ray_directions(pixels)
         out = self._outputs(directions.shape[0])
-        for span in range(plan.n_spans):
-            box = int(plan.span_box[span])
-            geometry = self.boxes[box]
-            trace_lattice(*self._span_arguments(span), float(plan.span_chi_a[span]), float(plan.span_chi_b[span]),
-                          directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
-                          CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
-                          out["crossings"], out["tangent_events"], out["kernel_tangent"],
-                          out["dispersion_measure_boxes"])
+        for span in range(self.plan.n_spans):
+            trace_lattice(*self._lattice_arguments(span, directions), *out.values())
         per_pixel = 4**self.level
         return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
                 for name, values in out.items()}
 
+    def _lattice_arguments(self, span, directions):
+        """The arguments of a lattice kernel for span ``span``, all but the outputs."""
+        plan = self.plan
+        box = int(plan.span_box[span])
+        return (*self._span_arguments(span), float(plan.span_chi_a[span]), float(plan.span_chi_b[span]), directions,
+                self.observer, float(self.boxes[box].box_size_cMpc), self.seed, self.copy_keys[box], CUBE_SYMMETRIES,
+                self.randomise, *self._physics_arguments())
+
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu",
+             **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
@@ -130,8 +133,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
     Other arguments (``backend``, ``executor`` for a cluster) as in
-    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
-    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
+    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
     """
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
@@ -145,6 +148,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    device, device_note = choose_device(device, executor)
     npix = 12 * nside * nside
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
@@ -153,11 +157,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
         "randomise_copies": bool(randomise_copies),
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name,
+        "cosmology": plasma.cosmology.name, **device_record(device, device_note),
     }
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies)
+    tracer, executor = device_tracer(device, "sky", SkyTracer, (series, mass, nside, 4**level, z_boxes, seed,
+                                     photon_energy_eV, plasma.cosmology, randomise_copies), executor)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
