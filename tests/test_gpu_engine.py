@@ -1,0 +1,283 @@
+"""The GPU path of the exact engine against the CPU engine, on machines without a GPU.
+
+The chain of references: the CPU engine is checked against the independent tracer
+written with scipy and astropy (tests/reference_tracer.py, in test_exact_crossings.py:
+every crossing, kernel and DM per ray); here the CUDA kernels must reproduce the CPU
+engine per ray and mass. They run under numba's CUDA simulator, which executes the
+kernels' Python source thread by thread; NUMBA_ENABLE_CUDASIM=1 must be set before
+numba.cuda is imported, so the simulated runs happen in one child process (this file
+run as a script) and the tests here compare what it wrote. The boxes are tiny (12^3)
+and the rays few: the simulator is slow.
+
+The same cases and comparison run on a real GPU in benchmarks/gpu_speed.py, which
+prints the largest per-mass difference there.
+"""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+import raytrace
+from raytrace.background import MeanPlasma
+from raytrace.boxes import Box, BoxSeries
+from raytrace.errors import InputError
+from raytrace.ionisation import IonisationHistory
+
+ROWS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent", "dispersion_measure_boxes")
+X_E = 1.08  # constant ionisation: no CAMB needed in the child or on a GPU machine (PHYSICS.md section 5)
+#: A GPU's kernels equal the CPU's to this fraction of the largest kernel of their mass (over the rows), and its
+#: DM to this relative difference. The simulator computes in the CPU's order with the CPU's IEEE operations and
+#: measured 0; a GPU contracts multiply-adds and has its own log, pow and sqrt (measured on an H200: see DEVELOPERS.md).
+KERNEL_RTOL = 1e-9
+DM_RTOL = 1e-12
+
+
+def plasma():
+    return MeanPlasma(None, IonisationHistory.constant(X_E))
+
+
+def random_series(background):
+    """Three 12^3 snapshots (z = 0, 0.01, 0.02) of lumpy fields with ~15 % empty cells, blended."""
+    n_com = float(background.mean_comoving_electron_density_cm3(0.0))
+    boxes = []
+    for i, z in enumerate((0.0, 0.01, 0.02)):
+        rng = np.random.default_rng(10 + i)
+        field = ndimage.gaussian_filter(rng.standard_normal((12,) * 3), 1.0, mode="wrap")
+        values = np.exp(field / field.std())
+        values /= values.mean()
+        values[values < 0.4] = 0.0
+        boxes.append(Box.from_array(values * n_com, "12 cMpc", z, quantity="n_e_comoving", plasma=background))
+    return BoxSeries(boxes, blend=True)
+
+
+def case_masses(series, uniform):
+    """Masses inside the boxes' range; log-uniform, or not (then the first count takes the binary search)."""
+    _, high = series.boxes[0].plasma_mass_range(0.0, 0.03)
+    mass = np.geomspace(high * 0.05, high * 0.9, 8)
+    return mass if uniform else np.sort(mass * np.linspace(0.93, 1.05, mass.size))
+
+
+def sightline_run(device, **options):
+    """8 sightlines to z = 0.03 (~11 box lengths: copy seams, two blended spans and an unblended one);
+    a high photon energy widens the Airy window, so near-tangent events are many."""
+    background = plasma()
+    series = random_series(background)
+    return raytrace.cast_sightlines(series, case_masses(series, True), options.pop("n_rays", 8), z_max=0.03,
+                                    include_background=False, plasma=background, seed=3, photon_energy_eV=1e-2,
+                                    device=device, **options)
+
+
+def sky_run(device):
+    """An nside-2 sky, 4 rays per pixel (averaged on the device), to z = 0.008 through the blended lattice."""
+    background = plasma()
+    series = random_series(background)
+    return raytrace.cast_sky(series, case_masses(series, False), 2, z_max=0.008, include_background=False,
+                             plasma=background, seed=3, rays_per_pixel=4, photon_energy_eV=1e-2, device=device)
+
+
+def largest_differences(cpu, gpu):
+    """Per quantity, the largest difference GPU - CPU over rows and masses: kernels as a fraction of the
+    largest CPU kernel of their mass, DM relative, counts in events."""
+    out = {}
+    for name in ROWS:
+        a, b = np.asarray(getattr(cpu, name), dtype=float), np.asarray(getattr(gpu, name), dtype=float)
+        if name.startswith("kernel"):
+            scale = np.max(np.abs(a), axis=0)
+            out[name] = float(np.max(np.abs(b - a)[:, scale > 0] / scale[scale > 0], initial=0.0))
+        elif name.startswith("dispersion"):
+            out[name] = float(np.max(np.abs(b - a) / np.abs(a)))
+        else:
+            out[name] = float(np.max(np.abs(b - a)))
+    return out
+
+
+def check_same_rows(cpu, gpu):
+    """The GPU's rows equal the CPU's: counts exactly, kernels and DM to KERNEL_RTOL and DM_RTOL."""
+    differences = largest_differences(cpu, gpu)
+    assert differences["crossings"] == 0 and differences["tangent_events"] == 0, differences
+    assert differences["kernel_boxes"] <= KERNEL_RTOL and differences["kernel_tangent"] <= KERNEL_RTOL, differences
+    assert differences["dispersion_measure_boxes"] <= DM_RTOL, differences
+    return differences
+
+
+# -- the child process: everything that needs the simulator -----------------------------------------------
+def simulate(path):
+    """Run the cases on the CPU and on the simulated GPU; write their rows and facts to ``path`` (npz)."""
+    import warnings
+
+    from raytrace import gputrace
+
+    warnings.simplefilter("ignore")  # the probed-range notes and numba's launch-size hints
+    runs = {"sightlines": [sightline_run(device) for device in ("cpu", "gpu")],
+            "sky": [sky_run(device) for device in ("cpu", "auto")]}
+    # Calls of 3 rays (3 a multiprocessor; the simulator has one) and batches of 5, against one call for all 8.
+    gputrace.RAYS_PER_MULTIPROCESSOR = 3
+    runs["small_calls"] = [runs["sightlines"][1], sightline_run("gpu", batch_size=5)]
+    arrays = {f"{case}_{which}_{name}": np.asarray(getattr(result, name))
+              for case, results in runs.items() for which, result in zip(("a", "b"), results) for name in ROWS}
+    facts = {f"{case}_{which}_run": result.run for case, results in runs.items()
+             for which, result in zip(("a", "b"), results)}
+    np.savez(path, facts=json.dumps(facts), **arrays)
+
+
+@pytest.fixture(scope="module")
+def simulated(tmp_path_factory):
+    path = tmp_path_factory.mktemp("simulated") / "rows.npz"
+    environment = dict(os.environ, NUMBA_ENABLE_CUDASIM="1")
+    environment["PYTHONPATH"] = os.pathsep.join([str(Path(raytrace.__file__).parents[1]),
+                                                 environment.get("PYTHONPATH", "")])
+    subprocess.run([sys.executable, __file__, "--simulate", str(path)], env=environment, check=True, timeout=900)
+    with np.load(path) as stored:
+        arrays = {name: stored[name] for name in stored.files if name != "facts"}
+        facts = json.loads(str(stored["facts"]))
+    return arrays, facts
+
+
+class Rows:
+    """One run's rows as read back from the child's file."""
+
+    def __init__(self, arrays, case, which):
+        for name in ROWS:
+            setattr(self, name, arrays[f"{case}_{which}_{name}"])
+
+
+def test_simulated_gpu_sightlines_reproduce_the_cpu_engine_per_ray_and_mass(simulated):
+    arrays, facts = simulated
+    cpu, gpu = Rows(arrays, "sightlines", "a"), Rows(arrays, "sightlines", "b")
+    assert facts["sightlines_b_run"]["device"] == "gpu" and facts["sightlines_a_run"]["device"] == "cpu"
+    # The case has what it is meant to test: empty cells, near-tangent events, crossings on most rays and masses.
+    assert cpu.tangent_events.sum() >= 10 and np.mean(cpu.crossings > 0) > 0.5
+    differences = check_same_rows(cpu, gpu)
+    assert max(differences.values()) == 0.0  # the simulator follows the CPU's arithmetic: measured 0
+
+
+def test_simulated_gpu_sky_reproduces_the_cpu_sky_at_nside_2(simulated):
+    arrays, facts = simulated
+    cpu, gpu = Rows(arrays, "sky", "a"), Rows(arrays, "sky", "b")
+    assert cpu.kernel_boxes.shape[0] == 48 and cpu.tangent_events.sum() >= 1
+    assert facts["sky_b_run"]["device"] == "gpu"  # auto took the simulated GPU
+    assert max(check_same_rows(cpu, gpu).values()) == 0.0
+
+
+def test_gpu_rows_do_not_depend_on_the_size_of_calls_or_batches(simulated):
+    arrays, _ = simulated
+    one_call, small_calls = Rows(arrays, "small_calls", "a"), Rows(arrays, "small_calls", "b")
+    for name in ROWS:
+        np.testing.assert_array_equal(getattr(small_calls, name), getattr(one_call, name))
+
+
+def test_the_comparison_fails_on_a_small_slip(simulated):
+    # The tolerances bite: a kernel 1e-8 of its mass's largest off, a DM 1e-11 off, one crossing more.
+    arrays, _ = simulated
+    cpu = Rows(arrays, "sightlines", "a")
+    for name, change in (("kernel_boxes", lambda a: a + 1e-8 * a.max(axis=0)),
+                         ("kernel_tangent", lambda a: a + 1e-8 * a.max(axis=0)),
+                         ("dispersion_measure_boxes", lambda a: a * (1 + 1e-11)),
+                         ("crossings", lambda a: a + (np.arange(a.size).reshape(a.shape) == 7))):
+        slipped = Rows(arrays, "sightlines", "a")
+        setattr(slipped, name, change(getattr(cpu, name)))
+        with pytest.raises(AssertionError):
+            check_same_rows(cpu, slipped)
+
+
+def test_the_streaming_walk_gives_the_table_walks_bits_on_the_cpu():
+    # The GPU walks a segment cell by cell (kernels/streaming.py), the CPU from tables: compiled for the
+    # CPU, the two must agree bit for bit on random segments through a box with empty cells, blended.
+    from raytrace.constants import HBAR_EV_S, C_MPC_S, PLASMA_MASS2_PER_DENSITY
+    from raytrace.kernels.crossings import scratch, walk_segment
+    from raytrace.kernels.streaming import stream_segment
+    from raytrace.rays import plan_rays
+
+    background = plasma()
+    series = random_series(background)
+    mass = case_masses(series, False)
+    targets = mass**2 / PLASMA_MASS2_PER_DENSITY
+    plan = plan_rays(background.cosmology, series, 0.03)
+    rng = np.random.default_rng(5)
+    lo, hi = series.boxes[0], series.boxes[1]
+    for segment in range(20):
+        start = rng.random(3) * 12
+        direction = rng.standard_normal(3)
+        direction /= np.linalg.norm(direction)
+        if segment % 5 == 0:
+            direction[segment % 3] = 0.0  # a ray parallel to a face: the traversal's infinite steps
+            direction /= np.linalg.norm(direction)
+        rows = []
+        for walk in (walk_segment, stream_segment):
+            kernel, count = np.zeros(mass.size), np.zeros(mass.size, np.int32)
+            tangent_count, tangent_kernel = np.zeros(mass.size, np.int32), np.zeros(mass.size)
+            cells, corners, points, marks = scratch(40.0)
+            dm = walk(lo.data, hi.data, lo.comoving_scale, hi.comoving_scale, segment % 2 == 0, 0.0, 0.01, start,
+                      direction, 30.0, 20.0, 1.0, plan.one_plus_z, plan.hubble_over_c, 1.0 / plan.chi_step, targets,
+                      np.log(targets), mass**2, False, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, 1e-2, cells,
+                      corners, points, marks, kernel, count, tangent_count, tangent_kernel)
+            rows.append((dm, kernel, count, tangent_count, tangent_kernel))
+        for table, streamed in zip(*rows):
+            np.testing.assert_array_equal(streamed, table)
+
+
+# -- choosing the device ---------------------------------------------------------------------------------------
+def small_box():
+    background = plasma()
+    return random_series(background).boxes[0], background
+
+
+def test_gpu_without_numba_cuda_is_one_line_naming_the_option_and_auto_takes_the_cpu(monkeypatch):
+    box, background = small_box()
+    mass = case_masses(BoxSeries([box]), True)
+    monkeypatch.setitem(sys.modules, "numba.cuda", None)  # as if numba-cuda were not installed
+    refused = r"^device \(--device\): 'gpu' asked for, but numba-cuda is not installed"
+    with pytest.raises(InputError, match=refused) as caught:
+        raytrace.cast_sightlines(box, mass, 2, z_max=0.01, include_background=False, plasma=background, device="gpu")
+    assert "\n" not in str(caught.value)
+    result = raytrace.cast_sightlines(box, mass, 2, z_max=0.01, include_background=False, plasma=background,
+                                      device="auto")
+    assert result.run["device"] == "cpu" and "numba-cuda is not installed" in result.run["device_note"]
+    with pytest.raises(InputError, match=r"^device \(--device\): expected one of cpu, gpu, auto"):
+        raytrace.cast_sightlines(box, mass, 2, z_max=0.01, include_background=False, plasma=background,
+                                 device="cuda")
+
+
+_NO_DEVICE_CHILD = """
+import json, sys
+import numpy as np
+import raytrace
+from raytrace.errors import InputError
+sys.path.insert(0, sys.argv[1])
+from test_gpu_engine import case_masses, small_box
+from raytrace.boxes import BoxSeries
+box, background = small_box()
+mass = case_masses(BoxSeries([box]), True)
+out = {}
+try:
+    raytrace.cast_sky(box, mass, 1, z_max=0.01, include_background=False, plasma=background, device="gpu")
+except InputError as error:
+    out["error"] = str(error)
+result = raytrace.cast_sky(box, mass, 1, z_max=0.01, include_background=False, plasma=background, device="auto")
+out["run"] = result.run
+print(json.dumps(out))
+"""
+
+
+def test_gpu_without_a_device_is_one_line_and_auto_takes_the_cpu():
+    # numba-cuda installed, but no GPU: CUDA_VISIBLE_DEVICES="" hides any the machine has.
+    pytest.importorskip("numba_cuda")
+    environment = {name: value for name, value in os.environ.items() if name != "NUMBA_ENABLE_CUDASIM"}
+    environment.update(CUDA_VISIBLE_DEVICES="", PYTHONPATH=os.pathsep.join(
+        [str(Path(raytrace.__file__).parents[1]), environment.get("PYTHONPATH", "")]))
+    child = subprocess.run([sys.executable, "-c", _NO_DEVICE_CHILD, str(Path(__file__).parent)], env=environment,
+                           capture_output=True, text=True, timeout=300, check=True)
+    out = json.loads(child.stdout.strip().splitlines()[-1])
+    assert out["error"].startswith("device (--device): 'gpu' asked for, but numba-cuda")
+    assert "\n" not in out["error"]
+    assert out["run"]["device"] == "cpu" and out["run"]["device_note"].startswith("auto: no GPU (numba-cuda")
+
+
+if __name__ == "__main__" and sys.argv[1:2] == ["--simulate"]:
+    simulate(sys.argv[2])
