@@ -40,9 +40,10 @@ import test_gpu_engine as cases  # noqa: E402  (the test rays and their comparis
 
 import raytrace  # noqa: E402
 from raytrace.boxes import Box, BoxSeries, load_series  # noqa: E402
-from raytrace.engine import DEFAULT_PHOTON_ENERGY_EV, RayTracer, numba_threads  # noqa: E402
-from raytrace.fields import lognormal_overdensity  # noqa: E402
-from raytrace.sky import SkyTracer  # noqa: E402
+from raytrace.boxes.fields import lognormal_overdensity  # noqa: E402
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, numba_threads  # noqa: E402
+from raytrace.tracing.lattice import SkyTracer  # noqa: E402
+from raytrace.tracing.sightlines import RayTracer  # noqa: E402
 
 START = time.perf_counter()
 
@@ -118,7 +119,7 @@ def register_caps(report, arguments, rays, per_ray, rate):
     """The sightline kernel compiled with fewer registers a thread (more threads resident, some spilled)."""
     from types import SimpleNamespace
 
-    from raytrace.gputrace import GpuRayTracer
+    from raytrace.tracing.sightlines import GpuRayTracer
     from raytrace.kernels import gpu
 
     tracer = GpuRayTracer(*arguments)
@@ -133,7 +134,8 @@ def register_caps(report, arguments, rays, per_ray, rate):
 
 def speed_on_a_large_box(report, cells, rays, nside):
     """Section 2: ``rays`` sightlines and an nside sky through one cells^3 box, 32 and 128 masses."""
-    from raytrace.gputrace import GpuRayTracer, GpuSkyTracer
+    from raytrace.tracing.lattice import GpuSkyTracer
+    from raytrace.tracing.sightlines import GpuRayTracer
 
     plasma = cases.plasma()
     overdensity = lognormal_overdensity(cells, 200.0, 0.0, seed=2024, smoothing_cells=1.0)
@@ -168,7 +170,7 @@ def speed_on_a_large_box(report, cells, rays, nside):
 
 def demo_sky(report, budget, gpu_rate, nside):
     """Section 3: the nside sky of the demo series, whole, or a part of it extrapolated."""
-    from raytrace import gputrace
+    from raytrace.tracing.lattice import GpuSkyTracer
 
     plasma = cases.plasma()
     series = load_series(sorted(str(p) for p in (REPOSITORY / "cubes_demo").glob("demo_z*.h5")))
@@ -192,7 +194,7 @@ def demo_sky(report, budget, gpu_rate, nside):
         return
     fraction = max(0.01, min(0.5, (left - 30.0) / estimate))
     pixels = np.arange(int(fraction * 12 * nside**2))
-    gpu_tracer = gputrace.GpuSkyTracer(series, mass, nside, rays_per_pixel, z_max, 2026, DEFAULT_PHOTON_ENERGY_EV,
+    gpu_tracer = GpuSkyTracer(series, mass, nside, rays_per_pixel, z_max, 2026, DEFAULT_PHOTON_ENERGY_EV,
                                        plasma.cosmology)
     seconds, _ = timed(lambda: gpu_tracer.trace(pixels))
     whole = seconds * 12 * nside**2 / pixels.size

@@ -14,7 +14,7 @@ In: a box series, a sorted mass grid (eV), the redshift the boxes serve, a seed,
 the step in cells and a cosmology. Out (``HalfCellTracer.trace``): per-ray
 kernel_boxes (eV), crossings and dispersion_measure_boxes (pc cm^-3). Ray i gets
 the same direction and per-segment copy transforms as in the new engine (both
-draw them with :func:`raytrace.rays.draw_rays` over the same segments), so the
+draw them with :func:`raytrace.tracing.rays.draw_rays` over the same segments), so the
 two engines sample the same field along the same lines.
 """
 
@@ -24,8 +24,8 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from raytrace.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
-from raytrace.rays import draw_rays
+from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+from raytrace.tracing.rays import draw_rays
 
 #: The old engine's floor on sampled densities, in units of the box mean (8dc5f14 engine.DENSITY_FLOOR).
 DENSITY_FLOOR = 1e-8

@@ -23,10 +23,10 @@ import warnings
 import numpy as np
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.fields import lognormal_overdensity
-from raytrace.onepoint import pdf_mean
+from raytrace.boxes.fields import lognormal_overdensity
+from raytrace.physics.background import MeanPlasma
+from raytrace.statistics.onepoint import pdf_mean
 
 REDSHIFTS = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)
 

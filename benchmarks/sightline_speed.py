@@ -2,7 +2,7 @@
 
 Speed is ray length traced per second on one thread (numba threads pinned to 1),
 in cells of the box, so that engines with and without a step compare:
-(a) the exact engine (raytrace.engine.RayTracer: cell-by-cell crossing solver);
+(a) the exact engine (raytrace.tracing.sightlines.RayTracer: cell-by-cell crossing solver);
 (b) the engine of commit 8dc5f14 at step 0.5 cells (benchmarks/half_cell_engine.py:
     half-cell samples of ln n_e, finite-difference rates), the baseline;
 (c) the same half-cell calculation written the way a user would without the tool:
@@ -39,15 +39,16 @@ import numpy as np
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries, load_series
-from raytrace.constants import HBAR_EV_S
-from raytrace.engine import DEFAULT_PHOTON_ENERGY_EV, RayTracer, numba_threads
-from raytrace.errors import ProbedRangeWarning
-from raytrace.fields import lognormal_overdensity
-from raytrace.gridding import write_gridded_box
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.rays import draw_rays
+from raytrace.boxes.fields import lognormal_overdensity
+from raytrace.boxes.gridding import write_gridded_box
+from raytrace.core.errors import ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.constants import HBAR_EV_S
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, numba_threads
+from raytrace.tracing.rays import draw_rays
+from raytrace.tracing.sightlines import RayTracer
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from half_cell_engine import HalfCellTracer  # noqa: E402  (the baseline lives beside this file)

@@ -23,12 +23,12 @@ from pathlib import Path
 import numpy as np
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import load_series
-from raytrace.engine import DEFAULT_PHOTON_ENERGY_EV
-from raytrace.errors import ProbedRangeWarning
-from raytrace.meancheck import MeanCheckWarning
-from raytrace.sky import SkyTracer
+from raytrace.core.errors import ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.tracing.lattice import SkyTracer
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 DEMO = str(REPOSITORY / "cubes_demo" / "demo_z*.h5")

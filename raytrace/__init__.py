@@ -1,14 +1,15 @@
 """raytrace: Monte Carlo sightlines through electron-density boxes for resonant
 photon -> dark-photon conversion.
 
-Data flow, one module per stage::
+Data flow, one package per stage (each imports only the ones above it here)::
 
-    boxes (boxes/, gridding.py)            HDF5 box files -> Box / BoxSeries
-      -> sightlines (rays.py)              random rays through stacked, transformed copies
-      -> crossings + per-ray kernel        kernels/ (numba), engine.py
-      -> statistics (results.py)           SightlineResult: mean, spread (files: resultfiles.py, backends.py)
-      -> sky maps (sky.py)                 HEALPix light cone, C_l, dT/T
-      -> limits (limits.py, spectrum.py)   epsilon_max(m) from the CMB spectrum and sky (tables, plots: limitset.py)
+    core/, physics/, kernels/         errors and outputs; constants, plasma mass, conversion, cosmology; numba
+    boxes/                            HDF5 box files, particles, yt -> Box / BoxSeries
+      -> tracing/                     rays through stacked, transformed copies -> per-row kernels
+      -> statistics/                  SightlineResult: mean, spread; one-point-PDF mean and the built-in check
+      -> sky/                         HEALPix light cone, C_l, dT/T, FITS
+      -> limits/                      epsilon_max(m) from the CMB spectrum and the isotropy of the CMB
+      -> report/, cli/                figures, the one-page report, the command line
 
 A notebook session::
 
@@ -26,35 +27,35 @@ __version__ = "0.1.0"
 # Public names and the module each lives in; imported on first use so that the
 # CLI's --help and light uses do not pay for numba, camb or healpy.
 _PUBLIC = {
-    "InputError": "errors",
-    "RaytraceError": "errors",
-    "Cosmology": "cosmology",
-    "IonisationHistory": "ionisation",
-    "MeanPlasma": "background",
-    "background_kernel": "background",
-    "plasma_mass": "plasma",
-    "electron_density": "plasma",
-    "crossing_kernel": "conversion",
-    "landau_zener_exponent": "conversion",
-    "crossing_probability": "conversion",
-    "combine_crossings": "conversion",
-    "probability_from_kernel": "conversion",
+    "InputError": "core.errors",
+    "RaytraceError": "core.errors",
+    "Cosmology": "physics.cosmology",
+    "IonisationHistory": "physics.ionisation",
+    "MeanPlasma": "physics.background",
+    "background_kernel": "physics.background",
+    "plasma_mass": "physics.plasma",
+    "electron_density": "physics.plasma",
+    "crossing_kernel": "physics.conversion",
+    "landau_zener_exponent": "physics.conversion",
+    "crossing_probability": "physics.conversion",
+    "combine_crossings": "physics.conversion",
+    "probability_from_kernel": "physics.conversion",
     "Box": "boxes",
     "BoxSeries": "boxes",
     "load_box": "boxes",
     "load_series": "boxes",
-    "grid_particles": "gridding",
-    "cast_sightlines": "engine",
-    "DaskExecutor": "cluster",
-    "SightlineResult": "results",
-    "cast_sky": "sky",
-    "SkyResult": "sky",
-    "spectral_limit": "limits",
-    "pdf_mean": "onepoint",
-    "PdfMean": "onepoint",
-    "degrade": "resolution",
-    "resolution_convergence": "resolution",
-    "read_spectrum": "spectrum",
+    "grid_particles": "boxes.gridding",
+    "cast_sightlines": "statistics.results",
+    "DaskExecutor": "tracing.cluster",
+    "SightlineResult": "statistics.results",
+    "cast_sky": "sky.maps",
+    "SkyResult": "sky.maps",
+    "spectral_limit": "limits.spectral",
+    "pdf_mean": "statistics.onepoint",
+    "PdfMean": "statistics.onepoint",
+    "degrade": "statistics.resolution",
+    "resolution_convergence": "statistics.resolution",
+    "read_spectrum": "limits.spectrum",
 }
 
 __all__ = sorted(_PUBLIC) + ["__version__"]

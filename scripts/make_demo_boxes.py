@@ -4,8 +4,8 @@ In: a seed, cells per side, a comoving box side in cMpc/h, redshifts and an
 output folder (see --help). Out: one HDF5 file per redshift, demo_z{z}.h5,
 whose dataset "electron_density" (float32, gzip with shuffle) holds the
 physical electron density in cm^-3 at that redshift: a log-normal overdensity
-(raytrace.fields.lognormal_overdensity, the same realisation at every
-redshift) times the mean nbar_e(z) of raytrace.background.MeanPlasma (Planck18,
+(raytrace.boxes.fields.lognormal_overdensity, the same realisation at every
+redshift) times the mean nbar_e(z) of raytrace.physics.background.MeanPlasma (Planck18,
 CAMB ionisation). The attributes quantity, box_size, box_size_unit, redshift,
 hubble_h and provenance (JSON) sit on the dataset and on the file root, so the
 box loader needs no flags.
@@ -21,10 +21,10 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from raytrace.background import MeanPlasma
-from raytrace.errors import InputError
-from raytrace.fields import GROWTH_Z_MAX, lognormal_overdensity
-from raytrace.provenance import atomic_output, check_writable, provenance_json
+from raytrace.boxes.fields import GROWTH_Z_MAX, lognormal_overdensity
+from raytrace.core.errors import InputError
+from raytrace.core.provenance import atomic_output, check_writable, provenance_json
+from raytrace.physics.background import MeanPlasma
 
 DEFAULT_SEED = 1991  # arbitrary, fixed so the shipped files can be remade bit for bit
 DEFAULT_REDSHIFTS = (0.0, 0.5, 1.0, 2.0, 3.0, 4.0, 6.0)

@@ -14,9 +14,9 @@ from astropy.cosmology import FlatLambdaCDM, Planck18
 from conftest import camb_background_for_planck18
 from scipy.optimize import brentq
 
-from raytrace.background import MeanPlasma, background_kernel
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma, background_kernel
+from raytrace.physics.ionisation import IonisationHistory
 
 HBAR_EV_S = const.hbar.to_value(u.eV * u.s)
 

@@ -13,12 +13,12 @@ from astropy.cosmology import Planck18
 
 import raytrace.boxes.meanings as boxes_meanings
 import raytrace.cli as cli
-from raytrace.background import MeanPlasma
 from raytrace.boxes import QUANTITIES, Box, load_box, load_series
 from raytrace.cli.box_options import load_run_series
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.runfile import BOX_OPTIONS, SIGHTLINE_OPTIONS, add_flags, settings
+from raytrace.cli.runfile import BOX_OPTIONS, SIGHTLINE_OPTIONS, add_flags, settings
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
 
 # Helium mass fraction of the test histories (stated here; Planck 2018's BBN value is about 0.245).
 HELIUM = 0.245
@@ -239,7 +239,7 @@ def test_warnings_for_a_box_1e8_too_dense_and_for_physical_data_declared_comovin
 
 
 def test_no_warning_for_the_demo_boxes(demo_dir):
-    # The demo boxes have the mean of raytrace.background.MeanPlasma() (cubes_demo/README.md).
+    # The demo boxes have the mean of raytrace.physics.background.MeanPlasma() (cubes_demo/README.md).
     for path in sorted(demo_dir.glob("demo_z*.h5")):
         assert messages(lambda: load_box(path)) == [], path
 

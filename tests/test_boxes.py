@@ -15,16 +15,15 @@ import numpy as np
 import pytest
 from astropy.cosmology import Planck18
 from astropy.cosmology import units as cu
+from reference_tracer import PLASMA_M2_PER_DENSITY
 from scipy import stats
 
 import raytrace.boxes.meanings as boxes_meanings
 import raytrace.boxes.values as boxes_values
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries, as_series, load_box, load_series
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-
-from reference_tracer import PLASMA_M2_PER_DENSITY
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
 
 HELIUM = 0.245
 X_E = 1.08
@@ -238,7 +237,7 @@ def test_reading_a_compressed_box_makes_no_second_full_copy(tmp_path, monkeypatc
     # a 64^3 box shows what a 512^3 one would.
     import functools
 
-    import raytrace.provenance as provenance
+    import raytrace.core.provenance as provenance
 
     monkeypatch.setattr(provenance, "file_checksum", functools.partial(provenance.file_checksum, chunk_bytes=1 << 16))
     n = 64

@@ -12,10 +12,9 @@ import astropy.units as u
 import h5py
 import numpy as np
 import pytest
+from reference_tracer import PLASMA_M2_PER_DENSITY
 
 import raytrace.cli as cli
-
-from reference_tracer import PLASMA_M2_PER_DENSITY
 
 H_SIM = 0.6766
 

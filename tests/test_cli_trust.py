@@ -9,9 +9,9 @@ on the same inputs, and the one-line, exit-2 error convention (DEVELOPERS.md).
 import numpy as np
 import pytest
 
-from raytrace.cli import main
-from raytrace.onepoint import PdfMean, pdf_mean
 from raytrace.boxes import load_series
+from raytrace.cli import main
+from raytrace.statistics.onepoint import PdfMean, pdf_mean
 
 
 def test_onepoint_mean_writes_what_the_library_computes(tmp_path, demo_dir, capsys):
@@ -34,7 +34,7 @@ def rays_file(path, demo_dir, n_rays, mass):
     import warnings
 
     from raytrace import cast_sightlines
-    from raytrace.meancheck import MeanCheckWarning
+    from raytrace.statistics.meancheck import MeanCheckWarning
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", MeanCheckWarning)  # a few rays: the check may find them too few

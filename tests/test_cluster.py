@@ -16,14 +16,15 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
+from conftest import write_lognormal_box  # noqa: E402
+
 import raytrace  # noqa: E402
-from raytrace.background import MeanPlasma  # noqa: E402
 from raytrace.boxes import Box, BoxSeries  # noqa: E402
 from raytrace.cli import main  # noqa: E402
-from raytrace.cluster import DaskExecutor  # noqa: E402
-from raytrace.errors import InputError  # noqa: E402
-from raytrace.ionisation import IonisationHistory  # noqa: E402
-from conftest import write_lognormal_box  # noqa: E402
+from raytrace.core.errors import InputError  # noqa: E402
+from raytrace.physics.background import MeanPlasma  # noqa: E402
+from raytrace.physics.ionisation import IonisationHistory  # noqa: E402
+from raytrace.tracing.cluster import DaskExecutor  # noqa: E402
 
 ARRAYS = ("kernel_boxes", "crossings", "dispersion_measure_boxes", "direction")
 MASS = np.geomspace(1e-14, 1e-13, 16)  # inside the boxes' plasma masses

@@ -29,14 +29,14 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from raytrace.conversion import (
+from raytrace.core.errors import InputError
+from raytrace.physics.conversion import (
     combine_crossings,
     crossing_kernel,
     crossing_probability,
     landau_zener_exponent,
     probability_from_kernel,
 )
-from raytrace.errors import InputError
 
 GAMMAS = [0.01, 0.03, 0.1, 0.3, 1.0, 2.0, 3.0]
 

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from astropy.cosmology import FlatLambdaCDM, LambdaCDM, Planck18
 
-from raytrace.constants import C_MPC_S, HBAR_EV_S
-from raytrace.cosmology import Z_TABLE_MAX, Cosmology
-from raytrace.errors import InputError
+from raytrace.core.errors import InputError
+from raytrace.physics.constants import C_MPC_S, HBAR_EV_S
+from raytrace.physics.cosmology import Z_TABLE_MAX, Cosmology
 
 REDSHIFTS = np.array([1e-4, 1e-3, 0.01, 0.1, 0.5, 1.0, 2.0, 3.0, 6.0, 10.0, 30.0, 100.0, 300.0, 1000.0, 1100.0])
 

@@ -11,15 +11,14 @@ import astropy.constants as const
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, one_point_pdf_mean  # exact CODATA (astropy)
 from scipy import integrate, ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-
-from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, one_point_pdf_mean  # exact CODATA (astropy)
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
 
 # 4 pi alpha / m_e in eV^2 per cm^-3 (PHYSICS.md section 1, whose NRL Plasma Formulary check value
 # 8.98 kHz sqrt(n_e / cm^-3) has 3 digits), from the exact CODATA constants in astropy.

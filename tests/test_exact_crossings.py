@@ -10,19 +10,18 @@ homogeneous kernel of PHYSICS.md section 3 with H(z) from astropy's Planck18.
 import numpy as np
 import pytest
 from astropy.cosmology import Planck18
+from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, one_point_pdf_mean, trace_run
 from scipy import ndimage, optimize, special
 from scipy.integrate import solve_ivp
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.kernels.tangent import XI_CUT, pair_kernel
+from raytrace.core.errors import InputError
 from raytrace.kernels.polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root, roots_in
-from raytrace.rays import draw_rays, plan_rays
-
-from reference_tracer import HBAR_EV_S, PLASMA_M2_PER_DENSITY, PlanckRedshift, one_point_pdf_mean, trace_run
+from raytrace.kernels.tangent import XI_CUT, pair_kernel
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.tracing.rays import draw_rays, plan_rays
 
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
 
@@ -383,7 +382,7 @@ def test_removed_options_are_refused_with_the_reason(plasma, removed):
 
 
 def test_a_run_file_that_still_sets_the_step_is_refused_with_the_reason(tmp_path):
-    from raytrace.runfile import SIGHTLINE_OPTIONS, read_run_file
+    from raytrace.cli.runfile import SIGHTLINE_OPTIONS, read_run_file
 
     path = tmp_path / "run.toml"
     path.write_text("[rays]\nstep_cells = 0.5\n")

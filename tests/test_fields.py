@@ -1,4 +1,4 @@
-"""Synthetic fields (raytrace/fields.py) and the shipped demo boxes (cubes_demo/).
+"""Synthetic fields (raytrace/boxes/fields.py) and the shipped demo boxes (cubes_demo/).
 
 References outside the project: CAMB's linear matter power and sigma_8(z)
 (camb.get_results with Planck 2018 parameters), astropy's Planck18 metadata,
@@ -17,9 +17,7 @@ from astropy.cosmology import FlatLambdaCDM, LambdaCDM, Planck18
 from scipy.integrate import quad
 from scipy.stats import skew
 
-from raytrace.background import MeanPlasma
-from raytrace.errors import InputError
-from raytrace.fields import (
+from raytrace.boxes.fields import (
     GROWTH_Z_MAX,
     PLANCK18_SIGMA8,
     PLANCK18_SPECTRAL_INDEX,
@@ -29,6 +27,8 @@ from raytrace.fields import (
     linear_power,
     lognormal_overdensity,
 )
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
 
 H = Planck18.h
 BOX_CMPC = 100.0 / H  # the demo box: 100 cMpc/h

@@ -24,10 +24,10 @@ import pytest
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
 
 ROWS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent", "dispersion_measure_boxes")
 X_E = 1.08  # constant ionisation: no CAMB needed in the child or on a GPU machine (PHYSICS.md section 5)
@@ -111,7 +111,7 @@ def simulate(path):
     """Run the cases on the CPU and on the simulated GPU; write their rows and facts to ``path`` (npz)."""
     import warnings
 
-    from raytrace import gputrace
+    from raytrace.tracing import gputrace
 
     warnings.simplefilter("ignore")  # the probed-range notes and numba's launch-size hints
     runs = {"sightlines": [sightline_run(device) for device in ("cpu", "gpu")],
@@ -189,10 +189,10 @@ def test_the_comparison_fails_on_a_small_slip(simulated):
 def test_the_streaming_walk_gives_the_table_walks_bits_on_the_cpu():
     # The GPU walks a segment cell by cell (kernels/streaming.py), the CPU from tables: compiled for the
     # CPU, the two must agree bit for bit on random segments through a box with empty cells, blended.
-    from raytrace.constants import HBAR_EV_S, C_MPC_S, PLASMA_MASS2_PER_DENSITY
+    from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
     from raytrace.kernels.crossings import scratch, walk_segment
     from raytrace.kernels.streaming import stream_segment
-    from raytrace.rays import plan_rays
+    from raytrace.tracing.rays import plan_rays
 
     background = plasma()
     series = random_series(background)
@@ -248,7 +248,7 @@ _NO_DEVICE_CHILD = """
 import json, sys
 import numpy as np
 import raytrace
-from raytrace.errors import InputError
+from raytrace.core.errors import InputError
 sys.path.insert(0, sys.argv[1])
 from test_gpu_engine import case_masses, small_box
 from raytrace.boxes import BoxSeries

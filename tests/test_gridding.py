@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from scipy import integrate
 
+from raytrace.boxes.gridding import grid_particles, write_gridded_box
 from raytrace.cli import grid as grid_cli
-from raytrace.errors import InputError
-from raytrace.gridding import grid_particles, write_gridded_box
+from raytrace.core.errors import InputError
 from raytrace.kernels.deposit import cubic_spline, deposit_cic, deposit_sph
 
 # Reference values straight from astropy (CODATA 2018, IAU 2015), not from raytrace.

@@ -3,7 +3,7 @@
 Property-based tests (hypothesis, derandomized, fixed example counts) feed random
 TOML run files, random bytes and random small HDF5 files to the run-file parser and
 the box loader; a handful of bad command lines per subcommand go through
-raytrace.cli.main. The reference is the error contract of raytrace.errors and the
+raytrace.cli.main. The reference is the error contract of raytrace.core.errors and the
 CLI: user input either works or raises InputError naming the file, dataset, key or
 flag, and the CLI turns that into one line and exit status 2 (argparse's own
 errors: its usage, then one error line, exit status 2).
@@ -23,16 +23,16 @@ from hypothesis import strategies as st
 
 try:
     import tomllib
-except ModuleNotFoundError:  # Python 3.10, as raytrace.runfile
+except ModuleNotFoundError:  # Python 3.10, as raytrace.cli.runfile
     import tomli as tomllib
 
 import raytrace.cli as cli
-from raytrace.background import MeanPlasma
 from raytrace.boxes import QUANTITIES, Box, load_box, load_series
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.runfile import SIGHTLINE_OPTIONS, NumberOrText, add_flags, read_run_file
-from raytrace.runfile import settings as run_settings
+from raytrace.cli.runfile import SIGHTLINE_OPTIONS, NumberOrText, add_flags, read_run_file
+from raytrace.cli.runfile import settings as run_settings
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
 
 # Derandomized, no example database: every run, here or in CI, tries the same examples.
 FUZZ = settings(max_examples=150, deadline=None, derandomize=True, database=None,

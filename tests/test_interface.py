@@ -15,15 +15,15 @@ import h5py
 import numpy as np
 import pytest
 from astropy.io import fits
+from conftest import write_lognormal_box
 
 import raytrace.cli as cli
-from raytrace import runfile
-from raytrace.errors import InputError
-from raytrace.plots import shown_mass_index
-from raytrace.results import FORMAT_VERSION, SightlineResult
-from raytrace.sky import SkyResult
-
-from conftest import write_lognormal_box
+from raytrace.cli import runfile
+from raytrace.core.errors import InputError
+from raytrace.core.resultfiles import FORMAT_VERSION
+from raytrace.report.plots import shown_mass_index
+from raytrace.sky.maps import SkyResult
+from raytrace.statistics.results import SightlineResult
 
 
 def subcommand_parsers():
@@ -365,7 +365,7 @@ def test_progress_steps_give_the_same_bits_as_whole_batches(boxes, capsys):
 
 
 def test_step_rows_are_a_few_per_thread_and_at_most_a_batch():
-    from raytrace.progress import step_rows
+    from raytrace.tracing.progress import step_rows
 
     assert step_rows(256, 2) == 8 and step_rows(256, 16) == 64 and step_rows(5, 16) == 5 and step_rows(1, 0) == 1
 
@@ -384,7 +384,7 @@ def test_report_warns_about_a_sky_from_other_boxes_and_takes_mass(runs, tmp_path
 def test_limit_plot_legend_lists_only_curves_it_draws():
     from matplotlib.figure import Figure
 
-    from raytrace.limits import sightline_limits
+    from raytrace.limits.spectral import sightline_limits
 
     mass = np.geomspace(1e-14, 1e-12, 8)
     with warnings.catch_warnings():
@@ -392,7 +392,7 @@ def test_limit_plot_legend_lists_only_curves_it_draws():
         # The homogeneous kernel is 0 everywhere: that curve has nothing to draw.
         limits = sightline_limits(mass, np.full(8, 1e5), background_kernel_eV=np.zeros(8))
     ax = Figure().add_subplot()
-    from raytrace.limits import plot_limits
+    from raytrace.limits.limitset import plot_limits
 
     plot_limits(ax, limits)
     labels = [text.get_text() for text in ax.get_legend().get_texts()]
@@ -411,7 +411,8 @@ def test_report_writes_only_the_formats_asked_for(runs, tmp_path, capsys):
 
 def test_every_dataset_a_run_fills_has_a_unit_and_description_entry():
     # The table the writers read: a dataset without an entry would stop the final save.
-    from raytrace.results import DATASETS, SIGHTLINE_LAYOUT
-    from raytrace.sky import SKY_LAYOUT
+    from raytrace.core.resultfiles import DATASETS
+    from raytrace.tracing.lattice import SKY_LAYOUT
+    from raytrace.tracing.sightlines import SIGHTLINE_LAYOUT
 
     assert set(SIGHTLINE_LAYOUT) | set(SKY_LAYOUT) | {"mass_eV", "kernel_background"} <= set(DATASETS)

@@ -14,8 +14,8 @@ from astropy.cosmology import FlatLambdaCDM, Planck18
 from conftest import camb_background_for_planck18
 from scipy.optimize import brentq
 
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
+from raytrace.core.errors import InputError
+from raytrace.physics.ionisation import IonisationHistory
 
 H = 0.6766
 # PHYSICS.md s.5: "Planck 2018 parameters (H0 67.66, ombh2 0.02242, omch2 0.11933, tau 0.0561)".

@@ -1,4 +1,4 @@
-"""Tests of raytrace.limits and the ``raytrace limits`` subcommand."""
+"""Tests of raytrace.limits.spectral and the ``raytrace limits`` subcommand."""
 
 import argparse
 import csv
@@ -16,20 +16,18 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from scipy import optimize, stats
 
-from raytrace.background import background_kernel
 from raytrace.cli import limits as limits_cli
-from raytrace.errors import InputError
-from raytrace.limits import (
-    LimitSet,
+from raytrace.core.errors import InputError
+from raytrace.limits.limitset import LimitSet, limit_table, plot_limits
+from raytrace.limits.spectral import (
     PoorFitWarning,
     UnconstrainedMassWarning,
     delta_chi2,
-    limit_table,
-    plot_limits,
     sightline_limits,
     spectral_limit,
 )
-from raytrace.spectrum import read_spectrum
+from raytrace.limits.spectrum import read_spectrum
+from raytrace.physics.background import background_kernel
 
 H_EV_S = const.h.to_value(u.eV * u.s)
 KERNEL_EV = 1.0e6  # a chosen kernel, of the size of the background's near m ~ 1e-13 eV

@@ -15,12 +15,13 @@ from astropy.cosmology import Planck18
 from scipy import integrate, optimize, special
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.meancheck import MeanCheck, MeanCheckWarning
-from raytrace.onepoint import FrozenBlendWarning, PdfMean, load_mean_result, pdf_mean
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheck, MeanCheckWarning
+from raytrace.statistics.onepoint import FrozenBlendWarning, PdfMean, pdf_mean
+from raytrace.statistics.results import load_mean_result
 
 # CODATA 2018: alpha, hbar c in eV cm, m_e c^2 in eV, hbar in eV s.
 ALPHA, HBAR_C_EV_CM, M_E_EV, HBAR_EV_S = 7.2973525693e-3, 1.973269804e-5, 510998.95, 6.582119569e-16
@@ -138,7 +139,7 @@ def test_pdf_mean_round_trips_and_feeds_limits(plasma, tmp_path, demo_dir):
     np.testing.assert_array_equal(again.kernel, result.kernel)
     with pytest.raises(ValueError, match="read-only"):
         result.kernel_boxes[0] = 1.0  # immutable arrays (read-only)
-    from raytrace.limits import result_kernels, sightline_limits
+    from raytrace.limits.spectral import result_kernels, sightline_limits
 
     kernels = result_kernels(again, plasma)
     assert kernels["spread_kernels_eV"] is None

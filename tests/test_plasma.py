@@ -13,8 +13,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 
-from raytrace.errors import InputError
-from raytrace.plasma import (
+from raytrace.core.errors import InputError
+from raytrace.physics.plasma import (
     electron_density,
     plasma_mass,
     plasma_mass2,

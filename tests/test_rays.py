@@ -10,9 +10,9 @@ import pytest
 from astropy.cosmology import Planck18
 
 from raytrace.boxes import Box, BoxSeries
-from raytrace.cosmology import Cosmology
-from raytrace.errors import InputError
-from raytrace.rays import CUBE_SYMMETRIES, draw_rays, plan_rays
+from raytrace.core.errors import InputError
+from raytrace.physics.cosmology import Cosmology
+from raytrace.tracing.rays import CUBE_SYMMETRIES, draw_rays, plan_rays
 
 
 def test_the_48_transforms_are_the_symmetries_of_the_cube():

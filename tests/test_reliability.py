@@ -19,11 +19,12 @@ import warnings
 import h5py
 import numpy as np
 import pytest
-
 from conftest import write_lognormal_box
+
 from raytrace.cli import main
-from raytrace.errors import InputError
-from raytrace.results import HDF5Backend, SightlineResult
+from raytrace.core.errors import InputError
+from raytrace.statistics.results import SightlineResult
+from raytrace.tracing.backends import HDF5Backend
 
 ARRAYS = ("kernel_boxes", "crossings", "dispersion_measure_boxes", "direction")
 N_RAYS, BATCH = 120, 10  # 12 batches
@@ -271,8 +272,8 @@ def test_a_box_rewritten_during_a_run_stops_it_naming_the_file(workspace, monkey
 @pytest.fixture(scope="module")
 def cluster_inputs(reference):
     import raytrace
-    from raytrace.background import MeanPlasma
-    from raytrace.ionisation import IonisationHistory
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.physics.ionisation import IonisationHistory
 
     files = [str(reference[0] / "box_z0.h5"), str(reference[0] / "box_z1.h5")]
     plasma = MeanPlasma(None, IonisationHistory.constant(1.08))
@@ -288,8 +289,8 @@ def test_workers_killed_early_and_mid_run_do_not_change_the_result(cluster_input
     import signal
 
     import raytrace
-    from raytrace.cluster import DaskExecutor
-    from raytrace.results import MemoryBackend
+    from raytrace.tracing.backends import MemoryBackend
+    from raytrace.tracing.cluster import DaskExecutor
 
     files, mass, arguments, serial = cluster_inputs
 
@@ -332,7 +333,7 @@ def test_workers_killed_early_and_mid_run_do_not_change_the_result(cluster_input
 def test_a_run_without_workers_waits_saying_so_and_goes_on_when_one_joins(cluster_inputs, monkeypatch):
     distributed = pytest.importorskip("distributed")
     import raytrace
-    from raytrace import cluster as cluster_module
+    from raytrace.tracing import cluster as cluster_module
 
     files, mass, arguments, serial = cluster_inputs
     monkeypatch.setattr(cluster_module, "_WAIT_S", 0.5)
@@ -460,8 +461,8 @@ def test_api_mistakes_are_input_errors(reference):
 
 def test_numpy_scalars_are_accepted_as_numbers(reference):
     import raytrace
-    from raytrace.background import MeanPlasma
-    from raytrace.ionisation import IonisationHistory
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.physics.ionisation import IonisationHistory
 
     series = raytrace.load_series([str(reference[0] / "box_z0.h5"), str(reference[0] / "box_z1.h5")])
     mass = np.geomspace(1e-14, 1e-13, 4)

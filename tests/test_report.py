@@ -1,8 +1,8 @@
-"""The one-page report (raytrace.report, ``raytrace report``), the limits CLI on a result file and the
+"""The one-page report (raytrace.report.page, ``raytrace report``), the limits CLI on a result file and the
 anisotropy-limit curve, against numbers computed here from the stored arrays.
 
 Sources: the result files' arrays read with h5py (not through SightlineResult / SkyResult); the
-spectral limit of raytrace.limits (itself checked in tests/test_limits.py against astropy's
+spectral limit of raytrace.limits.spectral (itself checked in tests/test_limits.py against astropy's
 blackbody and scipy); PHYSICS.md section 6 for dT/T = -epsilon^2 K / omega_0 (1 - e^-x)/x with
 x = h nu / (k T_0), T_0 = 2.72548 K (Fixsen 2009, ApJ 707, 916), k from astropy (CODATA 2018);
 healpy.anafast for C_l; numpy.percentile for the sightline quantiles.
@@ -23,14 +23,15 @@ import pytest
 from scipy import ndimage
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box
 from raytrace.cli import limits as limits_cli
 from raytrace.cli import report as report_cli
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.limits import UnconstrainedMassWarning, anisotropy_curve, spectral_limit
-from raytrace.report import DPI, PAGE_WIDTH_IN, histogram_masses, make_report
-from raytrace.sky import SkyResult
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.limits.anisotropy import anisotropy_curve
+from raytrace.limits.spectral import UnconstrainedMassWarning, spectral_limit
+from raytrace.physics.background import MeanPlasma
+from raytrace.report.page import DPI, PAGE_WIDTH_IN, histogram_masses, make_report
+from raytrace.sky.maps import SkyResult
 
 T0_K = 2.72548  # Fixsen 2009
 K_EV_PER_K = const.k_B.to_value(u.eV / u.K)

@@ -15,13 +15,13 @@ import sys
 import numpy as np
 import pytest
 
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box, BoxSeries
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.onepoint import pdf_mean
-from raytrace.resolution import degrade, resolution_convergence, richardson, write_convergence_page
-from raytrace.spread import hill_index, relative_spread_interval, sky_rms_interval, spread, top_share
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.onepoint import pdf_mean
+from raytrace.statistics.resolution import degrade, resolution_convergence, richardson, write_convergence_page
+from raytrace.statistics.spread import hill_index, relative_spread_interval, sky_rms_interval, spread, top_share
 
 
 @pytest.fixture(scope="module")
@@ -170,5 +170,5 @@ def test_sky_rms_interval_contains_the_map_rms():
     interval = sky_rms_interval(FakeSky(), 2.35e-4, n_resamples=200, seed=1)
     assert np.all(interval["rms_low"] < interval["rms"]) and np.all(interval["rms"] < interval["rms_high"])
     assert np.all(interval["epsilon_low"] < interval["epsilon_max"])
-    # epsilon_max = sqrt(threshold / rms) (raytrace.sky.anisotropy_limit's rule, PHYSICS.md s.6).
+    # epsilon_max = sqrt(threshold / rms) (raytrace.limits.anisotropy.anisotropy_limit's rule, PHYSICS.md s.6).
     np.testing.assert_allclose(interval["epsilon_max"], np.sqrt(1e-5 / interval["rms"]))

@@ -18,11 +18,12 @@ import time
 import h5py
 import numpy as np
 import pytest
-
 from conftest import write_lognormal_box
+
 from raytrace.cli import main
-from raytrace.provenance import file_checksum
-from raytrace.results import SIGHTLINE_LAYOUT, SightlineResult
+from raytrace.core.provenance import file_checksum
+from raytrace.statistics.results import SightlineResult
+from raytrace.tracing.sightlines import SIGHTLINE_LAYOUT
 
 N_RAYS = 1500  # one ray per batch: many batches, so kills land mid-run
 RUN_FILE = """\
@@ -75,7 +76,7 @@ def datasets(path):
         for box in run["boxes"]:
             box["path"] = os.path.basename(box["path"])
         arrays = {name: handle[name][...] for name in handle if isinstance(handle[name], h5py.Dataset)}
-        # The built-in check's one-point-PDF mean (raytrace.meancheck) is a group of its own.
+        # The built-in check's one-point-PDF mean (raytrace.statistics.meancheck) is a group of its own.
         arrays.update({f"pdf_mean/{name}": values[...] for name, values in handle["pdf_mean"].items()})
         return (arrays,
                 {"run": run, **{key: handle.attrs[key] for key in ("dispersion_measure_background", "complete")}})
@@ -153,14 +154,14 @@ def interrupt(run_file, output, after_batches=3):
     """Run the CLI in a subprocess that SIGKILLs itself right after its N-th checkpointed batch."""
     code = (
         "import os, signal, sys\n"
-        "from raytrace import results\n"
-        "write, written = results.HDF5Backend.write_batch, []\n"
+        "from raytrace.tracing import backends\n"
+        "write, written = backends.HDF5Backend.write_batch, []\n"
         "def write_then_die(self, *batch):\n"
         "    write(self, *batch)\n"
         "    written.append(1)\n"
         f"    if len(written) == {after_batches}:\n"
         "        os.kill(os.getpid(), signal.SIGKILL)\n"
-        "results.HDF5Backend.write_batch = write_then_die\n"
+        "backends.HDF5Backend.write_batch = write_then_die\n"
         "from raytrace.cli import main\n"
         "sys.exit(main(sys.argv[1:]))\n"
     )
@@ -206,7 +207,7 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
     def disk_full(handle, path):  # the last step inside the temporary file, after every dataset is written
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr("raytrace.resultfiles._check_finite", disk_full)
+    monkeypatch.setattr("raytrace.core.resultfiles._check_finite", disk_full)
     # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
     assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")

@@ -6,7 +6,7 @@ naming the probed range; no NaN or inf may reach a result file.
 
 References: numpy's isfinite; the NRL Plasma Formulary's plasma frequency,
 m = 3.71e-11 eV sqrt(n_e / cm^-3) (PHYSICS.md section 1), with n_e = (1+z)^3 times
-the comoving density (section 3); the result-file contract of raytrace.results
+the comoving density (section 3); the result-file contract of raytrace.statistics.results
 (a write that would hold NaN or inf raises InputError and leaves no file).
 """
 
@@ -17,12 +17,12 @@ import numpy as np
 import pytest
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import Box
-from raytrace.errors import InputError, ProbedRangeWarning
-from raytrace.ionisation import IonisationHistory
-from raytrace.results import SightlineResult
-from raytrace.sky import cast_sky
+from raytrace.core.errors import InputError, ProbedRangeWarning
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.sky.maps import cast_sky
+from raytrace.statistics.results import SightlineResult
 
 # Mean comoving electron density today, fully ionised (PHYSICS.md section 3).
 MEAN_DENSITY = 2.2e-7

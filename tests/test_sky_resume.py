@@ -7,12 +7,13 @@ import pytest
 from conftest import write_lognormal_box
 
 import raytrace
-from raytrace.background import MeanPlasma
 from raytrace.boxes import load_series
-from raytrace.errors import InputError
-from raytrace.ionisation import IonisationHistory
-from raytrace.results import HDF5Backend
-from raytrace.sky import SkyResult, SkyTracer
+from raytrace.core.errors import InputError
+from raytrace.physics.background import MeanPlasma
+from raytrace.physics.ionisation import IonisationHistory
+from raytrace.sky.maps import SkyResult
+from raytrace.tracing.backends import HDF5Backend
+from raytrace.tracing.lattice import SkyTracer
 
 MASS = np.geomspace(1.2e-14, 4e-14, 6)
 OPTIONS = dict(nside=4, z_max=0.5, include_background=False, batch_pixels=16, seed=3)

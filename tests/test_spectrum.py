@@ -1,4 +1,4 @@
-"""Tests of raytrace.spectrum: the shipped FIRAS table, the two readers, the Planck function."""
+"""Tests of raytrace.limits.spectrum: the shipped FIRAS table, the two readers, the Planck function."""
 
 from pathlib import Path
 
@@ -9,8 +9,8 @@ import pytest
 from astropy.modeling.models import BlackBody
 from conftest import shared_data_dir
 
-from raytrace.errors import InputError
-from raytrace.spectrum import Spectrum, planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
+from raytrace.core.errors import InputError
+from raytrace.limits.spectrum import Spectrum, planck_dT_MJy_sr, planck_MJy_sr, read_spectrum
 
 SHIPPED = Path(__file__).resolve().parents[1] / "raytrace" / "data" / "cmb_monopole_fixsen1996.txt"
 C_CM_S = const.c.to_value(u.cm / u.s)

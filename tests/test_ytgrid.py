@@ -1,4 +1,4 @@
-"""raytrace grid --yt (raytrace.ytgrid): datasets built in memory with yt's own loaders
+"""raytrace grid --yt (raytrace.boxes.ytgrid): datasets built in memory with yt's own loaders
 (uniform grid, two-level AMR, particles), so no download is needed."""
 
 import astropy.constants as const
@@ -9,8 +9,8 @@ yt = pytest.importorskip("yt", reason="the raytrace[yt] extra is not installed (
 
 import raytrace.cli as cli  # noqa: E402
 from raytrace.boxes import load_box  # noqa: E402
-from raytrace.constants import MPC_CM  # noqa: E402
-from raytrace.ytgrid import grid_yt  # noqa: E402
+from raytrace.boxes.ytgrid import grid_yt  # noqa: E402
+from raytrace.physics.constants import MPC_CM  # noqa: E402
 
 yt.set_log_level(50)
 M_P = const.m_p.to_value("g")  # CODATA via astropy
@@ -122,7 +122,7 @@ def test_grid_yt_on_the_command_line_writes_a_box_the_loader_reads(tmp_path, cap
     (dict(n_cells=8, ionised_fraction=1.0, electron_field="density"), "--yt-field"),
 ])
 def test_bad_yt_options_name_the_flag(arguments, named):
-    from raytrace.errors import InputError
+    from raytrace.core.errors import InputError
 
     ds, _ = uniform()
     with pytest.raises(InputError, match=named):

@@ -57,16 +57,16 @@ than a factor 10 from the expected cosmic mean, naming the unit slip it looks
 like, and when its own ionisation is more than a factor 2 from the history's.
 """
 
-from .box import PERCENTILES, Box, sample_cells
-from .meanings import (
+from raytrace.boxes.box import PERCENTILES, Box, sample_cells
+from raytrace.boxes.meanings import (
     MAX_IONISED_FRACTION,
     MEAN_DENSITY_REFERENCES,
     QUANTITIES,
     plausibility_warnings,
 )
-from .metadata import ALIASES, HEADER_GROUPS
-from .reading import load_box
-from .series import BoxSeries, as_series, load_boxes, load_series
+from raytrace.boxes.metadata import ALIASES, HEADER_GROUPS
+from raytrace.boxes.reading import load_box
+from raytrace.boxes.series import BoxSeries, as_series, load_boxes, load_series
 
 __all__ = [
     "ALIASES", "HEADER_GROUPS", "MAX_IONISED_FRACTION", "MEAN_DENSITY_REFERENCES", "PERCENTILES", "QUANTITIES",

@@ -2,10 +2,18 @@
 
 import numpy as np
 
-from ..errors import InputError
-from .fractions import add_one, apply_fraction, fraction_from
-from .meanings import _GAS, _check_quantity, _check_reference, _comoving_scale, warn_plausibility
-from .values import _check_dtype, _check_grid, _check_hubble, _check_redshift, _comoving_size, _length_from_argument
+from raytrace.boxes.fractions import add_one, apply_fraction, fraction_from
+from raytrace.boxes.meanings import _GAS, _check_quantity, _check_reference, _comoving_scale, warn_plausibility
+from raytrace.boxes.values import (
+    _check_dtype,
+    _check_grid,
+    _check_hubble,
+    _check_redshift,
+    _comoving_size,
+    _length_from_argument,
+    scan_density,
+)
+from raytrace.core.errors import InputError
 
 
 def box_from_array(cls, array, box_size, redshift, quantity, plasma, hubble_h, ionised_fraction, copy,
@@ -39,9 +47,7 @@ def box_from_array(cls, array, box_size, redshift, quantity, plasma, hubble_h, i
     else:
         data = np.ascontiguousarray(array, np.float32)
     constant, box_ionisation = apply_fraction(data, quantity, reference, fraction, plasma, where)
-    from .box import _scan
-
-    stats = _scan(data, where)
+    stats = scan_density(data, where)
     scale = _comoving_scale(quantity, z, constant, plasma, reference)
     if check:
         warn_plausibility(f"in-memory box at z = {z:g}", z, scale * stats["mean"] * (1.0 + z) ** 3, plasma,

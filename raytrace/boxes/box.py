@@ -12,55 +12,14 @@ from pathlib import Path
 
 import numpy as np
 
-from ..constants import PLASMA_MASS2_PER_DENSITY
-from ..errors import InputError
-from .meanings import QUANTITIES, _check_quantity, _plasma_or_default
-from .values import _check_grid, _check_redshift, _slabs
+from raytrace.boxes.arrays import box_from_array
+from raytrace.boxes.meanings import QUANTITIES, _check_quantity, _plasma_or_default
+from raytrace.boxes.values import _check_grid, _check_redshift
+from raytrace.core.errors import InputError
+from raytrace.physics.constants import PLASMA_MASS2_PER_DENSITY
 
 #: Percentiles of n_e / nbar_e that :meth:`Box.statistics` reports.
 PERCENTILES = (0.1, 1.0, 16.0, 50.0, 84.0, 99.0, 99.9)
-
-def _scan(data, where):
-    """Counts of bad values, then mean, maximum, smallest positive value and zero count.
-
-    Works slab by slab so that no full-size temporary is made.
-    """
-    not_finite = negative = zeros = 0
-    total, top, smallest_positive, lowest = 0.0, -np.inf, np.inf, np.inf
-    for start, stop in _slabs(data.shape[0]):
-        slab = np.asarray(data[start:stop])
-        finite = np.isfinite(slab)
-        not_finite += slab.size - int(np.count_nonzero(finite))
-        below = slab < 0
-        negative += int(np.count_nonzero(below))
-        if negative or not_finite:
-            if below.any():
-                lowest = min(lowest, float(slab[below].min()))
-            continue
-        zeros += slab.size - int(np.count_nonzero(slab))
-        total += float(np.sum(slab, dtype=np.float64))
-        top = max(top, float(slab.max()))
-        positive = slab[slab > 0]
-        if positive.size:
-            smallest_positive = min(smallest_positive, float(positive.min()))
-    size = data.size
-    if not_finite:
-        raise InputError(
-            f"{where}: {not_finite} of {size} values are NaN or inf (as float32); expected finite densities"
-        )
-    if negative:
-        raise InputError(
-            f"{where}: {negative} of {size} values are negative (lowest {lowest:g}); expected densities >= 0"
-        )
-    if zeros == size:
-        raise InputError(f"{where}: every value is zero; expected a density with non-zero cells")
-    return {
-        "mean": total / size,
-        "maximum": top,
-        "minimum_positive": smallest_positive,
-        "zero_cells": zeros,
-    }
-
 
 def sample_cells(data, max_cells=1 << 24, seed=0):
     """``(values, count)``: all cells, or a uniform random sample (with replacement) of ``max_cells`` of them."""
@@ -260,8 +219,6 @@ class Box:
         copied, when nothing needs converting: do not change it afterwards.
         ``check=True`` warns as :func:`raytrace.boxes.load_box` does.
         """
-        from .arrays import box_from_array
-
         return box_from_array(cls, array, box_size, redshift, quantity, plasma, hubble_h, ionised_fraction, copy,
                               neutral_fraction, helium_electrons, mean_density, check)
 

@@ -12,15 +12,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import InputError
-from .meanings import (
+from raytrace.boxes.meanings import (
     _GAS,
     _check_fraction_constant,
     _check_fraction_values,
     _plasma_or_default,
     electrons_per_ionised_hydrogen,
 )
-from .values import _slabs
+from raytrace.boxes.values import _slabs
+from raytrace.core.errors import InputError
 
 
 @dataclass(frozen=True)

@@ -20,9 +20,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from ..constants import PROTON_MASS_G
-from ..errors import InputError
-from .values import _number
+from raytrace.boxes.values import _number
+from raytrace.core.errors import InputError
+from raytrace.physics.constants import PROTON_MASS_G
 
 #: What a box's values can mean (the ``quantity`` attribute or argument).
 QUANTITIES = {
@@ -109,13 +109,13 @@ def electrons_per_ionised_hydrogen(helium_electrons, helium_fraction):
 
 @lru_cache(maxsize=1)
 def _default_plasma():
-    from ..background import MeanPlasma
+    from raytrace.physics.background import MeanPlasma
 
     return MeanPlasma()
 
 
 def _plasma_or_default(plasma):
-    from ..background import MeanPlasma
+    from raytrace.physics.background import MeanPlasma
 
     if plasma is None:
         return _default_plasma()

@@ -13,25 +13,33 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, require_path
-from .box import Box, _scan
-from .fractions import add_one, apply_fraction, fraction_from
-from .meanings import _GAS as _GAS_QUANTITIES
-from .meanings import QUANTITIES, _check_helium_electrons, _check_quantity, _check_reference, _comoving_scale
-from .meanings import _check_fraction_constant, warn_plausibility
-from .metadata import Metadata
-from .values import (
-    _Length,
+from raytrace.boxes.box import Box
+from raytrace.boxes.fractions import add_one, apply_fraction, fraction_from
+from raytrace.boxes.meanings import _GAS as _GAS_QUANTITIES
+from raytrace.boxes.meanings import (
+    QUANTITIES,
+    _check_fraction_constant,
+    _check_helium_electrons,
+    _check_quantity,
+    _check_reference,
+    _comoving_scale,
+    warn_plausibility,
+)
+from raytrace.boxes.metadata import Metadata
+from raytrace.boxes.values import (
     _check_dtype,
     _check_grid,
     _check_hubble,
     _check_redshift,
     _comoving_size,
+    _Length,
     _length_from_argument,
     _number,
     _parse_length_unit,
     _supply,
+    scan_density,
 )
+from raytrace.core.errors import InputError, require_path
 
 _FRACTION_DATASET_KEYS = ("ionised_fraction_dataset", "neutral_fraction_dataset")
 
@@ -288,7 +296,7 @@ def load_box(
     factor 10 from the expected mean, or its ionisation a factor 2 from the
     history's (meanings.plausibility_warnings).
     """
-    from ..provenance import file_checksum
+    from raytrace.core.provenance import file_checksum
 
     path = require_path(path, "path (--boxes)")
     sources = {}
@@ -308,7 +316,7 @@ def load_box(
         dataset_name, stored_dtype = node.name, str(node.dtype)
         provenance, _ = metadata.find("provenance")
         fraction_argument = _reopen_fraction(fraction)
-    stats = _scan(values, where)
+    stats = scan_density(values, where)
     if check and comoving_scale is None:
         warn_plausibility(f"{path}:{dataset_name}", z, scale * stats["mean"] * (1.0 + z) ** 3, plasma,
                           box_ionisation, h)

@@ -12,11 +12,11 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, require_path
-from .box import Box
-from .metadata import carries_redshift
-from .reading import _candidates, _open, load_box
-from .values import _number, _supply
+from raytrace.boxes.box import Box
+from raytrace.boxes.metadata import carries_redshift
+from raytrace.boxes.reading import _candidates, _open, load_box
+from raytrace.boxes.values import _number, _supply
+from raytrace.core.errors import InputError, require_path
 
 _GLOB_CHARACTERS = "*?["
 

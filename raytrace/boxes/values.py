@@ -10,8 +10,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..cosmology import Z_TABLE_MAX
-from ..errors import InputError
+from raytrace.core.errors import InputError
+from raytrace.physics.cosmology import Z_TABLE_MAX
 
 # Values per slab when scanning or multiplying a box piece by piece (16 MB of float32).
 _SLAB_VALUES = 1 << 22
@@ -164,3 +164,45 @@ def _check_dtype(dtype, where):
 
 def _supply(key):
     return f"--{key.replace('_', '-')} ({key}=...)"
+
+
+def scan_density(data, where):
+    """Counts of bad values, then mean, maximum, smallest positive value and zero count.
+
+    Works slab by slab so that no full-size temporary is made.
+    """
+    not_finite = negative = zeros = 0
+    total, top, smallest_positive, lowest = 0.0, -np.inf, np.inf, np.inf
+    for start, stop in _slabs(data.shape[0]):
+        slab = np.asarray(data[start:stop])
+        finite = np.isfinite(slab)
+        not_finite += slab.size - int(np.count_nonzero(finite))
+        below = slab < 0
+        negative += int(np.count_nonzero(below))
+        if negative or not_finite:
+            if below.any():
+                lowest = min(lowest, float(slab[below].min()))
+            continue
+        zeros += slab.size - int(np.count_nonzero(slab))
+        total += float(np.sum(slab, dtype=np.float64))
+        top = max(top, float(slab.max()))
+        positive = slab[slab > 0]
+        if positive.size:
+            smallest_positive = min(smallest_positive, float(positive.min()))
+    size = data.size
+    if not_finite:
+        raise InputError(
+            f"{where}: {not_finite} of {size} values are NaN or inf (as float32); expected finite densities"
+        )
+    if negative:
+        raise InputError(
+            f"{where}: {negative} of {size} values are negative (lowest {lowest:g}); expected densities >= 0"
+        )
+    if zeros == size:
+        raise InputError(f"{where}: every value is zero; expected a density with non-zero cells")
+    return {
+        "mean": total / size,
+        "maximum": top,
+        "minimum_positive": smallest_positive,
+        "zero_cells": zeros,
+    }

@@ -12,8 +12,8 @@ import sys
 import warnings
 from importlib import import_module
 
-from .. import __version__
-from ..errors import InputError
+from raytrace import __version__
+from raytrace.core.errors import InputError
 
 # Subcommand modules, in the order of the data flow.
 _SUBCOMMANDS = ("background", "inspect", "grid", "onepoint_mean", "sightlines", "sky", "spread_check",

@@ -4,7 +4,7 @@ from contextlib import contextmanager
 
 import numpy as np
 
-from ..runfile import VOCABULARY, add_deprecated, add_option
+from raytrace.cli.runfile import VOCABULARY, add_deprecated, add_option
 
 NAME = "background"
 HELP = "Conversion kernel K(m) and probability P(m) of the homogeneous universe (no boxes)."
@@ -61,7 +61,7 @@ _IONISATION_FLAGS = {
 @contextmanager
 def flags_named(flag_of_parameter):
     """An InputError inside that names a library parameter names the flag the user typed instead."""
-    from ..errors import InputError
+    from raytrace.core.errors import InputError
 
     try:
         yield
@@ -74,7 +74,7 @@ def flags_named(flag_of_parameter):
 
 
 def ionisation_from_args(args, cosmology=None):
-    from ..ionisation import DEFAULT_HELIUM_FRACTION, IonisationHistory
+    from raytrace.physics.ionisation import DEFAULT_HELIUM_FRACTION, IonisationHistory
 
     with flags_named(_IONISATION_FLAGS):
         if args.ionisation_table:
@@ -91,7 +91,7 @@ def ionisation_from_args(args, cosmology=None):
 def masses_from_args(args, required=True):
     """The masses of --mass-values or of --mass-min/--mass-max/--mass-count (the schema's defaults fill in);
     None when none is given and ``required`` is False."""
-    from ..errors import InputError, require_positive_finite
+    from raytrace.core.errors import InputError, require_positive_finite
 
     grid = (args.mass_min, args.mass_max, args.mass_count)
     if args.mass_values is not None:
@@ -109,10 +109,10 @@ def masses_from_args(args, required=True):
 
 
 def run(args):
-    from ..background import MeanPlasma
-    from ..conversion import probability_from_kernel
-    from ..errors import InputError
-    from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
+    from raytrace.core.errors import InputError
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.physics.conversion import probability_from_kernel
+    from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     masses = masses_from_args(args)
     if not (np.isfinite(args.epsilon) and args.epsilon >= 0):

@@ -1,13 +1,13 @@
 """The box options every subcommand that reads boxes shares (schema: runfile.BOX_OPTIONS).
 
-In: settings from :func:`raytrace.runfile.settings`. Out: keyword arguments for
+In: settings from :func:`raytrace.cli.runfile.settings`. Out: keyword arguments for
 :func:`raytrace.boxes.load_boxes`, or the loaded series. A listable option holds
 one value for every file or a list with one per file, in the files' order (globs
 expanded and sorted by name); ``boxes.dataset`` as a list names datasets looked
 up in every file.
 """
 
-from ..runfile import BOX_OPTIONS, require
+from raytrace.cli.runfile import BOX_OPTIONS, require
 
 #: Box options as keyword arguments of load_box (the run-file key without "boxes.").
 _LOAD_KEYS = ("dataset", "quantity", "box_size", "redshift", "hubble_h", "ionised_fraction", "neutral_fraction",
@@ -29,7 +29,7 @@ def box_arguments(values, plasma=None):
 
 def load_run_series(values, options, plasma=None):
     """The BoxSeries the [boxes] settings describe (boxes.files required)."""
-    from ..boxes import load_series
+    from raytrace.boxes import load_series
 
     files = require(values, "boxes.files", options)
     return load_series(files if len(files) > 1 else files[0], blend=values["boxes.blend"],

@@ -1,14 +1,14 @@
 """``raytrace grid``: gas particles in an HDF5 file, or any snapshot yt loads -> a box file of comoving n_e.
 
 In: the particle file, the names of its datasets and their units (flags below,
-the same options as raytrace.gridding.grid_particles); or ``--yt SNAPSHOT``
-(raytrace.ytgrid.grid_yt). Out: a box file that ``raytrace.load_box`` reads with
+the same options as raytrace.boxes.gridding.grid_particles); or ``--yt SNAPSHOT``
+(raytrace.boxes.ytgrid.grid_yt). Out: a box file that ``raytrace.load_box`` reads with
 no extra flags, and the electron totals before and after deposition on stdout.
 ``--ionised-fraction`` means electrons per hydrogen nucleus n_e / n_H, as in
 every other subcommand; hydrogen's own n_HII / n_H is ``--hydrogen-ionised-fraction``.
 """
 
-from ..runfile import add_option
+from raytrace.cli.runfile import add_option
 
 NAME = "grid"
 HELP = ("Deposit gas particles (CIC, or SPH cubic spline with smoothing lengths), or any snapshot yt loads "
@@ -120,7 +120,7 @@ def _warn_empty(density, written, cells):
 
     import numpy as np
 
-    from ..errors import RaytraceWarning
+    from raytrace.core.errors import RaytraceWarning
 
     empty = float(np.mean(np.asarray(density) <= 0))
     if empty > EMPTY_WARNING:
@@ -134,9 +134,9 @@ def run(args):
     import sys
     import time
 
-    from ..errors import InputError
-    from ..gridding import grid_particles
-    from ..provenance import check_writable
+    from raytrace.boxes.gridding import grid_particles
+    from raytrace.core.errors import InputError
+    from raytrace.core.provenance import check_writable
 
     check_writable(args.output, args.overwrite)  # before the work, not after it
     if (args.yt is None) == (args.particles is None):
@@ -183,8 +183,8 @@ def run(args):
 
 
 def _run_yt(args):
-    from ..errors import InputError
-    from ..ytgrid import grid_yt
+    from raytrace.boxes.ytgrid import grid_yt
+    from raytrace.core.errors import InputError
 
     for name in _PARTICLE_FILE_OPTIONS:
         if getattr(args, name) is not None:

@@ -19,15 +19,15 @@ HELP = "Describe box files: grid, size, redshift, meaning, n_e/nbar_e percentile
 
 def add_box_arguments(parser):
     """The box options (runfile.BOX_OPTIONS but the files) as flags; each overrides what the file says."""
-    from ..runfile import add_option_flags
-    from .box_options import BOX_SETTINGS
+    from raytrace.cli.box_options import BOX_SETTINGS
+    from raytrace.cli.runfile import add_option_flags
 
     add_option_flags(parser, BOX_SETTINGS)
 
 
 def add_arguments(parser):
-    from ..runfile import add_option
-    from .background import add_ionisation_arguments
+    from raytrace.cli.background import add_ionisation_arguments
+    from raytrace.cli.runfile import add_option
 
     parser.add_argument("files", nargs="+", metavar="FILE", help="HDF5 box files, or quoted glob patterns")
     add_box_arguments(parser)
@@ -40,14 +40,14 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..background import MeanPlasma
-    from ..boxes import BoxSeries, load_boxes
-    from ..cosmology import Z_TABLE_MAX
-    from ..errors import InputError
-    from ..provenance import check_writable
-    from ..runfile import settings
-    from .background import ionisation_from_args
-    from .box_options import BOX_SETTINGS, box_arguments
+    from raytrace.boxes import BoxSeries, load_boxes
+    from raytrace.cli.background import ionisation_from_args
+    from raytrace.cli.box_options import BOX_SETTINGS, box_arguments
+    from raytrace.cli.runfile import settings
+    from raytrace.core.errors import InputError
+    from raytrace.core.provenance import check_writable
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.physics.cosmology import Z_TABLE_MAX
 
     if args.z_max is not None and not (np.isfinite(args.z_max) and 0 < args.z_max <= Z_TABLE_MAX):
         raise InputError(f"--z-max: expected a redshift in (0, {Z_TABLE_MAX:g}], got {args.z_max!r}")
@@ -219,7 +219,7 @@ def _image_format(path):
 
     from matplotlib.figure import Figure
 
-    from ..errors import InputError
+    from raytrace.core.errors import InputError
 
     suffix = Path(path).suffix.lstrip(".").lower()
     supported = Figure().canvas.get_supported_filetypes()
@@ -234,8 +234,8 @@ def _image_format(path):
 def _plot(boxes, statistics, path, overwrite):
     from matplotlib.figure import Figure
 
-    from ..boxes import sample_cells
-    from ..provenance import atomic_output
+    from raytrace.boxes import sample_cells
+    from raytrace.core.provenance import atomic_output
 
     figure = Figure(figsize=(10.0, 3.8 * len(boxes)), layout="constrained")
     axes = figure.subplots(len(boxes), 2, squeeze=False)

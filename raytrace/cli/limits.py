@@ -15,9 +15,9 @@ curves, computes the limits and writes what the options ask for.
 
 import numpy as np
 
-from ..runfile import add_option
-from .background import add_ionisation_arguments, add_mass_arguments, ionisation_from_args, masses_from_args
-from .background import flags_named as background_flags_named
+from raytrace.cli.background import add_ionisation_arguments, add_mass_arguments, ionisation_from_args, masses_from_args
+from raytrace.cli.background import flags_named as background_flags_named
+from raytrace.cli.runfile import add_option
 
 NAME = "limits"
 HELP = "Upper limits on the kinetic mixing epsilon versus mass from the CMB spectrum (FIRAS by default)."
@@ -84,14 +84,14 @@ def flags_named():
 
 def photon_energy_from_args(args):
     """--frequency as a photon energy in eV (default k T_0)."""
-    from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
+    from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     return CMB_PHOTON_ENERGY_EV if args.frequency is None else photon_energy_eV(args.frequency, "--frequency")
 
 
 def anisotropy_from_args(args, sky):
     """The anisotropy curve of ``sky`` that --frequency, --isotropy-threshold and --cl-limits ask for."""
-    from ..limits import anisotropy_curve
+    from raytrace.limits.anisotropy import anisotropy_curve
 
     with flags_named():
         return anisotropy_curve(sky, photon_energy_from_args(args), threshold=args.isotropy_threshold,
@@ -100,7 +100,7 @@ def anisotropy_from_args(args, sky):
 
 def refuse_unused_sky_options(args, flags=("--frequency", "--isotropy-threshold", "--cl-limits")):
     """Options of the sky test given without --sky would be silently ignored: refuse them."""
-    from ..errors import InputError
+    from raytrace.core.errors import InputError
 
     if args.sky is None:
         given = [flag for flag in flags if getattr(args, flag.lstrip("-").replace("-", "_")) is not None]
@@ -110,7 +110,7 @@ def refuse_unused_sky_options(args, flags=("--frequency", "--isotropy-threshold"
 
 def check_confidence(args):
     """--confidence as the library checks it, the message naming the flag."""
-    from ..limits import delta_chi2
+    from raytrace.limits.spectral import delta_chi2
 
     with flags_named():
         delta_chi2(args.confidence)
@@ -125,12 +125,12 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
     CAMB with Planck 2018); ``extra_curves`` (e.g. an anisotropy limit on the
     same masses) join the set. ``args`` supplies --confidence, --spectrum,
     --fit-galaxy, --output, --plot and --overwrite, already checked by
-    :func:`run` before any work. Returns the :class:`~raytrace.limitset.LimitSet`.
+    :func:`run` before any work. Returns the :class:`~raytrace.limits.limitset.LimitSet`.
     """
-    from ..limits import sightline_limits
-    from ..limitset import limit_table, plot_limits
-    from ..provenance import output_set
-    from ..spectrum import read_spectrum
+    from raytrace.core.provenance import output_set
+    from raytrace.limits.limitset import limit_table, plot_limits
+    from raytrace.limits.spectral import sightline_limits
+    from raytrace.limits.spectrum import read_spectrum
 
     limits = sightline_limits(
         mass_eV, mean_kernel_eV, spread_kernels_eV, background_kernel_eV=background_kernel_eV,
@@ -148,13 +148,13 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
 
 
 def run(args):
-    from ..background import MeanPlasma
-    from ..crosscheck import warn_differences
-    from ..errors import InputError
-    from ..limits import result_kernels
-    from ..limitset import same_mass_grid
-    from ..onepoint import load_mean_result
-    from ..sky import SkyResult
+    from raytrace.core.errors import InputError
+    from raytrace.limits.limitset import same_mass_grid
+    from raytrace.limits.spectral import result_kernels
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.report.crosscheck import warn_differences
+    from raytrace.sky.maps import SkyResult
+    from raytrace.statistics.results import load_mean_result
 
     check_confidence(args)
     refuse_unused_sky_options(args)
@@ -193,7 +193,7 @@ def run(args):
 
 def _check_outputs(args):
     """Refuse, before any work is done, outputs that exist, are folders, or cannot be made."""
-    from ..provenance import check_outputs
+    from raytrace.core.provenance import check_outputs
 
     args.output = [path for path in args.output if path]  # '' switches the table off
     flags = ["--output"] * len(args.output) + (["--plot"] if args.plot else [])

@@ -1,6 +1,6 @@
 """``raytrace onepoint-mean``: <K>(m) straight from the boxes' one-point PDF, no rays (a fast mode)."""
 
-from ..runfile import ONEPOINT_OPTIONS, add_flags, settings
+from raytrace.cli.runfile import ONEPOINT_OPTIONS, add_flags, settings
 
 NAME = "onepoint-mean"
 HELP = ("The mean conversion kernel <K>(m) from the one-point density PDF of the boxes' interpolated field "
@@ -12,9 +12,9 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..onepoint import pdf_mean
-    from ..provenance import output_set
-    from .sightlines import load_boxes, masses, output_paths
+    from raytrace.cli.sightlines import load_boxes, masses, output_paths
+    from raytrace.core.provenance import output_set
+    from raytrace.statistics.onepoint import pdf_mean
 
     values = settings(args, ONEPOINT_OPTIONS)
     overwrite = values["output.overwrite"]
@@ -37,9 +37,9 @@ def run(args):
         if output:
             result.save(output, overwrite=overwrite)
         if plot:
-            from ..plots import _pyplot, save_figure
+            from raytrace.core.figures import pyplot, save_figure
 
-            plt = _pyplot()
+            plt = pyplot()
             figure, ax = plt.subplots(figsize=(6.4, 4.4))
             ax.loglog(result.mass_eV, result.kernel, label="boxes + background")
             ax.loglog(result.mass_eV, result.kernel_boxes, ls=":", label="boxes")

@@ -2,13 +2,19 @@
 
 In: a sightline result file, optionally a sky result, epsilon with a photon
 frequency, a spectrum table and the confidence level. Out: STEM.png, STEM.pdf
-and STEM.txt (:func:`raytrace.report.make_report`); the paths on stdout.
+and STEM.txt (:func:`raytrace.report.page.make_report`); the paths on stdout.
 """
 
-from ..runfile import add_option
-from .background import add_ionisation_arguments, ionisation_from_args
-from .limits import (add_sky_arguments, add_spectrum_arguments, check_confidence, flags_named, photon_energy_from_args,
-                     refuse_unused_sky_options)
+from raytrace.cli.background import add_ionisation_arguments, ionisation_from_args
+from raytrace.cli.limits import (
+    add_sky_arguments,
+    add_spectrum_arguments,
+    check_confidence,
+    flags_named,
+    photon_energy_from_args,
+    refuse_unused_sky_options,
+)
+from raytrace.cli.runfile import add_option
 
 NAME = "report"
 HELP = ("One page (PNG and PDF) and a text summary of a sightline run: the kernel and its spread, "
@@ -32,10 +38,10 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..background import MeanPlasma
-    from ..provenance import check_writable
-    from ..report import KINDS, make_report
-    from ..spectrum import read_spectrum
+    from raytrace.core.provenance import check_writable
+    from raytrace.limits.spectrum import read_spectrum
+    from raytrace.physics.background import MeanPlasma
+    from raytrace.report.page import KINDS, make_report
 
     check_confidence(args)
     # --frequency is also the photon energy of P with --epsilon.

@@ -1,6 +1,6 @@
 """``raytrace resolution-check``: how <K>(m) changes as the boxes are degraded, and its extrapolation."""
 
-from ..runfile import RESOLUTION_OPTIONS, add_flags, require, settings
+from raytrace.cli.runfile import RESOLUTION_OPTIONS, add_flags, require, settings
 
 NAME = "resolution-check"
 HELP = ("Degrade every box by 2, 4 ... (electrons conserved), compute the one-point-PDF mean at each "
@@ -12,10 +12,10 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..errors import InputError
-    from ..provenance import check_writable
-    from ..resolution import resolution_convergence, write_convergence_page
-    from .sightlines import load_boxes, masses
+    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.core.errors import InputError
+    from raytrace.core.provenance import check_writable
+    from raytrace.statistics.resolution import resolution_convergence, write_convergence_page
 
     values = settings(args, RESOLUTION_OPTIONS)
     stem = require(values, "output.report", RESOLUTION_OPTIONS)

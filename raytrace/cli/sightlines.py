@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from ..errors import InputError
-from ..runfile import SIGHTLINE_OPTIONS, VOCABULARY, add_flags, settings
+from raytrace.cli.runfile import SIGHTLINE_OPTIONS, VOCABULARY, add_flags, settings
+from raytrace.core.errors import InputError
 
 NAME = "sightlines"
 HELP = ("Cast random sightlines through stacked, rotated copies of the boxes; write the per-ray "
@@ -16,13 +16,13 @@ def add_arguments(parser):
 
 def load_boxes(values):
     """The box series a run file's [boxes] section describes."""
-    from .box_options import load_run_series
+    from raytrace.cli.box_options import load_run_series
 
     return load_run_series(values, SIGHTLINE_OPTIONS)
 
 
 def masses(values):
-    from ..engine import check_run_memory
+    from raytrace.tracing.checks import check_run_memory
 
     low, high, count = values["masses.min_eV"], values["masses.max_eV"], values["masses.count"]
     if not low < high and count > 1:
@@ -32,7 +32,7 @@ def masses(values):
 
 
 def observed_energy(values):
-    from ..units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
+    from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     if values["output.frequency"] is None:
         return CMB_PHOTON_ENERGY_EV
@@ -48,7 +48,7 @@ def cluster_executor(values):
         if values["rays.workers"] is not None:
             raise InputError("--workers (TOML rays.workers): sizes a local cluster; add --scheduler local")
         return nullcontext()
-    from ..cluster import DaskExecutor
+    from raytrace.tracing.cluster import DaskExecutor
 
     # On the workers, --jobs is the numba threads of each task.
     return DaskExecutor(scheduler, workers=values["rays.workers"], numba_threads=values["rays.jobs"])
@@ -69,17 +69,17 @@ def output_paths(values, keys):
 
     Refuses a --resume of a finished result, outputs that exist (without
     --overwrite), cannot be made or repeat a path, files marked by another run
-    (:func:`raytrace.companions.check_outputs`), and a figure name without a known format.
+    (:func:`raytrace.core.companions.check_outputs`), and a figure name without a known format.
     """
-    from ..companions import check_outputs
+    from raytrace.core.companions import check_outputs
 
     if values["output.path"] and values.get("output.resume"):
-        from ..backends import HDF5Backend
+        from raytrace.tracing.backends import HDF5Backend
 
         HDF5Backend(values["output.path"], resume=True).refuse_if_finished()
     check_outputs([(values[key], _flag(key)) for key in keys], values["output.overwrite"], values["output.path"])
     if values.get("output.plot"):
-        from ..plots import check_figure_path
+        from raytrace.core.figures import check_figure_path
 
         check_figure_path(values["output.plot"], _flag("output.plot"))
     return [values[key] for key in keys if values[key]]
@@ -90,7 +90,7 @@ def _flag(key):
 
 
 def run(args):
-    from ..provenance import output_set
+    from raytrace.core.provenance import output_set
 
     values = settings(args, SIGHTLINE_OPTIONS)
     output = values["output.path"]
@@ -109,9 +109,9 @@ def run(args):
 
 def run_outputs(values, output, plot):
     """Trace, print the summary and write the outputs (inside the run's output set)."""
-    from ..companions import owner_name
-    from ..engine import cast_sightlines
-    from ..backends import HDF5Backend, MemoryBackend
+    from raytrace.core.companions import owner_name
+    from raytrace.statistics.results import cast_sightlines
+    from raytrace.tracing.backends import HDF5Backend, MemoryBackend
 
     series = load_boxes(values)
     mass = masses(values)
@@ -128,9 +128,10 @@ def run_outputs(values, output, plot):
         )
     print_summary(result, values["output.epsilon"], omega0)
     if plot:
-        from ..plots import _pyplot, kernel_bands, save_figure
+        from raytrace.core.figures import pyplot, save_figure
+        from raytrace.report.plots import kernel_bands
 
-        plt = _pyplot()
+        plt = pyplot()
         figure, ax = plt.subplots(figsize=(6.4, 4.4))
         kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
         save_figure(figure, plot, overwrite=values["output.overwrite"], owner=owner_name(output))
@@ -138,7 +139,7 @@ def run_outputs(values, output, plot):
 
 
 def print_summary(result, epsilon, omega0):
-    from ..spread import robust_spread, top_share
+    from raytrace.statistics.spread import robust_spread, top_share
 
     mean, error = result.mean(), result.standard_error()
     q16, q84 = result.percentiles((16.0, 84.0))
@@ -175,7 +176,7 @@ def _warn_spread(result):
     """Warn, naming the masses, where the top 1 % of rows carry more than half the variance."""
     import warnings
 
-    from ..spread import TOP_SHARE_WARNING, top_share
+    from raytrace.statistics.spread import TOP_SHARE_WARNING, top_share
 
     if result.kernel.shape[0] < 2:
         return

@@ -2,9 +2,16 @@
 
 import numpy as np
 
-from ..runfile import SKY_OPTIONS, add_flags, settings
-from .sightlines import (_warn_spread, cluster_executor, load_boxes, masses, note_without_outputs, observed_energy,
-                         output_paths)
+from raytrace.cli.runfile import SKY_OPTIONS, add_flags, settings
+from raytrace.cli.sightlines import (
+    _warn_spread,
+    cluster_executor,
+    load_boxes,
+    masses,
+    note_without_outputs,
+    observed_energy,
+    output_paths,
+)
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
 
@@ -18,7 +25,7 @@ def add_arguments(parser):
 
 
 def run(args):
-    from ..provenance import output_set
+    from raytrace.core.provenance import output_set
 
     values = settings(args, SKY_OPTIONS)
     keys = ("output.path", "output.fits", "output.plot")
@@ -37,7 +44,7 @@ def run(args):
 
 def check_fits_path(path):
     """A FITS map needs a FITS name: healpy and other readers go by the suffix."""
-    from ..errors import InputError
+    from raytrace.core.errors import InputError
 
     if not str(path).lower().endswith(FITS_SUFFIXES):
         raise InputError(f"--fits (TOML output.fits): {path}: expected a FITS file name ending in "
@@ -46,10 +53,11 @@ def check_fits_path(path):
 
 def run_outputs(values):
     """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
-    from ..companions import owner_name
-    from ..plots import shown_mass_index
-    from ..backends import HDF5Backend, MemoryBackend
-    from ..sky import anisotropy_limit, cast_sky, read_cl_limits
+    from raytrace.core.companions import owner_name
+    from raytrace.limits.anisotropy import anisotropy_limit, read_cl_limits
+    from raytrace.report.plots import shown_mass_index
+    from raytrace.sky.maps import cast_sky
+    from raytrace.tracing.backends import HDF5Backend, MemoryBackend
 
     overwrite = values["output.overwrite"]
     output = values["output.path"]
@@ -83,7 +91,7 @@ def run_outputs(values):
 
 
 def print_summary(sky, limit, threshold, omega0, shown):
-    from ..spread import robust_spread, sky_rms_interval
+    from raytrace.statistics.spread import robust_spread, sky_rms_interval
 
     mean = sky.kernel.mean(axis=0)
     rms = sky.kernel.std(axis=0)

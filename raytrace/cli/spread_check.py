@@ -6,7 +6,7 @@ HELP = ("Bootstrap intervals of std/mean (and, for a sky, of the dT/T rms and th
 
 
 def add_arguments(parser):
-    from ..runfile import add_option
+    from raytrace.cli.runfile import add_option
 
     parser.add_argument("result", metavar="RESULT.h5", help="sightline or sky result file")
     parser.add_argument("--resamples", type=int, default=1000, metavar="N", help="bootstrap resamples (default: 1000)")
@@ -21,9 +21,9 @@ def add_arguments(parser):
 def run(args):
     import warnings
 
-    from ..errors import InputError
-    from ..spread import sky_rms_interval, spread
-    from .limits import photon_energy_from_args
+    from raytrace.cli.limits import photon_energy_from_args
+    from raytrace.core.errors import InputError
+    from raytrace.statistics.spread import sky_rms_interval, spread
 
     result = load_rows(args.result)
     is_sky = hasattr(result, "nside")
@@ -53,12 +53,13 @@ def run(args):
 
 def load_rows(path):
     """A sightline or sky result from its file, by the file's format attribute."""
-    from ..resultfiles import open_result
-    from ..results import FORMAT, SightlineResult
-    from ..sky import FORMAT as SKY_FORMAT
-    from ..sky import SkyResult
-
     import h5py
+
+    from raytrace.core.resultfiles import open_result
+    from raytrace.sky.maps import SkyResult
+    from raytrace.statistics.results import SightlineResult
+    from raytrace.tracing.lattice import FORMAT as SKY_FORMAT
+    from raytrace.tracing.sightlines import FORMAT
 
     try:
         with h5py.File(path, "r") as handle:
@@ -74,7 +75,7 @@ def load_rows(path):
 
 
 def _flag_names():
-    from .background import flags_named
+    from raytrace.cli.background import flags_named
 
     return flags_named({"n_resamples": "--resamples", "level": "--level", "seed": "--seed",
                         "threshold": "--isotropy-threshold"})

@@ -41,10 +41,17 @@ import math
 import numba
 import numpy as np
 
-from .polynomial import ROOT_TOLERANCE, bracketed_root, chebyshev_step, evaluate, evaluate_with_slope, roots_in
-from .prefetch import prefetch
-from .tangent import tangent_events
-from .targets import both_targets
+from raytrace.kernels.polynomial import (
+    ROOT_TOLERANCE,
+    bracketed_root,
+    chebyshev_step,
+    evaluate,
+    evaluate_with_slope,
+    roots_in,
+)
+from raytrace.kernels.prefetch import prefetch
+from raytrace.kernels.tangent import tangent_events
+from raytrace.kernels.targets import both_targets
 
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
 _MAX_BREAKPOINTS = 6

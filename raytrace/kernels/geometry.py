@@ -12,7 +12,7 @@ import math
 import numba
 import numpy as np
 
-from .targets import both_targets
+from raytrace.kernels.targets import both_targets
 
 _GOLDEN = 0x9E3779B97F4A7C15
 _UNIT = 1.0 / 9007199254740992.0  # 2^-53

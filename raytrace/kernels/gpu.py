@@ -15,9 +15,9 @@ Importing this module imports numba.cuda (:func:`~.targets.cuda_target`).
 
 import numba
 
-from . import crossings, streaming, tangent
-from . import lattice, sightlines  # noqa: F401  (their per-ray bodies are registered for both targets)
-from .targets import cuda_target, device_twins
+from raytrace.kernels import crossings, streaming, tangent
+from raytrace.kernels import lattice, sightlines  # noqa: F401  (registers their per-ray bodies for both targets)
+from raytrace.kernels.targets import cuda_target, device_twins
 
 cuda = cuda_target()
 

@@ -17,9 +17,9 @@ import math
 import numba
 import numpy as np
 
-from .crossings import scratch, walk_segment
-from .geometry import copy_transform
-from .targets import both_targets
+from raytrace.kernels.crossings import scratch, walk_segment
+from raytrace.kernels.geometry import copy_transform
+from raytrace.kernels.targets import both_targets
 
 
 @both_targets(inline=False)

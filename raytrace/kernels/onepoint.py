@@ -13,7 +13,7 @@ import math
 import numba
 import numpy as np
 
-from .geometry import _GOLDEN, _mix, _uniform
+from raytrace.kernels.geometry import _GOLDEN, _mix, _uniform
 
 
 @numba.njit(cache=True, inline="always")

@@ -22,7 +22,7 @@ settles most of the engine's cells without the chain.
 
 import math
 
-from .targets import both_targets
+from raytrace.kernels.targets import both_targets
 
 #: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine). A
 #: crossing's rate is its slope there, which a root off by 1e-8 cells moves by ~1e-8 of itself.

@@ -14,8 +14,8 @@ kernel, crossing counts, near-tangent counts and kernel, and dispersion measure.
 import numba
 import numpy as np
 
-from .crossings import scratch, walk_segment
-from .targets import both_targets
+from raytrace.kernels.crossings import scratch, walk_segment
+from raytrace.kernels.targets import both_targets
 
 
 @both_targets(inline=False)

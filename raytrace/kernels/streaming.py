@@ -12,8 +12,16 @@ costs more than registers; :mod:`.gpu` compiles this function in place of
 ``walk_segment`` (:mod:`.targets`).
 """
 
-from .crossings import _lookup, _ray_cubic, axis_start, cell_place, cross_face, segment_constants, solve_cell
-from .targets import both_targets
+from raytrace.kernels.crossings import (
+    _lookup,
+    _ray_cubic,
+    axis_start,
+    cell_place,
+    cross_face,
+    segment_constants,
+    solve_cell,
+)
+from raytrace.kernels.targets import both_targets
 
 
 @both_targets(inline=False)

@@ -12,8 +12,8 @@ import math
 
 import numpy as np
 
-from .polynomial import airy_ai, evaluate
-from .targets import both_targets
+from raytrace.kernels.polynomial import airy_ai, evaluate
+from raytrace.kernels.targets import both_targets
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
 #: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated

@@ -1,0 +1,146 @@
+"""The HDF5 file format of results: sightline, sky and one-point-PDF results alike.
+
+In: a result's per-row arrays (rays or pixels, by a layout of names), its
+masses, run record and scalar attributes. Out: a complete result file written
+atomically with provenance, a unit and a description on every dataset, and
+never a NaN or inf (:func:`save_arrays`); reading opens only a complete file
+of the expected format and version, with clear errors (:class:`open_result`).
+The header writer is shared with the checkpoints of :mod:`raytrace.tracing.backends`.
+"""
+
+import json
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from raytrace.core.errors import InputError, require_path
+from raytrace.core.provenance import atomic_output, hdf5_image, provenance_json
+
+#: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
+#: every dataset and stores crossings as float64 in sightline and sky files alike. Files without the
+#: attribute are version 1, still read; a newer version is refused.
+FORMAT_VERSION = 2
+
+# name -> (unit, one-line description) of each dataset a result file holds; {row} is "ray" or "pixel".
+# Crossings are float64 in both files: a pixel's count is the mean over its rays.
+DATASETS = {
+    "mass_eV": ("eV", "dark-photon masses of the grid"),
+    "kernel_boxes": ("eV", "conversion kernel K from the boxes per {row} and mass; P = epsilon^2 K / omega_0"),
+    "kernel_background": ("eV", "kernel of the homogeneous universe beyond the boxes per mass, the same for every {row}"),
+    "crossings": ("1", "resonances inside the boxes per {row} and mass{mean}"),
+    "tangent_events": ("1", "near-tangent resonance pairs (and near misses) taken in the Airy form per {row} and mass{mean}"),
+    "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
+    "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
+    "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+}
+# Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
+# a sky's are means over a pixel's rays).
+FILE_DTYPES = {"crossings": np.float64, "tangent_events": np.float64}
+
+
+def _describe(dataset, name, format_name):
+    unit, description = DATASETS[name]
+    sky = "sky" in format_name
+    describe(dataset, unit, description.format(row="pixel" if sky else "ray",
+                                               mean=" (mean over the pixel's rays)" if sky else ""))
+
+
+def describe(dataset, unit, description):
+    """Give an HDF5 dataset its 'unit' and 'description' attributes."""
+    dataset.attrs["unit"] = unit
+    dataset.attrs["description"] = description
+
+
+def write_group(handle, name, datasets, attributes):
+    """Group ``name`` of datasets ``{name: (values, unit, description)}`` with ``attributes``."""
+    group = handle.create_group(name)
+    for key, (values, unit, description) in datasets.items():
+        group[key] = values
+        describe(group[key], unit, description)
+    group.attrs.update(attributes)
+    return group
+
+
+def read_group(handle, name):
+    """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group."""
+    if name not in handle:
+        return None
+    group = handle[name]
+    return {key: group[key][...] for key in group}, dict(group.attrs)
+
+
+def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes, groups=None):
+    """Write ``layout``'s arrays of ``source`` plus the background kernel to HDF5, atomically.
+
+    ``groups`` maps a group name to ``(datasets, attributes)`` as :func:`write_group` takes them.
+    NaN or inf in any array aborts the write: no result file ever holds them.
+    """
+    with atomic_output(path, overwrite=overwrite) as temporary:
+        with hdf5_image(temporary) as handle:
+            _write_header(handle, format_name, mass_eV, run)
+            for name in layout:
+                data = getattr(source, name)
+                handle.create_dataset(name, data=data, dtype=FILE_DTYPES.get(name, data.dtype), compression="gzip",
+                                      shuffle=True)
+                _describe(handle[name], name, format_name)
+            handle["kernel_background"] = source.kernel_background
+            _describe(handle["kernel_background"], "kernel_background", format_name)
+            handle.attrs.update(attributes)
+            for name, (datasets, group_attributes) in (groups or {}).items():
+                write_group(handle, name, datasets, group_attributes)
+            if "dispersion_measure_background" in attributes:
+                handle.attrs["dispersion_measure_background_unit"] = "pc cm^-3"
+            handle.attrs["complete"] = True
+            _check_finite(handle, path)
+    return Path(path)
+
+
+class open_result:
+    """Context manager opening a complete result file of ``format_name``, with clear errors."""
+
+    def __init__(self, path, format_name, what):
+        self.path, self.format_name, self.what = require_path(path, f"{what} result path"), format_name, what
+
+    def __enter__(self):
+        if not self.path.exists():
+            raise InputError(f"{self.path}: result file not found")
+        try:
+            self.handle = h5py.File(self.path, "r")
+        except OSError as error:
+            raise InputError(f"{self.path}: not a readable HDF5 file ({error})") from None
+        if self.handle.attrs.get("format") != self.format_name:
+            self.handle.close()
+            raise InputError(f"{self.path}: not a raytrace {self.what} result "
+                             f"(attribute 'format' is not {self.format_name!r})")
+        version = int(self.handle.attrs.get("format_version", 1))
+        if version > FORMAT_VERSION:
+            self.handle.close()
+            raise InputError(f"{self.path}: written by a newer raytrace (format version {version}; this one reads "
+                             f"up to {FORMAT_VERSION}); update raytrace to read it")
+        if not self.handle.attrs.get("complete", False):
+            self.handle.close()
+            raise InputError(f"{self.path}: the run is not complete; finish it with --resume")
+        return self.handle
+
+    def __exit__(self, *exc):
+        self.handle.close()
+
+
+def _write_header(handle, format_name, mass_eV, run):
+    handle.attrs["format"] = format_name
+    handle.attrs["format_version"] = FORMAT_VERSION
+    handle.attrs["run"] = json.dumps(run, sort_keys=True, default=str)
+    handle.attrs["provenance"] = provenance_json(run=run)
+    handle["mass_eV"] = mass_eV
+    _describe(handle["mass_eV"], "mass_eV", format_name)
+
+
+def _check_finite(handle, path):
+    for name, item in handle.items():
+        if isinstance(item, h5py.Dataset) and item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
+            raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
+    # Numbers stored as attributes (the background's dispersion measure) are results too.
+    for name, value in handle.attrs.items():
+        if np.asarray(value).dtype.kind == "f" and not np.all(np.isfinite(value)):
+            raise InputError(f"{path}: attribute {name} would hold NaN or inf; nothing was written")

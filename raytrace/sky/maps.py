@@ -1,0 +1,214 @@
+"""Sky maps: one observer, rays along HEALPix pixels through a consistent light cone.
+
+In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
+conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
+its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
+angular power spectra (healpy.anafast), FITS maps, Mollweide plots, and the
+anisotropy limit on epsilon.
+
+The light cone is traced by :mod:`raytrace.tracing.lattice`, which says how
+the copies of the boxes are laid out and transformed. The random transforms break the exact repetition a plain periodic
+lattice would print on the sky; the box still sets the largest correlated
+angle at each distance (about box size / chi), so beyond chi ~ box size / theta
+the map of one copy is no longer a fair sample of larger structures.
+"""
+
+from pathlib import Path
+
+import numpy as np
+
+from raytrace import __version__
+from raytrace.core.errors import InputError
+from raytrace.core.resultfiles import open_result, read_group, save_arrays
+from raytrace.physics.conversion import anisotropy_per_probability
+from raytrace.statistics.meancheck import attach_pdf_check, pdf_check_group, read_pdf_check
+from raytrace.statistics.results import KernelRows, tangent_arrays
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.tracing.lattice import FORMAT, SKY_LAYOUT, trace_sky
+
+
+def _healpy():
+    import healpy
+
+    return healpy
+
+
+class SkyResult(KernelRows):
+    """Kernel maps of one observer's sky.
+
+    ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
+    """
+
+    def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
+                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
+        self.mass_eV = np.asarray(mass_eV, dtype=float)
+        self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
+        self.kernel_background = np.asarray(kernel_background, dtype=float)
+        self.crossings = np.asarray(crossings, dtype=float)
+        # Per pixel: means over the pixel's rays, so fractional counts.
+        self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
+        self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
+        self.dispersion_measure_background = float(dispersion_measure_background)
+        self.run = dict(run)
+        self.nside = int(self.run["nside"])
+        self.ordering = self.run["ordering"]
+
+    def __repr__(self):
+        return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
+
+    @property
+    def npix(self):
+        return self.kernel_boxes.shape[0]
+
+    def mass_index(self, mass_eV):
+        """Index of the grid mass nearest (in log) to ``mass_eV``."""
+        if not (np.isfinite(mass_eV) and mass_eV > 0):
+            raise InputError(f"mass: expected a positive mass in eV, got {mass_eV!r}")
+        return int(np.argmin(np.abs(np.log(self.mass_eV) - np.log(mass_eV))))
+
+    def kernel_map(self, mass_eV):
+        return self.kernel[:, self.mass_index(mass_eV)]
+
+    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
+        from raytrace.physics.conversion import probability_from_kernel
+
+        return probability_from_kernel(self.kernel_map(mass_eV), epsilon, omega0_eV, saturate=saturate)
+
+    def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
+        """dT/T = -P (1 - e^-x)/x with x = h nu/(k T_0) (PHYSICS.md section 6), mean included."""
+        return -self.probability_map(mass_eV, epsilon, omega0_eV) * anisotropy_per_probability(omega0_eV)
+
+    def angular_power(self, sky_map, lmax=None):
+        """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
+
+        The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
+        are not deconvolved: divide by healpy.pixwin(nside)**2 where healpy's window
+        files are installed (healpy fetches them over the network on first use).
+        """
+        healpy = _healpy()
+        ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
+        lmax = 3 * self.nside - 1 if lmax is None else int(lmax)
+        return healpy.anafast(ring - ring.mean(), lmax=lmax)
+
+    # -- files ------------------------------------------------------------------------
+    def save(self, path, overwrite=False):
+        groups = {} if self.pdf_check is None else {"pdf_mean": pdf_check_group(self.pdf_check)}
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
+                           {"dispersion_measure_background": self.dispersion_measure_background}, groups)
+
+    @classmethod
+    def load(cls, path):
+        with open_result(path, FORMAT, "sky") as handle:
+            import json
+
+            result = cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
+                         handle["crossings"][...], handle["dispersion_measure_boxes"][...],
+                         handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
+                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
+            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
+        return result
+
+    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
+        """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
+
+        The maps come in the order of ``masses_eV``, so the first is the one
+        ``healpy.read_map`` returns by default: put the shown mass first. The header
+        carries nside, ordering, units, the frame (SKYFRAME: the box axes, no
+        celestial COORDSYS), each map's mass, the run's seed, z range, the input
+        checksums, EPSILON and OMEGA0 only with probability maps, and ``owner``
+        (the run's result file, keyword RTRESULT; see :mod:`raytrace.core.companions`).
+        """
+        from raytrace.core.companions import FITS_KEYWORD
+        from raytrace.core.provenance import atomic_output
+
+        healpy = _healpy()
+        if epsilon is not None and omega0_eV is None:
+            raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
+        maps, names, units, cards = [], [], [], []
+        for i, mass in enumerate(np.atleast_1d(masses_eV)):
+            k = self.mass_index(float(mass))
+            cards.append((f"MASS{i + 1}", float(self.mass_eV[k]), "dark-photon mass of map, eV"))
+            maps.append(self.kernel[:, k])
+            names.append(f"KERNEL{i + 1}")
+            units.append("eV")
+            if epsilon is not None:
+                maps.append(self.probability_map(self.mass_eV[k], epsilon, omega0_eV))
+                names.append(f"PROB{i + 1}")
+                units.append("")
+        if epsilon is not None:
+            cards += [("EPSILON", float(epsilon), "kinetic mixing of PROB maps"),
+                      ("OMEGA0", float(omega0_eV), "observed photon energy of PROB maps, eV")]
+        cards += [("ZMAX", self.run["z_max"], "rays reach this redshift"),
+                  ("ZBOXES", self.run["z_boxes"], "boxes serve up to this redshift"),
+                  ("SEED", self.run["seed"], "random seed of the light cone"),
+                  ("RAYSPIX", self.run["rays_per_pixel"], "rays averaged per pixel"),
+                  ("RTVERS", __version__, "raytrace version"),
+                  ("SKYFRAME", "box axes", "frame: the boxes' axes, not a celestial frame")]
+        for i, box in enumerate(self.run["boxes"]):
+            checksum = str(box.get("checksum", "")).replace("sha256:", "")
+            # 64 hex digits fill the card: no room for a comment.
+            cards.append((f"BOXSUM{i + 1}", checksum[:64]))
+        if owner is not None:
+            cards.append((FITS_KEYWORD, str(owner), "result file of the run"))
+        # healpy names every map extension 'xtension'; its extra cards replace that.
+        cards.append(("EXTNAME", "RAYTRACE_MAPS", "conversion kernel maps of a raytrace sky"))
+        path = Path(path)
+        with atomic_output(path, overwrite=overwrite) as temporary:
+            # coord=None: healpy writes no COORDSYS, the map's frame is the box axes (SKYFRAME).
+            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord=None,
+                             column_names=names, column_units=units, extra_header=cards, overwrite=True,
+                             dtype=np.float64)
+        return path
+
+    def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
+        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
+
+        Colour-bar ticks in three significant digits (scientific notation where the
+        values need it); ``owner`` marks the file as in :func:`raytrace.core.figures.save_figure`.
+        """
+        from raytrace.core.figures import pyplot, save_figure
+
+        healpy = _healpy()
+        plt = pyplot()
+        if epsilon is None:
+            values, label = self.kernel_map(mass_eV), "K [eV]"
+        else:
+            values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
+        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
+                        title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        figure = plt.gcf()
+        if path is not None:
+            save_figure(figure, path, overwrite=overwrite, owner=owner)
+            plt.close(figure)
+        return figure
+
+
+def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+             z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu",
+             **removed):
+    """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
+
+    ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
+    are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
+    result's pixel order. ``randomise_copies=False`` leaves every copy of the
+    lattice untransformed: a diagnostic that shows the replication pattern.
+    Other arguments (``backend``, ``executor`` for a cluster) as in
+    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
+    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    """
+    traced = trace_sky(series, mass_eV, nside, z_max, seed=seed, rays_per_pixel=rays_per_pixel, n_jobs=n_jobs,
+                       include_background=include_background, z_boxes=z_boxes, ordering=ordering, plasma=plasma,
+                       randomise_copies=randomise_copies, batch_pixels=batch_pixels, backend=backend,
+                       progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, device=device,
+                       **removed)
+    arrays, nside = traced.arrays, traced.run["nside"]
+    if traced.run["ordering"] == "RING":
+        ring_to_nest = _healpy().ring2nest(nside, np.arange(12 * nside * nside))
+        for values in arrays.values():  # in place, one array at a time: no second set of maps
+            values[...] = values[ring_to_nest]
+    result = SkyResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
+                       arrays["dispersion_measure_boxes"], traced.dispersion_measure_background, traced.run,
+                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    attach_pdf_check(result, traced.series, traced.plasma, n_jobs)  # the built-in check (raytrace.statistics.meancheck)
+    return traced.backend.finish(result)

@@ -1,0 +1,11 @@
+"""Rays through the boxes: plans, tracers, batches, backends and clusters.
+
+In: a box series, a mass grid and a run's options. Out: per-row arrays (ray or
+HEALPix pixel): the kernel from the boxes, crossing counts, near-tangent events
+and dispersion measures, plus the homogeneous background's part. Modules:
+``checks`` (the run checks the later stages share), ``rays`` (the ray plan and
+copy transforms), ``sightlines`` and ``lattice`` (random sightlines and the sky's
+light cone, driving the numba kernels of :mod:`raytrace.kernels`), ``batches``
+(rows in batches into a backend), ``backends`` (memory or checkpointed HDF5),
+``cluster`` (batches on dask.distributed) and ``progress``.
+"""

@@ -1,0 +1,77 @@
+"""Rows (rays or pixels) traced in batches into a backend, here on numba threads or on a cluster.
+
+In: a tracer (a pure function of row indices), a backend, the run record. Out:
+the backend's arrays, every batch written as it completes, resumable.
+"""
+
+import sys
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from raytrace.core.provenance import InputWatch
+from raytrace.tracing.checks import numba_threads
+from raytrace.tracing.progress import compile_notice, step_rows
+
+
+def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
+                unit, description):
+    """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` and return its arrays.
+
+    Batches the backend already holds (a resumed checkpoint) are skipped; the rest
+    run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
+    written to the backend as it completes. The box files must not change meanwhile:
+    their size and modification time are compared after every batch, their
+    checksums once at the end (InputError naming the file).
+    """
+    from tqdm.auto import tqdm  # here: the CLI's --help does not pay for it
+
+    if executor is not None and hasattr(executor, "prepare"):
+        executor.prepare(tracer)
+    watch = InputWatch([(box.path, box.checksum) for box in tracer.boxes if box.path is not None])
+    starts = list(range(0, n_rows, batch_size))
+    backend.open(mass, n_rows, run, len(starts), layout, format_name)
+    done = backend.completed_batches()
+    todo = [(b, s, min(s + batch_size, n_rows)) for b, s in enumerate(starts) if not done[b]]
+    with tqdm(total=n_rows, initial=n_rows - sum(stop - start for _, start, stop in todo), unit=unit,
+              desc=description, disable=not progress) as bar:
+        if executor is None:
+            with numba_threads(n_jobs):
+                # Without a bar, one call per batch; with one, steps small enough for it to move.
+                step = step_rows(batch_size, numba.get_num_threads()) if progress else batch_size
+                for number, (b, start, stop) in enumerate(todo):
+                    # Small steps move the bar per group of rays; each row is traced on its own,
+                    # so the arrays are the same bits as one call for the batch.
+                    parts = []
+                    for first in range(start, stop, step):
+                        with compile_notice(progress and number == 0 and first == start,
+                                            lambda text: bar.write(text, file=sys.stderr)):
+                            parts.append(tracer.trace(range(first, min(first + step, stop))))
+                        bar.update(min(first + step, stop) - first)
+                    arrays = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
+                    watch.quick()  # before the write: a batch that read a changed box is never stored
+                    backend.write_batch(b, start, arrays)
+        else:
+            finished = dict((b, stop - start) for b, start, stop in todo)
+            for b, start, arrays in executor(tracer, todo):
+                watch.quick()
+                backend.write_batch(b, start, arrays)
+                bar.update(finished[b])
+    watch.final()
+    return backend.read()
+
+
+@dataclass(frozen=True, eq=False)
+class Traced:
+    """A finished trace: the rows' arrays and what a result and its built-in check are built from."""
+
+    mass_eV: np.ndarray
+    arrays: dict
+    kernel_background: np.ndarray
+    dispersion_measure_background: float
+    run: dict
+    series: object
+    plasma: object
+    backend: object
+    n_jobs: object
