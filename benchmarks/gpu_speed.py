@@ -119,8 +119,13 @@ def register_caps(report, arguments, rays, per_ray, rate):
     """The sightline kernel compiled with fewer registers a thread (more threads resident, some spilled)."""
     from types import SimpleNamespace
 
-    from raytrace.tracing.sightlines import GpuRayTracer
+    from numba import config
+
     from raytrace.kernels import gpu
+    from raytrace.tracing.sightlines import GpuRayTracer
+
+    if config.ENABLE_CUDASIM:
+        return  # the simulator has no registers
 
     tracer = GpuRayTracer(*arguments)
     rates = []
@@ -193,7 +198,7 @@ def demo_sky(report, budget, gpu_rate, nside):
                f"= {seconds / 60:.2f} min ({cells / seconds / 1e9:.2f} G cells/s); device {sky.run['device']}")
         return
     fraction = max(0.01, min(0.5, (left - 30.0) / estimate))
-    pixels = np.arange(int(fraction * 12 * nside**2))
+    pixels = np.arange(max(1, int(fraction * 12 * nside**2)))
     gpu_tracer = GpuSkyTracer(series, mass, nside, rays_per_pixel, z_max, 2026, DEFAULT_PHOTON_ENERGY_EV,
                                        plasma.cosmology)
     seconds, _ = timed(lambda: gpu_tracer.trace(pixels))
