@@ -1,8 +1,11 @@
 """Benchmark of the exact engine on a CUDA GPU against the CPU of the same machine, measured in one run.
 
-Needs a GPU and numba-cuda (the 'gpu' extra); never a test. It prints, and writes
-to --output:
+Needs a GPU and numba-cuda (the 'gpu' extra), but for section 0; never a test. It prints,
+and writes to --output:
 
+0. The CPU engine against its own shared source compiled for the CPU with FMA
+   contraction, as a GPU compiles it: the rounding a GPU adds, bar its log and pow
+   (--rounding-only runs this alone, on any machine).
 1. The GPU against the CPU on the test rays of tests/test_gpu_engine.py (sightlines
    through a blended random series with empty cells, copy seams and near-tangent
    events; an nside-2 sky), and on more rays of the same series: the largest
@@ -31,6 +34,7 @@ import sys
 import time
 import warnings
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -89,6 +93,36 @@ def compare_on_test_rays(report, more_rays):
         report(f"   the test's tolerances do NOT hold: {error}")
 
 
+def rounding_sensitivity(report, n_rays):
+    """Section 0 (CPU only): the CPU engine against the same shared source compiled for the CPU with FMA
+    contraction, as NVVM compiles for a GPU (numba fastmath 'contract'), on the test's series."""
+    import numba
+
+    from raytrace.kernels import crossings, streaming
+    from raytrace.kernels.targets import device_twins
+
+    twins = device_twins(numba.njit(fastmath={"contract"}), {crossings.walk_segment: streaming.stream_segment})
+    contracted_ray = twins[("raytrace.kernels.sightlines", "sightline_ray")]
+    background = cases.plasma()
+    series = cases.random_series(background)
+    rays = np.arange(n_rays)
+    report("0. the CPU engine against its source compiled with FMA contraction (the GPU's rounding, less its log "
+           "and pow)")
+    for uniform, omega in ((True, 1e-2), (False, DEFAULT_PHOTON_ENERGY_EV)):
+        tracer = RayTracer(series, cases.case_masses(series, uniform), 0.03, 3, omega, background.cosmology)
+        reference = tracer.trace(rays)
+        _, starts, directions = tracer._ray_geometry(rays)
+        contracted = tracer._outputs(n_rays)
+        for span in range(tracer.plan.n_spans):
+            arguments = tracer._piece_arguments(span, starts, directions)
+            scratch = crossings.scratch(np.max(tracer.plan.piece_chi_b - tracer.plan.piece_chi_a) / arguments[11])
+            for r in rays:
+                contracted_ray(r, *arguments, *scratch, np.empty(3), *contracted.values())
+        differences = cases.largest_differences(SimpleNamespace(**reference), SimpleNamespace(**contracted))
+        report(f"   {n_rays} sightlines, photon energy {omega:.3g} eV ({int(reference['tangent_events'].sum())} "
+               f"near-tangent events): " + ", ".join(f"{key} {value:.2e}" for key, value in differences.items()))
+
+
 def timed(function):
     start = time.perf_counter()
     value = function()
@@ -117,8 +151,6 @@ def gpu_rates(make_tracer, rows, cells_per_row):
 
 def register_caps(report, arguments, rays, per_ray, rate):
     """The sightline kernel compiled with fewer registers a thread (more threads resident, some spilled)."""
-    from types import SimpleNamespace
-
     from numba import config
 
     from raytrace.kernels import gpu
@@ -217,9 +249,13 @@ def main():
     parser.add_argument("--demo-nside", type=int, default=1024)
     parser.add_argument("--output", default=None, help="also write the lines to this file")
     parser.add_argument("--budget", type=float, default=420.0, help="seconds the whole run may take")
+    parser.add_argument("--rounding-only", action="store_true", help="section 0 alone: needs no GPU")
     args = parser.parse_args()
     warnings.simplefilter("ignore")  # probed-range notes, too few rays for the built-in check, launch-size hints
     report = Report(args.output)
+    rounding_sensitivity(report, args.compare_rays)
+    if args.rounding_only:
+        return
     from raytrace.kernels import gpu
 
     device = gpu.cuda.get_current_device()
