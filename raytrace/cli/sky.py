@@ -10,7 +10,8 @@ from raytrace.cli.sightlines import (
     masses,
     note_without_outputs,
     observed_energy,
-    output_paths,
+    prepare_outputs,
+    report_outputs,
 )
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
@@ -25,19 +26,22 @@ def add_arguments(parser):
 
 
 def run(args):
+    from raytrace.core.outputguard import output_lock
     from raytrace.core.provenance import output_set
 
     values = settings(args, SKY_OPTIONS)
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
-    output_paths(values, keys)  # every output, and another run's files, checked once before any work
-    with output_set():  # the result, the maps and the plot appear together or not at all
-        shown_eV = run_outputs(values)
-    for key, what in zip(keys, ("result", "maps", "plot")):
-        if values[key]:
-            first = f" (first map: m = {shown_eV:.4g} eV)" if key == "output.fits" else ""
-            print(f"{what}: {values[key]}{first}")
+    done = prepare_outputs(args, values, keys)  # every output, and another run's files, once before any work
+    if done is None:
+        # One run per output at a time; the result, the maps and the plot appear together or not at all.
+        with output_lock([values[key] for key in keys]), output_set():
+            shown_eV = run_outputs(values)
+        if values["output.fits"]:
+            print(f"# {values['output.fits']}: HDU 1 the shown mass m = {shown_eV:.4g} eV (healpy.read_map's "
+                  "default), HDU 2 every grid mass in the grid's order")
+    report_outputs("sky", values, keys, done)
     note_without_outputs("sky", values, keys)
     return 0
 
@@ -80,10 +84,9 @@ def run_outputs(values):
     print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
     owner = owner_name(output)
     if values["output.fits"]:
-        # The shown mass first: healpy.read_map gives it by default.
-        order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
-        sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
-                       omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        # HDU 1 the shown mass (healpy.read_map's default), HDU 2 the grid in its own order.
+        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"], omega0_eV=omega0,
+                       overwrite=overwrite, owner=owner, shown_eV=float(sky.mass_eV[shown]))
     if values["output.plot"]:
         sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
                            omega0_eV=omega0, overwrite=overwrite, owner=owner)
@@ -91,6 +94,7 @@ def run_outputs(values):
 
 
 def print_summary(sky, limit, threshold, omega0, shown):
+    from raytrace.core.textcells import cell, no_resonance
     from raytrace.statistics.spread import robust_spread, sky_rms_interval
 
     mean = sky.kernel.mean(axis=0)
@@ -110,15 +114,22 @@ def print_summary(sky, limit, threshold, omega0, shown):
     print(header)
     step = max(1, sky.mass_eV.size // 16)
     for k in range(0, sky.mass_eV.size, step):
+        empty = no_resonance(sky.kernel[:, k], "pixel")
+        if empty:
+            print(f"  {sky.mass_eV[k]:11.4e} {empty}")
+            continue
         relative = rms[k] / mean[k] if mean[k] > 0 else 0.0
+        band = (f"{interval['epsilon_low'][k]:.3e}-{interval['epsilon_high'][k]:.3e}"
+                if np.isfinite(interval['epsilon_high'][k]) else "-")
         line = (f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {half_width[k]:9.3e} {mad[k]:9.3e} "
-                f"{ratio[k]:7.4f} {relative_sem[k]:7.4f} {limit['epsilon_max_rms'][k]:12.3e} "
-                f"{interval['epsilon_low'][k]:10.3e}-{interval['epsilon_high'][k]:<10.3e}")
+                f"{cell(ratio[k], '.4f', 7)} {cell(relative_sem[k], '.4f', 7)} "
+                f"{cell(limit['epsilon_max_rms'][k], '.3e', 12)} {band:>21}")
         if "epsilon_max_cl" in limit:
-            line += f" {limit['epsilon_max_cl'][k]:11.3e}"
+            line += f" {cell(limit['epsilon_max_cl'][k], '.3e', 11)}"
         print(line)
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
-          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
+          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width); "
+          "'-': no number there (a flat map sets no limit)")
     _warn_spread(sky)
     resonating = (sky.crossings[:, shown] > 0).mean()
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "

@@ -69,6 +69,24 @@ def check_writable(path, overwrite):
         raise InputError(f"{path}: cannot be written, {folder} is a file, not a folder")
     if not os.access(folder, os.W_OK | os.X_OK):
         raise InputError(f"{path}: cannot be written, the folder {folder} is not writable")
+    _check_name_length(path, folder)
+
+
+#: The longest name a run derives from an output's: its checkpoint's temporary file, '.<name>.partial.XXXXXXXX.part'.
+_DERIVED_NAME_EXTRA = len("..partial.xxxxxxxx.part")
+
+
+def _check_name_length(path, folder):
+    """Refuse, before any work, a name whose temporary or checkpoint names the file system cannot hold."""
+    try:
+        limit = os.pathconf(folder, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        limit = 255  # POSIX's usual NAME_MAX where the system does not say (common practice, no source)
+    length = len(os.fsencode(path.name))
+    if length + _DERIVED_NAME_EXTRA > limit:
+        raise InputError(f"{path.name[:40]}...: the output's name is too long ({length} bytes; this file system "
+                         f"takes names up to {limit} bytes and the run's temporary and checkpoint names add "
+                         f"{_DERIVED_NAME_EXTRA}): choose a name of at most {limit - _DERIVED_NAME_EXTRA} bytes")
 
 
 def check_outputs(paths, overwrite, flags=None):
@@ -135,16 +153,29 @@ class OutputSet:
         self.afterwards = []   # callables run once every output is in place
 
     def commit(self):
+        """Rename every output into place, first recording them in a journal (several outputs), so that
+        a kill between two renames leaves a write that ``--resume`` completes (:mod:`raytrace.core.journal`)."""
+        from raytrace.core.journal import write_journal
+
+        journal = write_journal(self.pending) if len(self.pending) > 1 else None
+        placed = []
         for index, (temporary, path) in enumerate(self.pending):
             try:
+                inode = os.stat(temporary).st_ino
                 os.replace(temporary, path)
             except OSError as error:
                 self.pending = self.pending[index:]
                 self.discard()
+                if journal is not None:
+                    journal.unlink()
                 raise write_failure(path, error, "outputs before it in the run are in place, those after are not") \
                     from None
+            placed.append((path, inode))
             remove_stale_temporaries(path)
+        if journal is not None:
+            journal.unlink()
         self.pending = []
+        claim_written(placed)
         for action in self.afterwards:
             action()
 
@@ -153,6 +184,22 @@ class OutputSet:
             if os.path.exists(temporary):
                 os.unlink(temporary)
         self.pending = []
+
+
+def claim_written(placed):
+    """Refuse to claim an output another process replaced since this run renamed it into place.
+
+    ``placed``: (path, inode of the file this run wrote) pairs. Raytrace runs lock
+    their outputs (:mod:`raytrace.core.outputguard`); this catches any other writer.
+    """
+    for path, inode in placed:
+        try:
+            now = os.stat(path).st_ino
+        except OSError:
+            now = None
+        if now != inode:
+            raise WriteError(f"{path}: another process replaced or removed this output just after this run wrote "
+                             "it; the file there is not this run's result")
 
 
 _OUTPUT_SET = contextvars.ContextVar("raytrace_output_set", default=None)
@@ -244,13 +291,17 @@ def atomic_output(path, overwrite=False, at_once=False):
         if pending is not None:
             pending.pending.append((temporary, path))
             return
+        inode = os.stat(temporary).st_ino
         os.replace(temporary, path)
         remove_stale_temporaries(path)
+        claim_written([(path, inode)])
     except BaseException as error:
         if os.path.exists(temporary):
             os.unlink(temporary)
         if is_write_failure(error):
-            raise write_failure(path, error) from None
+            in_set = not at_once and _OUTPUT_SET.get() is not None
+            raise write_failure(path, error, "none of the run's outputs was written" if in_set else
+                                "nothing was written at that name") from None
         raise
 
 

@@ -16,6 +16,7 @@ import numpy as np
 
 from raytrace.core.errors import InputError, require_path
 from raytrace.core.provenance import atomic_output, hdf5_image, provenance_json
+from raytrace.core.resultchecks import format_version, mass_grid, read_arrays, run_record, scalar_attribute, sky_rows
 
 #: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
 #: every dataset and stores crossings as float64 in sightline and sky files alike. Files without the
@@ -62,12 +63,17 @@ def write_group(handle, name, datasets, attributes):
     return group
 
 
-def read_group(handle, name):
-    """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group."""
+def read_group(handle, name, n_masses):
+    """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group.
+
+    Each dataset is one value per mass, finite and >= 0, and the group's JSON run record is there
+    and parsed (:mod:`raytrace.core.resultchecks`): a damaged group is an InputError naming it.
+    """
     if name not in handle:
         return None
-    group = handle[name]
-    return {key: group[key][...] for key in group}, dict(group.attrs)
+    group, path = handle[name], handle.file.filename
+    datasets = read_arrays(group, path, tuple(group), n_masses, prefix=f"{name}/", per_mass=True)
+    return datasets, {**dict(group.attrs), "run": run_record(group, path, where=f"attribute run of group {name}")}
 
 
 def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes, groups=None):
@@ -113,7 +119,11 @@ class open_result:
             self.handle.close()
             raise InputError(f"{self.path}: not a raytrace {self.what} result "
                              f"(attribute 'format' is not {self.format_name!r})")
-        version = int(self.handle.attrs.get("format_version", 1))
+        try:
+            version = format_version(self.handle, self.path, FORMAT_VERSION)
+        except InputError:
+            self.handle.close()
+            raise
         if version > FORMAT_VERSION:
             self.handle.close()
             raise InputError(f"{self.path}: written by a newer raytrace (format version {version}; this one reads "
@@ -125,6 +135,23 @@ class open_result:
 
     def __exit__(self, *exc):
         self.handle.close()
+
+
+#: The datasets of a result with a row per ray or pixel, as its loader reads them.
+ROW_DATASETS = ("kernel_boxes", "kernel_background", "crossings", "dispersion_measure_boxes", "tangent_events",
+                "kernel_tangent")
+
+
+def read_rows(handle, path, names=ROW_DATASETS, required=("z_max",), sky=False):
+    """``(run record, mass grid, arrays, background DM)`` of an open result, every piece checked
+    (:mod:`raytrace.core.resultchecks`): a sky's pixel count against its nside. Files of format version 1
+    may lack the near-tangent arrays (None: zeros)."""
+    record = run_record(handle, path, required)
+    n_rows = sky_rows(record, path) if sky else None
+    mass = mass_grid(handle, path)
+    optional = ("tangent_events", "kernel_tangent") if format_version(handle, path, FORMAT_VERSION) == 1 else ()
+    arrays = read_arrays(handle, path, names, mass.size, n_rows, optional=optional)
+    return record, mass, arrays, scalar_attribute(handle, path, "dispersion_measure_background")
 
 
 def _write_header(handle, format_name, mass_eV, run):

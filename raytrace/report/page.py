@@ -182,7 +182,8 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
 def _run_lines(result):
     """The report's lines on the run: rays, redshifts, boxes and background, ionisation, cosmology, each box."""
     run = result.run
-    z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
+    z_max = float(run["z_max"])
+    z_boxes = float(run.get("z_boxes", z_max))  # a result made by hand may not say: then the boxes served all
     with_background = bool(run.get("include_background")) and z_max > z_boxes
     lines = [
         f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "
@@ -376,15 +377,15 @@ def _sky_map(sky, index, epsilon, omega0):
 
 
 def _draw_sky(plt, figure, where, sky, index, epsilon, omega0):
-    import healpy
+    from raytrace.core.figures import mollview
 
     values, _, unit, _ = _sky_map(sky, index, epsilon, omega0)
     left, bottom, width, height = where
     plt.figure(figure.number)  # mollview draws on pyplot's current figure
     # sub=(1, 1, 1) spans the page; the margins cut it down to this panel's place.
-    healpy.mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
-                    margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
-                    title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
+    mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
+             margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
+             title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
     plt.gca().title.set_fontsize(10)  # mollview leaves its map axes current, the colour bar last
     figure.axes[-1].tick_params(labelsize=8)
 

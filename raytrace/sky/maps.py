@@ -13,13 +13,11 @@ angle at each distance (about box size / chi), so beyond chi ~ box size / theta
 the map of one copy is no longer a fair sample of larger structures.
 """
 
-from pathlib import Path
 
 import numpy as np
 
-from raytrace import __version__
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, save_arrays
+from raytrace.core.resultfiles import open_result, read_group, read_rows, save_arrays
 from raytrace.physics.conversion import anisotropy_per_probability
 from raytrace.statistics.meancheck import attach_pdf_check, pdf_check_group, read_pdf_check
 from raytrace.statistics.results import KernelRows, tangent_arrays
@@ -69,9 +67,12 @@ class SkyResult(KernelRows):
     def kernel_map(self, mass_eV):
         return self.kernel[:, self.mass_index(mass_eV)]
 
-    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
+    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=None):
+        """P per pixel at one mass: linear, or (``saturate`` None) saturating where the sky leaves the
+        linear regime (:meth:`KernelRows.saturates`)."""
         from raytrace.physics.conversion import probability_from_kernel
 
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel_map(mass_eV), epsilon, omega0_eV, saturate=saturate)
 
     def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
@@ -99,66 +100,30 @@ class SkyResult(KernelRows):
     @classmethod
     def load(cls, path):
         with open_result(path, FORMAT, "sky") as handle:
-            import json
-
-            result = cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                         handle["crossings"][...], handle["dispersion_measure_boxes"][...],
-                         handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
-                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
+            run, mass, arrays, dm_background = read_rows(
+                handle, path, required=("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel"), sky=True)
+            result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
+                         arrays["dispersion_measure_boxes"], dm_background, run,
+                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size), result.mass_eV)
         return result
 
-    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
+    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None, shown_eV=None):
         """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
 
-        The maps come in the order of ``masses_eV``, so the first is the one
-        ``healpy.read_map`` returns by default: put the shown mass first. The header
-        carries nside, ordering, units, the frame (SKYFRAME: the box axes, no
-        celestial COORDSYS), each map's mass, the run's seed, z range, the input
-        checksums, EPSILON and OMEGA0 only with probability maps, and ``owner``
-        (the run's result file, keyword RTRESULT; see :mod:`raytrace.core.companions`).
+        The maps come in the order of ``masses_eV``; with ``shown_eV`` (the mass a
+        run shows) that mass's maps come first in their own extension (HDU 1, what
+        ``healpy.read_map`` returns by default) and those of ``masses_eV`` in HDU 2.
+        Each header carries nside, ordering, units, the frame (SKYFRAME: the box
+        axes, no celestial COORDSYS), each map's mass (MASS1 ...), SHOWMASS, the
+        run's seed, z range, the input checksums, EPSILON and OMEGA0 only with
+        probability maps, and ``owner`` (the run's result file, keyword RTRESULT;
+        see :mod:`raytrace.core.companions`). Written by :mod:`raytrace.sky.fits`.
         """
-        from raytrace.core.companions import FITS_KEYWORD
-        from raytrace.core.provenance import atomic_output
+        from raytrace.sky.fits import write_sky_fits
 
-        healpy = _healpy()
-        if epsilon is not None and omega0_eV is None:
-            raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
-        maps, names, units, cards = [], [], [], []
-        for i, mass in enumerate(np.atleast_1d(masses_eV)):
-            k = self.mass_index(float(mass))
-            cards.append((f"MASS{i + 1}", float(self.mass_eV[k]), "dark-photon mass of map, eV"))
-            maps.append(self.kernel[:, k])
-            names.append(f"KERNEL{i + 1}")
-            units.append("eV")
-            if epsilon is not None:
-                maps.append(self.probability_map(self.mass_eV[k], epsilon, omega0_eV))
-                names.append(f"PROB{i + 1}")
-                units.append("")
-        if epsilon is not None:
-            cards += [("EPSILON", float(epsilon), "kinetic mixing of PROB maps"),
-                      ("OMEGA0", float(omega0_eV), "observed photon energy of PROB maps, eV")]
-        cards += [("ZMAX", self.run["z_max"], "rays reach this redshift"),
-                  ("ZBOXES", self.run["z_boxes"], "boxes serve up to this redshift"),
-                  ("SEED", self.run["seed"], "random seed of the light cone"),
-                  ("RAYSPIX", self.run["rays_per_pixel"], "rays averaged per pixel"),
-                  ("RTVERS", __version__, "raytrace version"),
-                  ("SKYFRAME", "box axes", "frame: the boxes' axes, not a celestial frame")]
-        for i, box in enumerate(self.run["boxes"]):
-            checksum = str(box.get("checksum", "")).replace("sha256:", "")
-            # 64 hex digits fill the card: no room for a comment.
-            cards.append((f"BOXSUM{i + 1}", checksum[:64]))
-        if owner is not None:
-            cards.append((FITS_KEYWORD, str(owner), "result file of the run"))
-        # healpy names every map extension 'xtension'; its extra cards replace that.
-        cards.append(("EXTNAME", "RAYTRACE_MAPS", "conversion kernel maps of a raytrace sky"))
-        path = Path(path)
-        with atomic_output(path, overwrite=overwrite) as temporary:
-            # coord=None: healpy writes no COORDSYS, the map's frame is the box axes (SKYFRAME).
-            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord=None,
-                             column_names=names, column_units=units, extra_header=cards, overwrite=True,
-                             dtype=np.float64)
-        return path
+        return write_sky_fits(self, path, masses_eV, epsilon=epsilon, omega0_eV=omega0_eV, overwrite=overwrite,
+                              owner=owner, shown_eV=shown_eV)
 
     def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
         """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
@@ -166,16 +131,15 @@ class SkyResult(KernelRows):
         Colour-bar ticks in three significant digits (scientific notation where the
         values need it); ``owner`` marks the file as in :func:`raytrace.core.figures.save_figure`.
         """
-        from raytrace.core.figures import pyplot, save_figure
+        from raytrace.core.figures import mollview, pyplot, save_figure
 
-        healpy = _healpy()
         plt = pyplot()
         if epsilon is None:
             values, label = self.kernel_map(mass_eV), "K [eV]"
         else:
             values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
-                        title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
+                 title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
         figure = plt.gcf()
         if path is not None:
             save_figure(figure, path, overwrite=overwrite, owner=owner)

@@ -175,9 +175,10 @@ def pdf_check_group(pdf):
 
 
 def read_pdf_check(group, mass_eV):
-    """The PdfMean of a group read back from a result file (``(datasets, attributes)``), or None without one."""
+    """The PdfMean of a group read back, checked, from a result file (``(datasets, attributes)`` of
+    :func:`raytrace.core.resultfiles.read_group`), or None without one."""
     if group is None:
         return None
     datasets, attributes = group
     return PdfMean(mass_eV, datasets["kernel_boxes"], datasets["kernel_background"], datasets["error"],
-                   json.loads(attributes["run"]))
+                   attributes["run"])

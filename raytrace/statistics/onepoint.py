@@ -129,13 +129,15 @@ class PdfMean:
 
     @classmethod
     def load(cls, path):
-        import json
-
+        from raytrace.core.resultchecks import mass_grid, read_arrays, run_record
         from raytrace.core.resultfiles import open_result
 
         with open_result(path, FORMAT, "one-point-PDF mean") as handle:
-            return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                       handle["error"][...], json.loads(handle.attrs["run"]))
+            run = run_record(handle, path, ("z_max",))
+            mass = mass_grid(handle, path)
+            arrays = read_arrays(handle, path, ("kernel_boxes", "kernel_background", "error"), mass.size,
+                                 per_mass=True)
+            return cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["error"], run)
 
 
 def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plasma=None, points=POINTS,
@@ -213,6 +215,8 @@ def warn_frozen_blend(series, z_boxes, blend_steps):
     if not pairs:
         return
     ratio = max(blend_rate(series.boxes[a], series.boxes[b]) * (1.0 + series.redshifts[b]) / 3.0 for a, b in pairs)
+    if ratio < 1e-3:  # a blend of (nearly) one field: nothing the frozen blend leaves out could show
+        return
     warnings.warn(FrozenBlendWarning(
         f"one-point-PDF mean of blended snapshots: the blend is frozen over 1/{blend_steps} of each pair, which "
         f"leaves out its own rate d ln n_e/dz, up to {100 * ratio:.2g} % of the expansion's here; where the field "

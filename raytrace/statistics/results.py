@@ -9,12 +9,10 @@ and loaded from HDF5 with provenance (the file format is
 :mod:`raytrace.statistics.meancheck` attached by :func:`cast_sightlines`.
 """
 
-import json
-
 import numpy as np
 
-from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, save_arrays
+from raytrace.core.errors import InputError, float_array
+from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_arrays
 from raytrace.physics.conversion import probability_from_kernel
 from raytrace.statistics.meancheck import attach_pdf_check, mean_check, pdf_check_group, read_pdf_check
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
@@ -49,6 +47,17 @@ class KernelRows:
     def dispersion_measure(self):
         """DM to z_max in pc cm^-3 per row, boxes plus background."""
         return self.dispersion_measure_boxes + self.dispersion_measure_background
+
+    def saturates(self, epsilon, omega0_eV):
+        """Whether P = epsilon^2 K / omega_0 leaves the linear regime on some row and mass (then P is
+        given in the saturating form; :func:`raytrace.physics.conversion.needs_saturation` warns once)."""
+        from raytrace.physics.conversion import needs_saturation
+
+        cache = self.__dict__.setdefault("_saturation", {})
+        key = (float(epsilon), float(omega0_eV))
+        if key not in cache:
+            cache[key] = needs_saturation(self.kernel, epsilon, omega0_eV)
+        return cache[key]
 
     def tangent_events_per_row(self):
         """Mean number of near-tangent (Airy) events per row, per mass."""
@@ -118,8 +127,11 @@ class SightlineResult(KernelRows):
         return np.sqrt(self.variance() / self.n_rays)
 
     def percentiles(self, q=PERCENTILES):
-        """Kernel percentiles between rays, shape (len(q), n_masses)."""
-        return np.percentile(self.kernel, q, axis=0)
+        """Kernel percentiles between rays, shape (len(q), n_masses) (``q`` one number: (n_masses,))."""
+        levels = float_array(q, "q (percentiles)")
+        if levels.size == 0 or not np.all(np.isfinite(levels) & (levels >= 0) & (levels <= 100)):
+            raise InputError(f"q (percentiles): expected percentiles from 0 to 100, got {q!r}")
+        return np.percentile(self.kernel, levels, axis=0)
 
     def variance_error(self, n_resamples=200, seed=0):
         """Bootstrap standard error of :meth:`variance`, per mass."""
@@ -133,8 +145,10 @@ class SightlineResult(KernelRows):
             samples[b] = kernel[pick].var(axis=0, ddof=1)
         return samples.std(axis=0, ddof=1)
 
-    def probability(self, epsilon, omega0_eV, saturate=False):
-        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``."""
+    def probability(self, epsilon, omega0_eV, saturate=None):
+        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``: linear,
+        or (``saturate`` None) in the saturating form where the linear one is not small (:meth:`saturates`)."""
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel, epsilon, omega0_eV, saturate=saturate)
 
     def boxes_fraction(self):
@@ -154,19 +168,11 @@ class SightlineResult(KernelRows):
     def load(cls, path):
         """Read a result written by :meth:`save`."""
         with open_result(path, FORMAT, "sightline") as handle:
-            result = cls(
-                handle["mass_eV"][...],
-                handle["kernel_boxes"][...],
-                handle["kernel_background"][...],
-                handle["crossings"][...],
-                handle["dispersion_measure_boxes"][...],
-                handle.attrs["dispersion_measure_background"],
-                handle["direction"][...],
-                json.loads(handle.attrs["run"]),
-                tangent_events=handle["tangent_events"][...],
-                kernel_tangent=handle["kernel_tangent"][...],
-            )
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
+            run, mass, arrays, dm_background = read_rows(handle, path, ROW_DATASETS + ("direction",))
+            result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
+                         arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
+                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size), result.mass_eV)
         return result
 
 

@@ -108,18 +108,24 @@ class HDF5Backend:
         self.resume = resume
         self.overwrite = overwrite
 
-    def refuse_if_finished(self):
-        """With --resume, a result already in place beside its checkpoint means a kill came between the
-        final save and the checkpoint's removal: the run is done. Remove the leftover and say so."""
+    def finished(self):
+        """With --resume: whether the result is already in place beside its checkpoint, complete and of the
+        checkpoint's run (a kill came between the final save and the checkpoint's removal). If so the
+        leftover checkpoint is removed."""
         if not (self.resume and self.path.is_file() and self.checkpoint.is_file()):
-            return
+            return False
         try:
             with h5py.File(self.path, "r") as result, h5py.File(self.checkpoint, "r") as checkpoint:
                 finished = bool(result.attrs.get("complete", False)) and result.attrs["run"] == checkpoint.attrs["run"]
         except (OSError, KeyError):
-            return
+            return False
         if finished:
             os.unlink(self.checkpoint)
+        return finished
+
+    def refuse_if_finished(self):
+        """An InputError when :meth:`finished`: there is nothing left to resume."""
+        if self.finished():
             raise InputError(f"{self.path}: this run is already complete (a kill after its final save left "
                              f"{self.checkpoint.name}, now removed); nothing to resume")
 

@@ -10,9 +10,21 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
+from raytrace.core.errors import InputError
 from raytrace.core.provenance import InputWatch
 from raytrace.tracing.checks import numba_threads
 from raytrace.tracing.progress import compile_notice, step_rows
+
+
+def check_backend_and_executor(backend, executor):
+    """An InputError saying what a backend and an executor must be, where they are not."""
+    needed = ("open", "completed_batches", "write_batch", "read", "finish")
+    if not all(callable(getattr(backend, name, None)) for name in needed):
+        raise InputError("backend: expected raytrace.tracing.backends.MemoryBackend() or HDF5Backend(path), "
+                         f"got {backend!r}")
+    if executor is not None and not callable(executor):
+        raise InputError(f"executor: expected None or a callable executor(tracer, batches) such as "
+                         f"raytrace.DaskExecutor('local'), got {executor!r}")
 
 
 def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
@@ -27,6 +39,7 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
     """
     from tqdm.auto import tqdm  # here: the CLI's --help does not pay for it
 
+    check_backend_and_executor(backend, executor)
     if executor is not None and hasattr(executor, "prepare"):
         executor.prepare(tracer)
     watch = InputWatch([(box.path, box.checksum) for box in tracer.boxes if box.path is not None])
