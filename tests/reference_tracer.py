@@ -58,6 +58,18 @@ def trace_run(values, start, direction, length_cells, chi0, cell_mpc, mass, reds
 
     ``values``: float64 comoving n_e (cm^-3) of the cells; ``mass`` in eV.
     """
+    found, dm = run_crossings(values, start, direction, length_cells, chi0, cell_mpc, mass, redshift,
+                              samples_per_cell)
+    kernel = np.zeros(mass.size)
+    crossings = np.zeros(mass.size, dtype=int)
+    for k, _, value, _ in found:
+        kernel[k] += value
+        crossings[k] += 1
+    return kernel, crossings, dm
+
+
+def run_crossings(values, start, direction, length_cells, chi0, cell_mpc, mass, redshift, samples_per_cell=512):
+    """([(mass index, z, kernel, path length in cells) per crossing, in mass order], DM) of one straight run."""
     n = int(np.ceil(length_cells * samples_per_cell))
     s = np.linspace(0.0, length_cells, n + 1)
     chi = chi0 + s * cell_mpc
@@ -69,8 +81,7 @@ def trace_run(values, start, direction, length_cells, chi0, cell_mpc, mass, reds
     def physical_at(x):
         return _field(values, start, direction, x)[0] * (1.0 + redshift.z(chi0 + x * cell_mpc)) ** 3
 
-    kernel = np.zeros(mass.size)
-    crossings = np.zeros(mass.size, dtype=int)
+    found = []
     targets = mass**2 / PLASMA_M2_PER_DENSITY
     for k, target in enumerate(targets):
         excess = physical - target
@@ -80,9 +91,8 @@ def trace_run(values, start, direction, length_cells, chi0, cell_mpc, mass, reds
             slope = (np.log(physical_at(root + h)) - np.log(physical_at(root - h))) / (2 * h * cell_mpc)
             opz = 1.0 + redshift.z(chi0 + root * cell_mpc)
             rate_eV = HBAR_EV_S * C_MPC_S * opz * abs(slope)  # |d ln n / dt| in eV
-            kernel[k] += np.pi * mass[k] ** 2 / (opz * rate_eV)
-            crossings[k] += 1
-    return kernel, crossings, dm
+            found.append((k, float(opz - 1.0), np.pi * mass[k] ** 2 / (opz * rate_eV), float(root)))
+    return found, dm
 
 
 def one_point_pdf_mean(values, n_com_unit, mass, z_max, points, seed, z_min=0.0):

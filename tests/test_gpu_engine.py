@@ -30,6 +30,9 @@ from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
 
 ROWS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent", "dispersion_measure_boxes")
+#: Per case, the rows compared besides ROWS: each ray's kernel per redshift cell (the tracers' own float64
+#: rows, which a run reduces batch by batch), a sky's maps per shell.
+EXTRA_ROWS = {"cells": ("kernel_cells",), "sky": ("kernel_shells_boxes",)}
 X_E = 1.08  # constant ionisation: no CAMB needed in the child or on a GPU machine (PHYSICS.md section 5)
 #: A GPU's kernels equal the CPU's to this fraction of the largest kernel of their mass (over the rows), and its
 #: DM to this relative difference; counts exactly. The simulator computes in the CPU's order with the CPU's IEEE
@@ -77,18 +80,41 @@ def sightline_run(device, **options):
 
 
 def sky_run(device):
-    """An nside-2 sky, 4 rays per pixel (averaged on the device), to z = 0.008 through the blended lattice."""
+    """An nside-2 sky, 4 rays per pixel (averaged on the device), to z = 0.008 through the blended lattice,
+    with maps of 3 redshift shells."""
     background = plasma()
     series = random_series(background)
     return raytrace.cast_sky(series, case_masses(series, False), 2, z_max=0.008, include_background=False,
-                             plasma=background, seed=3, rays_per_pixel=4, photon_energy_eV=1e-2, device=device)
+                             plasma=background, seed=3, rays_per_pixel=4, photon_energy_eV=1e-2, shells_z=3,
+                             device=device)
+
+
+def cell_rows(device):
+    """The 8 rays of :func:`sightline_run` traced with the default redshift bins and density classes: each
+    ray's rows, with its kernel per redshift cell (``kernel_cells``, float64)."""
+    from types import SimpleNamespace
+
+    from raytrace.tracing.redshiftbins import (
+        DEFAULT_BIN_COUNT,
+        DEFAULT_DENSITY_EDGES,
+        run_bins,
+    )
+    from raytrace.tracing.sightlines import GpuRayTracer, RayTracer
+
+    background = plasma()
+    series = random_series(background)
+    mass = case_masses(series, True)
+    bins = run_bins(DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, mass, background, 0.03, 0.03, False)
+    tracer = (RayTracer if device == "cpu" else GpuRayTracer)(series, mass, 0.03, 3, 1e-2, background.cosmology,
+                                                               bins)
+    return SimpleNamespace(run={"device": tracer.device}, **tracer.trace(np.arange(8)))
 
 
 def largest_differences(cpu, gpu):
     """Per quantity, the largest difference GPU - CPU over rows and masses: kernels as a fraction of the
     largest CPU kernel of their mass, DM relative, counts in events."""
     out = {}
-    for name in ROWS:
+    for name in [name for name in ROWS + ("kernel_cells", "kernel_shells_boxes") if hasattr(cpu, name)]:
         a, b = np.asarray(getattr(cpu, name), dtype=float), np.asarray(getattr(gpu, name), dtype=float)
         if name.startswith("kernel"):
             scale = np.max(np.abs(a), axis=0)
@@ -106,6 +132,8 @@ def check_same_rows(cpu, gpu):
     assert differences["crossings"] == 0 and differences["tangent_events"] == 0, differences
     assert differences["kernel_boxes"] <= KERNEL_RTOL and differences["kernel_tangent"] <= KERNEL_RTOL, differences
     assert differences["dispersion_measure_boxes"] <= DM_RTOL, differences
+    assert all(differences[name] <= KERNEL_RTOL for name in ("kernel_cells", "kernel_shells_boxes")
+               if name in differences), differences
     return differences
 
 
@@ -118,7 +146,8 @@ def simulate(path):
 
     warnings.simplefilter("ignore")  # the probed-range notes and numba's launch-size hints
     runs = {"sightlines": [sightline_run(device) for device in ("cpu", "gpu")],
-            "sky": [sky_run(device) for device in ("cpu", "auto")]}
+            "sky": [sky_run(device) for device in ("cpu", "auto")],
+            "cells": [cell_rows(device) for device in ("cpu", "gpu")]}
     # Against one call for all 8 rays: batches of 5 split into calls of 3 rays (3 a multiprocessor: the
     # simulator has one), and batches of 2 grouped into calls of 5.
     gputrace.RAYS_PER_MULTIPROCESSOR = 3
@@ -126,7 +155,8 @@ def simulate(path):
     gputrace.RAYS_PER_MULTIPROCESSOR = 5
     runs["grouped_calls"] = [runs["sightlines"][1], sightline_run("gpu", batch_size=2)]
     arrays = {f"{case}_{which}_{name}": np.asarray(getattr(result, name))
-              for case, results in runs.items() for which, result in zip(("a", "b"), results) for name in ROWS}
+              for case, results in runs.items() for which, result in zip(("a", "b"), results)
+              for name in ROWS + EXTRA_ROWS.get(case, ())}
     facts = {f"{case}_{which}_run": result.run for case, results in runs.items()
              for which, result in zip(("a", "b"), results)}
     np.savez(path, facts=json.dumps(facts), **arrays)
@@ -149,7 +179,7 @@ class Rows:
     """One run's rows as read back from the child's file."""
 
     def __init__(self, arrays, case, which):
-        for name in ROWS:
+        for name in ROWS + EXTRA_ROWS.get(case, ()):
             setattr(self, name, arrays[f"{case}_{which}_{name}"])
 
 
@@ -168,7 +198,25 @@ def test_simulated_gpu_sky_reproduces_the_cpu_sky_at_nside_2(simulated):
     cpu, gpu = Rows(arrays, "sky", "a"), Rows(arrays, "sky", "b")
     assert cpu.kernel_boxes.shape[0] == 48 and cpu.tangent_events.sum() >= 1
     assert facts["sky_b_run"]["device"] == "gpu"  # auto took the simulated GPU
-    assert max(check_same_rows(cpu, gpu).values()) == 0.0
+    shells = cpu.kernel_shells_boxes
+    assert shells.shape == (48, 3, 8) and np.count_nonzero(shells.any(axis=(0, 2))) >= 2  # crossings in 2+ shells
+    differences = check_same_rows(cpu, gpu)
+    assert "kernel_shells_boxes" in differences and max(differences.values()) == 0.0
+
+
+def test_simulated_gpu_kernel_per_redshift_cell_equals_the_cpus_per_ray_and_cell(simulated):
+    # The GPU carries each ray's kernel per redshift cell (default bins and density classes) as the CPU does.
+    arrays, facts = simulated
+    cpu, gpu = Rows(arrays, "cells", "a"), Rows(arrays, "cells", "b")
+    assert facts["cells_a_run"]["device"] == "cpu" and facts["cells_b_run"]["device"] == "gpu"
+    # The case has what it is meant to test: crossings spread over several cells of most rays, and the
+    # cells of a ray add up to its kernel (PHYSICS.md section 11; measured 2e-16, the order of a float64 sum).
+    assert cpu.kernel_cells.shape[0] == 8 and cpu.kernel_cells.shape[1] > 3
+    assert np.mean(np.count_nonzero(cpu.kernel_cells.any(axis=2), axis=1) >= 2) > 0.5
+    np.testing.assert_allclose(cpu.kernel_cells.sum(axis=1), cpu.kernel_boxes, rtol=1e-14, atol=0)
+    differences = check_same_rows(cpu, gpu)
+    assert "kernel_cells" in differences and max(differences.values()) == 0.0  # simulator: the CPU's arithmetic
+    np.testing.assert_array_equal(gpu.kernel_cells, cpu.kernel_cells)
 
 
 def test_gpu_rows_do_not_depend_on_the_size_of_calls_or_batches(simulated):
@@ -180,14 +228,15 @@ def test_gpu_rows_do_not_depend_on_the_size_of_calls_or_batches(simulated):
 
 
 def test_the_comparison_fails_on_a_small_slip(simulated):
-    # The tolerances bite: a kernel 1e-8 of its mass's largest off, a DM 1e-11 off, one crossing more.
+    # The tolerances bite: a kernel (also a cell's) 1e-8 of its mass's largest off, a DM 1e-11 off, one crossing more.
     arrays, _ = simulated
-    cpu = Rows(arrays, "sightlines", "a")
+    cpu = Rows(arrays, "cells", "a")
     for name, change in (("kernel_boxes", lambda a: a + 1e-8 * a.max(axis=0)),
                          ("kernel_tangent", lambda a: a + 1e-8 * a.max(axis=0)),
                          ("dispersion_measure_boxes", lambda a: a * (1 + 1e-11)),
-                         ("crossings", lambda a: a + (np.arange(a.size).reshape(a.shape) == 7))):
-        slipped = Rows(arrays, "sightlines", "a")
+                         ("crossings", lambda a: a + (np.arange(a.size).reshape(a.shape) == 7)),
+                         ("kernel_cells", lambda a: a + 1e-8 * a.max(axis=0))):
+        slipped = Rows(arrays, "cells", "a")
         setattr(slipped, name, change(getattr(cpu, name)))
         with pytest.raises(AssertionError):
             check_same_rows(cpu, slipped)
@@ -195,19 +244,27 @@ def test_the_comparison_fails_on_a_small_slip(simulated):
 
 def test_the_streaming_walk_gives_the_table_walks_bits_on_the_cpu():
     # The GPU walks a segment cell by cell (kernels/streaming.py), the CPU from tables: compiled for the
-    # CPU, the two must agree bit for bit on random segments through a box with empty cells, blended.
-    from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
+    # CPU, the two must agree bit for bit on random segments through a box with empty cells, blended, each
+    # crossing's kernel also in its redshift cell (default bins and classes).
     from raytrace.kernels.crossings import scratch, walk_segment
     from raytrace.kernels.streaming import stream_segment
+    from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
     from raytrace.tracing.rays import plan_rays
+    from raytrace.tracing.redshiftbins import (
+        DEFAULT_BIN_COUNT,
+        DEFAULT_DENSITY_EDGES,
+        run_bins,
+    )
 
     background = plasma()
     series = random_series(background)
     mass = case_masses(series, False)
     targets = mass**2 / PLASMA_MASS2_PER_DENSITY
     plan = plan_rays(background.cosmology, series, 0.03)
+    bins = run_bins(DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, mass, background, 0.03, 0.03, False)
     rng = np.random.default_rng(5)
     lo, hi = series.boxes[0], series.boxes[1]
+    cells_hit = set()
     for segment in range(20):
         start = rng.random(3) * 12
         direction = rng.standard_normal(3)
@@ -220,13 +277,17 @@ def test_the_streaming_walk_gives_the_table_walks_bits_on_the_cpu():
             kernel, count = np.zeros(mass.size), np.zeros(mass.size, np.int32)
             tangent_count, tangent_kernel = np.zeros(mass.size, np.int32), np.zeros(mass.size)
             cells, corners, points, marks = scratch(40.0)
+            cell_kernel = np.zeros((bins.n_cells, mass.size))
             dm = walk(lo.data, hi.data, lo.comoving_scale, hi.comoving_scale, segment % 2 == 0, 0.0, 0.01, start,
                       direction, 30.0, 20.0, 1.0, plan.one_plus_z, plan.hubble_over_c, 1.0 / plan.chi_step, targets,
                       np.log(targets), mass**2, False, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, 1e-2, cells,
-                      corners, points, marks, kernel, count, tangent_count, tangent_kernel)
-            rows.append((dm, kernel, count, tangent_count, tangent_kernel))
+                      corners, points, marks, kernel, count, tangent_count, tangent_kernel, bins.inner_opz,
+                      cell_kernel)
+            rows.append((dm, kernel, count, tangent_count, tangent_kernel, cell_kernel))
+        cells_hit |= set(np.flatnonzero(cell_kernel.any(axis=1)))
         for table, streamed in zip(*rows):
             np.testing.assert_array_equal(streamed, table)
+    assert len(cells_hit) >= 2  # the segments' kernels land in several redshift cells
 
 
 # -- choosing the device ---------------------------------------------------------------------------------------

@@ -22,6 +22,8 @@ from conftest import write_lognormal_box
 
 from raytrace.cli import main
 from raytrace.core.provenance import file_checksum
+from raytrace.statistics.binstats import BINNED_DATASETS
+from raytrace.statistics.onepoint import PdfMean
 from raytrace.statistics.results import SightlineResult
 from raytrace.tracing.sightlines import SIGHTLINE_LAYOUT
 
@@ -78,6 +80,9 @@ def datasets(path):
         arrays = {name: handle[name][...] for name in handle if isinstance(handle[name], h5py.Dataset)}
         # The built-in check's one-point-PDF mean (raytrace.statistics.meancheck) is a group of its own.
         arrays.update({f"pdf_mean/{name}": values[...] for name, values in handle["pdf_mean"].items()})
+        # So are the statistics per redshift bin, reduced batch by batch (raytrace.binstats): a resume
+        # reduces the finished batches again from the checkpoint, to the same bits.
+        arrays.update({f"redshift_bins/{name}": values[...] for name, values in handle["redshift_bins"].items()})
         return (arrays,
                 {"run": run, **{key: handle.attrs[key] for key in ("dispersion_measure_background", "complete")}})
 
@@ -85,9 +90,10 @@ def datasets(path):
 def assert_same_result(path, reference_path):
     arrays, attributes = datasets(path)
     expected_arrays, expected_attributes = datasets(reference_path)
+    binned = [f"redshift_bins/{name}" for name in BINNED_DATASETS if name != "ray_bins"]
     assert sorted(arrays) == sorted(expected_arrays) == sorted(
-        [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", "pdf_mean/kernel_boxes", "pdf_mean/kernel_background",
-         "pdf_mean/error"])
+        [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", *[f"pdf_mean/{name}" for name in PdfMean.ARRAYS],
+         *binned])
     for name, values in expected_arrays.items():
         assert np.array_equal(arrays[name], values), name
     assert attributes == expected_attributes

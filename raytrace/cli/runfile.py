@@ -25,7 +25,7 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
-from raytrace.cli.runvalues import NumberOrText, _check_range, _convert
+from raytrace.cli.runvalues import NumberOrText, check_range, convert
 from raytrace.core.errors import InputError
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 
@@ -141,9 +141,18 @@ OUTPUT_OPTIONS = (
     Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
 )
 
+#: When and where conversion happens (raytrace.redshiftbins): the kernel per redshift bin and density class.
+BIN_OPTIONS = (
+    Option("rays.redshift_bins", float, 16.0, "redshift bins of the kernel: a count (equal steps in ln(1+z) over the "
+           "boxes' redshifts, the background beyond in a bin of its own; 0: none) or edges in z", at_least=0.0,
+           listable=True, metavar="N|Z"),
+    Option("rays.density_classes", float, None, "edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density "
+           "classes (default: 1,100: voids, sheets and filaments, halos)", above=0.0, listable=True, metavar="D"),
+    Option("rays.keep_ray_bins", bool, False, "keep every ray's redshift bins in the result (rays x bins x masses)"),
+)
 SIGHTLINE_OPTIONS = (BOX_OPTIONS + MASS_OPTIONS
                      + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),)
-                     + TRACE_OPTIONS + OUTPUT_OPTIONS)
+                     + TRACE_OPTIONS + BIN_OPTIONS + OUTPUT_OPTIONS)
 
 #: The mass whose map a sky figure, the first FITS map and the report show (default: :func:`raytrace.report.plots.shown_mass_index`).
 SHOWN_MASS = Option("output.mass_eV", float, None, "dark-photon mass in eV of the map shown: the figure and the "
@@ -164,6 +173,8 @@ SKY_OPTIONS = (
         Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
+        Option("sky.shells", float, None, "redshift shells with a map each: edges in z (or a count, as "
+               "--redshift-bins)", at_least=0.0, listable=True, metavar="Z"),
         ISOTROPY_THRESHOLD,
         CL_LIMITS,
     )
@@ -304,12 +315,12 @@ def settings(args, options):
     values = {option.key: option.default for option in options}
     from_file = read_run_file(args.run_file, options) if getattr(args, "run_file", None) else {}
     by_key = {option.key: option for option in options}
-    from_flags = {option.key: _convert(option, getattr(args, option.dest), f"flag {option.flag}", from_flag=True)
+    from_flags = {option.key: convert(option, getattr(args, option.dest), f"flag {option.flag}", from_flag=True)
                   for option in options if getattr(args, option.dest, None) is not None}
     values.update(_one_mass_grid(from_file, from_flags))
     values.update(from_flags)
     for key, value in values.items():
-        _check_range(by_key[key], value)
+        check_range(by_key[key], value)
     return values
 
 
@@ -370,7 +381,7 @@ def read_run_file(path, options):
             if key not in known:
                 names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
                 raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")
-            found[key] = _convert(known[key], value, f"{path}: key {key}")
+            found[key] = convert(known[key], value, f"{path}: key {key}")
     if unused:
         print(f"raytrace: note: {path}: {', '.join(unused)} not used by this subcommand (another one's); ignored",
               file=sys.stderr)

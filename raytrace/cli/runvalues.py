@@ -15,7 +15,7 @@ class NumberOrText:
     """Option kind: a number, or text (a dataset path) when it does not read as one."""
 
 
-def _convert(option, value, where, from_flag=False):
+def convert(option, value, where, from_flag=False):
     """The value of an option, checked: one value of its kind, or for a listable option a
     list of them (a TOML list, or a flag's comma-separated text)."""
     if option.listable:
@@ -115,10 +115,10 @@ def _number_list(value, from_flag):
     return numbers
 
 
-def _check_range(option, value):
+def check_range(option, value):
     if isinstance(value, list):
         for item in value:
-            _check_range(option, item)
+            check_range(option, item)
         return
     if value is None or option.kind not in (int, float):
         return

@@ -42,6 +42,16 @@ def masses(values):
     return np.geomspace(low, high, count)
 
 
+def bins_value(value, flag):
+    """A bins option's value for the library: one number is a count (0: none), a list the edges in z."""
+    if value is None or isinstance(value, list):
+        return value
+    if not float(value).is_integer():
+        raise InputError(f"{flag}: one value is a count of bins, expected a whole number, got {value:g}; give edges "
+                         "in z as a comma-separated list")
+    return int(value)
+
+
 def observed_energy(values):
     from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
@@ -174,6 +184,8 @@ def run_outputs(values, output, plot):
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
             device=values["rays.device"],
+            redshift_bins=bins_value(values["rays.redshift_bins"], "--redshift-bins (TOML rays.redshift_bins)"),
+            keep_ray_bins=values["rays.keep_ray_bins"], **classes_option(values),
         )
     print_summary(result, values["output.epsilon"], omega0)
     if plot:
@@ -185,6 +197,12 @@ def run_outputs(values, output, plot):
         kernel_bands(result, ax, epsilon=values["output.epsilon"], omega0_eV=omega0)
         save_figure(figure, plot, overwrite=values["output.overwrite"], owner=owner_name(output))
         plt.close(figure)
+
+
+def classes_option(values):
+    """The density classes' edges as a keyword, where given (a single edge is a list of one)."""
+    edges = values["rays.density_classes"]
+    return {} if edges is None else {"density_classes": edges if isinstance(edges, list) else [edges]}
 
 
 def print_summary(result, epsilon, omega0):
@@ -224,6 +242,10 @@ def print_summary(result, epsilon, omega0):
         print(line)
     print("# MC/PDF: the mean over rays / the one-point-PDF mean of the same boxes (the built-in check), "
           "sem/PDF its standard error; hw16-84: half the 16-84 % range; top1%: the variance share of the top 1 % of rays")
+    from raytrace.report.environments import environment_lines
+
+    for line in environment_lines(result):
+        print(f"# {line}")
     _warn_spread(result)
 
 

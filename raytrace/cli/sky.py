@@ -5,6 +5,7 @@ import numpy as np
 from raytrace.cli.runfile import SKY_OPTIONS, add_flags, settings
 from raytrace.cli.sightlines import (
     _warn_spread,
+    bins_value,
     cluster_executor,
     load_boxes,
     masses,
@@ -78,6 +79,7 @@ def run_outputs(values):
             ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
             randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
             backend=backend, progress=True, executor=executor, device=values["rays.device"],
+            shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"),
         )
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
     shown = shown_mass_index(sky, values["output.mass_eV"])

@@ -16,7 +16,15 @@ import numpy as np
 
 from raytrace.core.errors import InputError, require_path
 from raytrace.core.provenance import atomic_output, hdf5_image, provenance_json
-from raytrace.core.resultchecks import format_version, mass_grid, read_arrays, run_record, scalar_attribute, sky_rows
+from raytrace.core.resultchecks import (
+    check_values,
+    format_version,
+    mass_grid,
+    read_arrays,
+    run_record,
+    scalar_attribute,
+    sky_rows,
+)
 
 #: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
 #: every dataset and stores crossings as float64 in sightline and sky files alike. Files without the
@@ -34,6 +42,7 @@ DATASETS = {
     "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
     "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
     "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+    "kernel_shells_boxes": ("eV", "kernel from the boxes per {row}, redshift shell (group redshift_shells) and mass"),
 }
 # Stored dtypes that differ from the arrays' own (the sightline counts are int32 while a run fills them,
 # a sky's are means over a pixel's rays).
@@ -63,17 +72,25 @@ def write_group(handle, name, datasets, attributes):
     return group
 
 
-def read_group(handle, name, n_masses):
+def read_group(handle, name, n_masses, per_mass=()):
     """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group.
 
-    Each dataset is one value per mass, finite and >= 0, and the group's JSON run record is there
-    and parsed (:mod:`raytrace.core.resultchecks`): a damaged group is an InputError naming it.
+    The datasets ``per_mass`` must be there, one value per mass, finite and >= 0; every other dataset
+    finite. A JSON run record, where the group has one, is parsed (:mod:`raytrace.core.resultchecks`).
+    A damaged group is an InputError naming it.
     """
     if name not in handle:
         return None
     group, path = handle[name], handle.file.filename
-    datasets = read_arrays(group, path, tuple(group), n_masses, prefix=f"{name}/", per_mass=True)
-    return datasets, {**dict(group.attrs), "run": run_record(group, path, where=f"attribute run of group {name}")}
+    datasets = read_arrays(group, path, tuple(per_mass), n_masses, prefix=f"{name}/", per_mass=True)
+    for key in group:
+        if key not in datasets:
+            datasets[key] = group[key][...]
+            check_values(datasets[key], path, f"dataset {name}/{key}", non_negative=False)
+    attributes = dict(group.attrs)
+    if "run" in attributes or name == "pdf_mean":
+        attributes["run"] = run_record(group, path, where=f"attribute run of group {name}")
+    return datasets, attributes
 
 
 def save_arrays(path, format_name, mass_eV, run, layout, source, overwrite, attributes, groups=None):
@@ -164,9 +181,11 @@ def _write_header(handle, format_name, mass_eV, run):
 
 
 def _check_finite(handle, path):
-    for name, item in handle.items():
+    def visit(name, item):
         if isinstance(item, h5py.Dataset) and item.dtype.kind == "f" and not np.all(np.isfinite(item[...])):
             raise InputError(f"{path}: dataset {name} would hold NaN or inf; nothing was written")
+
+    handle.visititems(visit)
     # Numbers stored as attributes (the background's dispersion measure) are results too.
     for name, value in handle.attrs.items():
         if np.asarray(value).dtype.kind == "f" and not np.all(np.isfinite(value)):

@@ -52,6 +52,7 @@ from raytrace.kernels.polynomial import (
 from raytrace.kernels.prefetch import prefetch
 from raytrace.kernels.tangent import tangent_events
 from raytrace.kernels.targets import both_targets
+from raytrace.kernels.zcells import add_to_cell
 
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
 _MAX_BREAKPOINTS = 6
@@ -346,14 +347,16 @@ def segment_constants(opz_table, hubble_table, chi_step_inverse, chi0, targets, 
 @both_targets
 def solve_cell(lower, upper, piece, opz_a, opz_b, h_a, h_b, end_value, k, blended, z_lo,
                inverse_z_interval, cell_mpc, kernel_unit, targets, ln_targets, mass2, uniform, inverse_spacing,
-               rate_unit, m2_per_density, omega0, points, marks, kernel, count, tangent_count, tangent_kernel):
+               rate_unit, m2_per_density, omega0, points, marks, kernel, count, tangent_count, tangent_kernel, cell_edges,
+               cell_kernel):
     """Add one cell's resonances into one ray's rows; return (P at its exit, the number of targets below
     that, its DM in Mpc cm^-3).
 
     ``lower`` (``upper``): the lower (upper) snapshot's cubic along the ray from the cell's entry,
     (c0, c1, c2, c3) scaled to comoving n_e (tuples: a call of more than 30 arguments cannot be inlined);
     ``piece``: the cell's length (cells); 1+z and H/c at its ends;
-    ``end_value``, ``k``: what the previous cell of the segment returned (-1, -1 for its first).
+    ``end_value``, ``k``: what the previous cell of the segment returned (-1, -1 for its first);
+    ``cell_edges``/``cell_kernel``: each kernel also goes to its redshift cell (:mod:`.zcells`).
     """
     n_targets = targets.shape[0]
     c0, c1, c2, c3 = lower
@@ -391,16 +394,18 @@ def solve_cell(lower, upper, piece, opz_a, opz_b, h_a, h_b, end_value, k, blende
     if n_ext > 0:
         tangent_events(points[0], points[1], k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
                        rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
-                       tangent_count, tangent_kernel)
+                       tangent_count, tangent_kernel, cell_edges, cell_kernel)
     weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
     k = _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, n_ext > 0, k, points, marks, targets, mass2, cell_mpc,
-                      kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count)
+                      kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count,
+                      cell_edges, cell_kernel)
     return points[1, n_bp - 1], k, dm
 
 
 @both_targets
 def _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, has_extrema, k, points, marks, targets, mass2, cell_mpc,
-                  kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count):
+                  kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count,
+                  cell_edges, cell_kernel):
     """Add the Landau-Zener crossings of a cell's monotone pieces (between breakpoints ``points``),
     leaving out those its near-tangent events claimed (``marks``); return the targets below its exit."""
     n_targets = targets.shape[0]
@@ -428,8 +433,10 @@ def _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, has_extrema, k, points, marks, t
                 continue
             target = targets[crossed]
             root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
-            kernel[crossed] += _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a,
-                                                slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term)
+            value = _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a, slope_opz,
+                                     h_a, slope_h, d_a, d_1, blended, weight_term)
+            kernel[crossed] += value
+            add_to_cell(cell_kernel, cell_edges, crossed, opz_a + slope_opz * root, value)
             count[crossed] += 1
     return k
 
@@ -441,13 +448,14 @@ def _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, has_extrema, k, points, marks, t
 def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                  cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
                  rate_unit, m2_per_density, omega0, cells, corners, points, marks, kernel, count, tangent_count,
-                 tangent_kernel):
+                 tangent_kernel, cell_edges, cell_kernel):
     """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
 
     ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
     cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
     the observed photon energy of near-tangent events (eV; 0 turns them off);
-    ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`.
+    ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`;
+    ``cell_edges``/``cell_kernel``: each kernel also goes to its redshift cell (:mod:`.zcells`).
     The CPU's walk: the segment's cells are tabulated first (their cube reads overlap),
     then solved in turn (:func:`solve_cell`); :func:`~.streaming.stream_segment` is the
     same walk cell by cell, without tables.
@@ -473,7 +481,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
             (cells[c, 8], cells[c, 9], cells[c, 10], cells[c, 11]), cells[c, 0] - s_a, opz_a, opz_b, h_a, h_b,
             end_value, k, blended, z_lo, inverse_z_interval, cell_mpc, kernel_unit, targets, ln_targets, mass2,
             uniform, inverse_spacing, rate_unit, m2_per_density, omega0, points, marks, kernel, count, tangent_count,
-            tangent_kernel)
+            tangent_kernel, cell_edges, cell_kernel)
         dm += dm_cell
         s_a = cells[c, 0]
         opz_a, h_a = opz_b, h_b

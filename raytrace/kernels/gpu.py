@@ -39,8 +39,8 @@ _COLUMNS = crossings._CELL_COLUMNS
 @cuda.jit(cache=True)
 def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piece_segment, piece_chi_a,
                  piece_chi_b, segment_chi0, cell_mpc, starts, directions, opz_table, hubble_table,
-                 chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                 kernel, count, tangent_count, tangent_kernel, dispersion):
+                 chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges,
+                 kernel, count, tangent_count, tangent_kernel, dispersion, cell_kernel):
     r = cuda.grid(1)
     if r >= kernel.shape[0]:
         return
@@ -52,15 +52,16 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
     point = cuda.local.array(3, numba.float64)
     _sightline_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piece_segment, piece_chi_a,
                    piece_chi_b, segment_chi0, cell_mpc, starts, directions, opz_table, hubble_table,
-                   chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                   cells, corners, points, marks, point, kernel, count, tangent_count, tangent_kernel, dispersion)
+                   chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges,
+                   cells, corners, points, marks, point, kernel, count, tangent_count, tangent_kernel, dispersion,
+                   cell_kernel)
 
 
 @cuda.jit(cache=True)
 def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                   box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse,
-                  targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                  kernel, count, tangent_count, tangent_kernel, dispersion):
+                  targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges,
+                  kernel, count, tangent_count, tangent_kernel, dispersion, cell_kernel):
     r = cuda.grid(1)
     if r >= kernel.shape[0]:
         return
@@ -75,8 +76,9 @@ def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi
     heading = cuda.local.array(3, numba.float64)
     _lattice_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                  box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse, targets,
-                 ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points, marks, copy,
-                 next_face, step, point, heading, kernel, count, tangent_count, tangent_kernel, dispersion)
+                 ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges, cells, corners, points,
+                 marks, copy, next_face, step, point, heading, kernel, count, tangent_count, tangent_kernel, dispersion,
+                 cell_kernel)
 
 
 @cuda.jit(cache=True)

@@ -25,8 +25,9 @@ from raytrace.kernels.targets import both_targets
 @both_targets(inline=False)
 def lattice_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                 box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse, targets,
-                ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points, marks, copy,
-                next_face, step, point, heading, kernel, count, tangent_count, tangent_kernel, dispersion):
+                ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges, cells, corners, points, marks,
+                copy, next_face, step, point, heading, kernel, count, tangent_count, tangent_kernel, dispersion,
+                cell_kernel):
     """Ray r from chi_a to chi_b, copy by copy (``copy`` (int64), ``next_face``, ``step``, ``point``,
     ``heading``: scratch of 3; the others: of the walk)."""
     n = cube_lo.shape[0]
@@ -74,7 +75,7 @@ def lattice_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, ch
                 cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, heading,
                 (chi_end - chi) * cells_per_mpc, chi, cell_mpc, opz_table, hubble_table, chi_step_inverse,
                 targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points, marks,
-                kernel[r], count[r], tangent_count[r], tangent_kernel[r])
+                kernel[r], count[r], tangent_count[r], tangent_kernel[r], cell_edges, cell_kernel[r])
         if next_face[axis_next] >= chi_b:
             break
         chi = chi_end
@@ -85,13 +86,13 @@ def lattice_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, ch
 @numba.njit(cache=True, parallel=True)
 def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                   box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse,
-                  targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                  kernel, count, tangent_count, tangent_kernel, dispersion):
+                  targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges,
+                  kernel, count, tangent_count, tangent_kernel, dispersion, cell_kernel):
     n = cube_lo.shape[0]
     for r in numba.prange(kernel.shape[0]):
         cells, corners, points, marks = scratch(math.sqrt(3.0) * n)  # a copy's longest chord is its diagonal
         lattice_ray(r, cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                     box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse,
-                    targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points,
-                    marks, np.empty(3, dtype=np.int64), np.empty(3), np.empty(3), np.empty(3), np.empty(3), kernel,
-                    count, tangent_count, tangent_kernel, dispersion)
+                    targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cell_edges, cells, corners,
+                    points, marks, np.empty(3, dtype=np.int64), np.empty(3), np.empty(3), np.empty(3), np.empty(3),
+                    kernel, count, tangent_count, tangent_kernel, dispersion, cell_kernel)

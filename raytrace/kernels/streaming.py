@@ -28,7 +28,7 @@ from raytrace.kernels.targets import both_targets
 def stream_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                    cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
                    rate_unit, m2_per_density, omega0, cells, corners, points, marks, kernel, count, tangent_count,
-                   tangent_kernel):
+                   tangent_kernel, cell_edges, cell_kernel):
     """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3."""
     n0, n1, n2 = cube_lo.shape
     # Position on the interpolation grid: cell centres sit at integer + 1/2.
@@ -59,7 +59,7 @@ def stream_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, st
                 (scale_hi * u0, scale_hi * u1, scale_hi * u2, scale_hi * u3), s_end - s, opz_a, opz_b, h_a, h_b,
                 end_value, k, blended, z_lo, inverse_z_interval, cell_mpc, kernel_unit, targets, ln_targets, mass2,
                 uniform, inverse_spacing, rate_unit, m2_per_density, omega0, points, marks, kernel, count,
-                tangent_count, tangent_kernel)
+                tangent_count, tangent_kernel, cell_edges, cell_kernel)
             dm += dm_cell
             opz_a, h_a = opz_b, h_b
         if s_end >= length:

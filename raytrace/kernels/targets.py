@@ -1,7 +1,7 @@
 """One Python source, two compilers: the engine's scalar helpers for the CPU and for a CUDA GPU.
 
 In: functions decorated with :func:`both_targets` (the per-cell mathematics of
-:mod:`.crossings`, :mod:`.polynomial`, :mod:`.tangent`, :mod:`.geometry` and the
+:mod:`.crossings`, :mod:`.polynomial`, :mod:`.tangent`, :mod:`.zcells`, :mod:`.geometry` and the
 per-ray bodies of :mod:`.sightlines` and :mod:`.lattice`). Out: each is compiled
 for the CPU at once (``numba.njit(cache=True)``, as before); :func:`device_twins`
 compiles the same Python source again as CUDA device functions.

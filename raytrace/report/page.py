@@ -24,6 +24,7 @@ from raytrace.limits.spectral import UnconstrainedMassWarning, result_kernels, s
 from raytrace.limits.spectrum import Spectrum, read_spectrum
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 from raytrace.report.crosscheck import warn_differences
+from raytrace.report.environments import environment_lines, environment_page
 from raytrace.report.plots import kernel_bands, shown_mass_index
 from raytrace.report.trust import trust_lines
 from raytrace.sky.maps import SkyResult
@@ -60,7 +61,9 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     ``mass_eV``: the sky map's mass (default: :func:`raytrace.report.plots.shown_mass_index`,
     the rule the sky figure follows). A sky from another set-up (boxes, masses,
     history, seed) is warned about, one line per difference. ``kinds``: which of
-    png, pdf and txt to write. Returns a dict kind -> path.
+    png, pdf and txt to write. A run with redshift bins gets a second page,
+    ``<path_stem>_where.png`` / ``.pdf`` / ``.txt`` (:mod:`raytrace.report.environments`: where
+    and when conversion happens). Returns a dict kind -> path.
     """
     unknown = set(kinds) - set(KINDS)
     if unknown or not kinds:
@@ -68,6 +71,10 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS if kind in kinds}
     check_outputs(paths.values(), overwrite)  # refuse before any work
     result = _load(sightlines, SightlineResult)
+    if result.redshift_bins is not None:
+        where = {f"where_{kind}": Path(f"{path_stem}_where.{kind}") for kind in KINDS if kind in kinds}
+        check_outputs(where.values(), overwrite)
+        paths.update(where)
     sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
     if sky is not None:
@@ -92,6 +99,12 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
                     figure.savefig(temporary, format=kind, dpi=DPI)
         finally:
             plt.close(figure)
+        for kind in ("png", "pdf"):
+            if f"where_{kind}" in paths:
+                environment_page(result, paths[f"where_{kind}"], overwrite)
+        if "where_txt" in paths:
+            with atomic_output(paths["where_txt"], overwrite) as temporary:
+                temporary.write_text("".join(line + "\n" for line in environment_lines(result)))
         if "txt" in paths:
             with atomic_output(paths["txt"], overwrite) as temporary:
                 temporary.write_text(text)

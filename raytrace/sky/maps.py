@@ -19,10 +19,12 @@ import numpy as np
 from raytrace.core.errors import InputError
 from raytrace.core.resultfiles import open_result, read_group, read_rows, save_arrays
 from raytrace.physics.conversion import anisotropy_per_probability
-from raytrace.statistics.meancheck import attach_pdf_check, pdf_check_group, read_pdf_check
+from raytrace.statistics.meancheck import attach_pdf_check, read_pdf_check
+from raytrace.statistics.onepoint import PER_MASS
 from raytrace.statistics.results import KernelRows, tangent_arrays
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
 from raytrace.tracing.lattice import FORMAT, SKY_LAYOUT, trace_sky
+from raytrace.tracing.redshiftbins import background_by_bin
 
 
 def _healpy():
@@ -50,6 +52,33 @@ class SkyResult(KernelRows):
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
+        self.shell_edges_z = self.kernel_shells_boxes = self.shells_background = None
+
+    def set_shells(self, edges_z, kernel_shells_boxes, shells_background):
+        """Give the result its maps per redshift shell: edges (S+1), the boxes' maps (npix, S, n_masses)
+        and the background's part of each shell (S, n_masses), the same in every pixel."""
+        self.shell_edges_z = np.asarray(edges_z, dtype=float)
+        self.kernel_shells_boxes = np.asarray(kernel_shells_boxes, dtype=float)
+        self.shells_background = np.asarray(shells_background, dtype=float)
+        if self.kernel_shells_boxes.shape != (self.npix, self.shell_edges_z.size - 1, self.mass_eV.size):
+            raise InputError(f"kernel_shells_boxes: expected shape {(self.npix, self.shell_edges_z.size - 1)} + "
+                             f"(masses,), got {self.kernel_shells_boxes.shape}")
+
+    @property
+    def kernel_shells(self):
+        """K in eV per pixel, redshift shell and mass (boxes plus background); None without shells."""
+        if self.kernel_shells_boxes is None:
+            return None
+        return self.kernel_shells_boxes + self.shells_background[None]
+
+    def shell_map(self, mass_eV, shell):
+        """The map of K (eV) of shell ``shell`` (index) at the grid mass nearest ``mass_eV``."""
+        if self.kernel_shells_boxes is None:
+            raise InputError("shell_map: this sky was cast without redshift shells (shells_z, --shells)")
+        count = self.shell_edges_z.size - 1
+        if not (isinstance(shell, (int, np.integer)) and 0 <= shell < count):
+            raise InputError(f"shell: expected a shell index from 0 to {count - 1}, got {shell!r}")
+        return self.kernel_shells[:, shell, self.mass_index(mass_eV)]
 
     def __repr__(self):
         return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
@@ -92,10 +121,21 @@ class SkyResult(KernelRows):
         return healpy.anafast(ring - ring.mean(), lmax=lmax)
 
     # -- files ------------------------------------------------------------------------
+    def stored_groups(self):
+        """The groups beside the per-pixel arrays: the built-in check's and the shells', where there are."""
+        groups = super().stored_groups()
+        if self.kernel_shells_boxes is not None:
+            groups["redshift_shells"] = ({
+                "edges_z": (self.shell_edges_z, "1", "edges in z of the redshift shells of kernel_shells_boxes"),
+                "background": (self.shells_background, "eV", "the homogeneous background's kernel per shell and "
+                               "mass, the same in every pixel")}, {})
+        return groups
+
     def save(self, path, overwrite=False):
-        groups = {} if self.pdf_check is None else {"pdf_mean": pdf_check_group(self.pdf_check)}
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background}, groups)
+        layout = SKY_LAYOUT if self.kernel_shells_boxes is None else dict(SKY_LAYOUT, kernel_shells_boxes=None)
+        return save_arrays(path, FORMAT, self.mass_eV, self.run, layout, self, overwrite,
+                           {"dispersion_measure_background": self.dispersion_measure_background},
+                           self.stored_groups())
 
     @classmethod
     def load(cls, path):
@@ -105,7 +145,10 @@ class SkyResult(KernelRows):
             result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
                          arrays["dispersion_measure_boxes"], dm_background, run,
                          tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size), result.mass_eV)
+            shells = read_group(handle, "redshift_shells", mass.size)
+            if shells is not None:
+                result.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
+            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
         return result
 
     def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None, shown_eV=None):
@@ -149,8 +192,8 @@ class SkyResult(KernelRows):
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu",
-             **removed):
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
+             device="cpu", **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
@@ -160,11 +203,15 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     Other arguments (``backend``, ``executor`` for a cluster) as in
     :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
     results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
+    :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
+    (``kernel_shells``), each crossing in the shell of its redshift.
     """
     traced = trace_sky(series, mass_eV, nside, z_max, seed=seed, rays_per_pixel=rays_per_pixel, n_jobs=n_jobs,
                        include_background=include_background, z_boxes=z_boxes, ordering=ordering, plasma=plasma,
                        randomise_copies=randomise_copies, batch_pixels=batch_pixels, backend=backend,
-                       progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, device=device,
+                       progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, shells_z=shells_z,
+                       device=device,
                        **removed)
     arrays, nside = traced.arrays, traced.run["nside"]
     if traced.run["ordering"] == "RING":
@@ -174,5 +221,11 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     result = SkyResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
                        arrays["dispersion_measure_boxes"], traced.dispersion_measure_background, traced.run,
                        tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+    edges = traced.run["shell_edges_z"]
+    if edges is not None:
+        run, plasma = traced.run, traced.plasma
+        by_shell, _ = background_by_bin(plasma, traced.mass_eV, run["z_boxes"],
+                                        run["z_max"] if run["include_background"] else run["z_boxes"], np.array(edges))
+        result.set_shells(edges, arrays["kernel_shells_boxes"], by_shell)
     attach_pdf_check(result, traced.series, traced.plasma, n_jobs)  # the built-in check (raytrace.statistics.meancheck)
     return traced.backend.finish(result)

@@ -9,15 +9,19 @@ and loaded from HDF5 with provenance (the file format is
 :mod:`raytrace.statistics.meancheck` attached by :func:`cast_sightlines`.
 """
 
+from functools import partial
+
 import numpy as np
 
 from raytrace.core.errors import InputError, float_array
 from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_arrays
 from raytrace.physics.conversion import probability_from_kernel
+from raytrace.statistics.binstats import BinAccumulator, binned_group, read_binned
 from raytrace.statistics.meancheck import attach_pdf_check, mean_check, pdf_check_group, read_pdf_check
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
-from raytrace.statistics.onepoint import PdfMean
+from raytrace.statistics.onepoint import PER_MASS, PdfMean
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.tracing.redshiftbins import DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES
 from raytrace.tracing.sightlines import FORMAT, SIGHTLINE_LAYOUT, trace_sightlines
 
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
@@ -29,6 +33,8 @@ class KernelRows:
 
     #: The one-point-PDF mean over the same redshifts (:mod:`raytrace.statistics.meancheck`), when computed.
     pdf_check = None
+    #: The kernel per redshift bin and density class (:class:`raytrace.binstats.BinnedKernels`), when asked.
+    redshift_bins = None
 
     def mean_check(self):
         """The Monte Carlo mean against :attr:`pdf_check` per mass (a MeanCheck), or None without one."""
@@ -106,6 +112,13 @@ class SightlineResult(KernelRows):
                       self.dispersion_measure_boxes, self.direction, self.tangent_events, self.kernel_tangent):
             array.flags.writeable = False
 
+    def stored_groups(self):
+        """The groups beside the per-ray arrays: the built-in check's and the redshift bins', where there are."""
+        groups = super().stored_groups()
+        if self.redshift_bins is not None:
+            groups["redshift_bins"] = binned_group(self.redshift_bins)
+        return groups
+
     def __repr__(self):
         return f"SightlineResult({self.n_rays} rays, {self._mass_range()})"
 
@@ -172,7 +185,8 @@ class SightlineResult(KernelRows):
             result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
                          arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
                          tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size), result.mass_eV)
+            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
+            result.redshift_bins = read_binned(read_group(handle, "redshift_bins", mass.size))
         return result
 
 
@@ -200,7 +214,8 @@ def load_mean_result(path):
 
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                     batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu", **removed):
+                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=DEFAULT_BIN_COUNT,
+                    density_classes=DEFAULT_DENSITY_EDGES, keep_ray_bins=False, device="cpu", **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Returns a :class:`SightlineResult` carrying its built-in check (the
@@ -229,6 +244,14 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     photon_energy_eV : observed photon energy (eV) at which near-tangent pairs take
         their Airy form (PHYSICS.md section 9); every other crossing's kernel is
         frequency-free. Default: k T_0.
+    redshift_bins : the kernel per redshift bin as well (:mod:`raytrace.tracing.redshiftbins`): a count
+        (equal steps in ln(1+z) over the boxes' redshifts, the background beyond in one bin;
+        default 16), edges in z, or None; the result's ``redshift_bins`` holds the mean,
+        variance and percentiles over rays per bin, per density class and per cumulative edge
+        (:class:`raytrace.statistics.binstats.BinnedKernels`)
+    density_classes : edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density classes
+        (default 1 and 100: voids, sheets and filaments, halos)
+    keep_ray_bins : also keep every ray's bins (rays x bins x masses) in the result
     device : "cpu", "gpu" (CUDA through numba-cuda: the ``gpu`` extra) or "auto"
         (a GPU where numba-cuda sees one, else the CPU); the run records the
         device used. Per ray, a GPU's rows equal the CPU's to rounding.
@@ -236,11 +259,15 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     traced = trace_sightlines(series, mass_eV, n_rays, z_max, seed=seed, n_jobs=n_jobs,
                               include_background=include_background, z_boxes=z_boxes, batch_size=batch_size,
                               plasma=plasma, backend=backend, progress=progress, executor=executor,
-                              photon_energy_eV=photon_energy_eV, device=device, **removed)
+                              photon_energy_eV=photon_energy_eV, redshift_bins=redshift_bins,
+                              density_classes=density_classes,
+                              reducer=partial(BinAccumulator.for_run, keep_rays=bool(keep_ray_bins)), device=device,
+                              **removed)
     arrays = traced.arrays
     result = SightlineResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
                              arrays["dispersion_measure_boxes"], traced.dispersion_measure_background,
                              arrays["direction"], traced.run, tangent_events=arrays["tangent_events"],
                              kernel_tangent=arrays["kernel_tangent"])
+    result.redshift_bins = None if traced.reducer is None else traced.reducer.finish()
     attach_pdf_check(result, traced.series, traced.plasma, n_jobs)
     return traced.backend.finish(result)

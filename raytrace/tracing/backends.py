@@ -39,23 +39,37 @@ def _differences(stored, current, where=""):
     return [] if stored == current else [f"{where}: checkpoint {stored!r}, now {current!r}"]
 
 
+#: A layout entry (shape, dtype, STREAMED) is a run's input to a reduction (raytrace.binstats), not a result:
+#: memory holds it only while its batch is reduced; a checkpoint keeps it, for a resume to reduce again.
+STREAMED = "streamed"
+
+
+def kept(layout):
+    """The names of ``layout`` that a run keeps: every entry but the streamed ones."""
+    return [name for name, entry in layout.items() if STREAMED not in entry[2:]]
+
+
 class MemoryBackend:
-    """Holds a run's per-row arrays (rows: rays or pixels) in memory."""
+    """Holds a run's per-row arrays (rows: rays or pixels) in memory; streamed ones not at all."""
 
     def open(self, mass_eV, n_rows, run, n_batches, layout, format_name):
-        self.arrays = {name: np.zeros(shape(n_rows, mass_eV.size), dtype) for name, (shape, dtype) in layout.items()}
+        self.arrays = {name: np.zeros(layout[name][0](n_rows, mass_eV.size), layout[name][1]) for name in kept(layout)}
         self.done = np.zeros(n_batches, dtype=bool)
 
     def completed_batches(self):
         return self.done.copy()
 
     def write_batch(self, batch, start, arrays):
-        for name, values in arrays.items():
-            self.arrays[name][start:start + values.shape[0]] = values
+        for name, values in self.arrays.items():
+            values[start:start + arrays[name].shape[0]] = arrays[name]
         self.done[batch] = True
 
     def read(self):
         return self.arrays
+
+    def read_rows(self, start, stop, names):
+        """Rows start..stop of the kept arrays ``names`` (a fresh run's memory holds no finished batch)."""
+        return {name: self.arrays[name][start:stop] for name in names}
 
     def finish(self, result):
         return result
@@ -163,12 +177,12 @@ class HDF5Backend:
         allocate = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
         allocate.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
         allocate.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
-        shapes = {name: shape(n_rows, mass_eV.size) for name, (shape, _) in self.layout.items()}
+        shapes = {name: entry[0](n_rows, mass_eV.size) for name, entry in self.layout.items()}
         with atomic_output(self.checkpoint, overwrite=True, at_once=True) as temporary:
             with h5py.File(temporary, "w") as handle:
                 _write_header(handle, format_name, mass_eV, run)
                 handle.attrs["header_sha256"] = _header_digest(handle.attrs["run"], shapes)
-                for name, (_, dtype) in self.layout.items():
+                for name, (_, dtype, *_) in self.layout.items():
                     handle.create_dataset(name, shape=shapes[name], dtype=dtype, dcpl=allocate)
                 handle.create_dataset("batch_rows", shape=(n_batches, 2), dtype=np.int64, dcpl=allocate)
                 handle.create_dataset("batch_sha256", shape=(n_batches, 32), dtype=np.uint8, dcpl=allocate)
@@ -218,7 +232,7 @@ class HDF5Backend:
         return done
 
     def write_batch(self, batch, start, arrays):
-        rows = {name: np.ascontiguousarray(arrays[name], dtype=dtype) for name, (_, dtype) in self.layout.items()}
+        rows = {name: np.ascontiguousarray(arrays[name], dtype=entry[1]) for name, entry in self.layout.items()}
         stop = start + next(iter(rows.values())).shape[0]
         try:
             for name, values in rows.items():
@@ -237,7 +251,11 @@ class HDF5Backend:
                                 "free space and continue with --resume") from None
 
     def read(self):
-        return {name: self.handle[name][...] for name in self.layout}
+        return {name: self.handle[name][...] for name in kept(self.layout)}
+
+    def read_rows(self, start, stop, names):
+        """Rows start..stop of the arrays ``names``, streamed ones included (a resume reduces them again)."""
+        return {name: self.handle[name][start:stop] for name in names}
 
     def finish(self, result):
         self.handle.close()

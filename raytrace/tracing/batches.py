@@ -28,12 +28,14 @@ def check_backend_and_executor(backend, executor):
 
 
 def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
-                unit, description):
+                unit, description, reducer=None):
     """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` and return its arrays.
 
     Batches the backend already holds (a resumed checkpoint) are skipped; the rest
     run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
-    written to the backend as it completes. The box files must not change meanwhile:
+    written to the backend as it completes, then given to ``reducer`` (``add(batch,
+    start, arrays)``; a resume gives it the finished batches' rows of ``reducer.names``
+    first). The box files must not change meanwhile:
     their size and modification time are compared after every batch, their
     checksums once at the end (InputError naming the file).
     """
@@ -47,6 +49,9 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
     backend.open(mass, n_rows, run, len(starts), layout, format_name)
     done = backend.completed_batches()
     todo = [(b, s, min(s + batch_size, n_rows)) for b, s in enumerate(starts) if not done[b]]
+    if reducer is not None:
+        for b in np.flatnonzero(done):
+            reducer.add(b, starts[b], backend.read_rows(starts[b], min(starts[b] + batch_size, n_rows), reducer.names))
     with tqdm(total=n_rows, initial=n_rows - sum(stop - start for _, start, stop in todo), unit=unit,
               desc=description, disable=not progress) as bar:
         if executor is None:
@@ -64,15 +69,21 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
                         bar.update(min(first + step, stop) - first)
                     arrays = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
                     watch.quick()  # before the write: a batch that read a changed box is never stored
-                    backend.write_batch(b, start, arrays)
+                    _store(backend, reducer, b, start, arrays)
         else:
             finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):
                 watch.quick()
-                backend.write_batch(b, start, arrays)
+                _store(backend, reducer, b, start, arrays)
                 bar.update(finished[b])
     watch.final()
     return backend.read()
+
+
+def _store(backend, reducer, batch, start, arrays):
+    backend.write_batch(batch, start, arrays)
+    if reducer is not None:
+        reducer.add(batch, start, arrays)
 
 
 @dataclass(frozen=True, eq=False)
@@ -88,3 +99,5 @@ class Traced:
     plasma: object
     backend: object
     n_jobs: object
+    #: What took the batches' redshift cells (``reducer`` of :func:`run_batches`), where there were any.
+    reducer: object = None

@@ -55,13 +55,13 @@ class GpuTracing:
         self._resident = {id(array): (array, cuda.to_device(np.ascontiguousarray(array))) for array in resident}
         free, _ = cuda.current_context().get_memory_info()
         multiprocessors = getattr(cuda.get_current_device(), "MULTIPROCESSOR_COUNT", 1)
-        row_bytes = rays_per_row * (self.mass2.size * 24 + 8 + _RAY_BYTES)
+        row_bytes = rays_per_row * (self.mass2.size * (24 + 8 * self.cell_count) + 8 + _RAY_BYTES)
         self.rows_per_call = int(max(1, min(multiprocessors * RAYS_PER_MULTIPROCESSOR // rays_per_row,
                                             min(free, 2.0**62) / 10 / row_bytes)))
 
     def _physics_resident(self):
         plan = self.plan
-        return [plan.one_plus_z, plan.hubble_over_c, self.targets, self.ln_targets, self.mass2]
+        return [plan.one_plus_z, plan.hubble_over_c, self.targets, self.ln_targets, self.mass2, self.cell_edges]
 
     def _launch(self, kernel, n_rays, arguments, out, sent):
         """Run ``kernel`` over ``n_rays`` threads; host arrays among ``arguments`` go as the run's resident

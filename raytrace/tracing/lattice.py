@@ -24,8 +24,6 @@ from raytrace.core.errors import InputError, require_number
 from raytrace.kernels.lattice import trace_lattice
 from raytrace.tracing.backends import MemoryBackend
 from raytrace.tracing.batches import Traced, run_batches
-from raytrace.tracing.devices import choose_device, device_record, device_tracer
-from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
     background_part,
@@ -38,7 +36,10 @@ from raytrace.tracing.checks import (
     check_trace_options,
     warn_outside_probed_range,
 )
+from raytrace.tracing.devices import choose_device, device_record, device_tracer
+from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.rays import CUBE_SYMMETRIES
+from raytrace.tracing.redshiftbins import bin_edges, bin_setup
 from raytrace.tracing.sightlines import Tracer
 
 FORMAT = "raytrace-sky-2"
@@ -79,12 +80,21 @@ def observer_position(seed, box_size_cMpc):
     return rng.random(3) * box_size_cMpc
 
 
+def sky_layout(shells):
+    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT`, with the maps of each shell where there are shells."""
+    if shells is None:
+        return SKY_LAYOUT
+    count = shells.n_bins
+    return dict(SKY_LAYOUT, kernel_shells_boxes=(lambda r, m: (r, count, m), np.float64))
+
+
 class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
-                 randomise_copies=True):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+                 randomise_copies=True, shells=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, shells)
+        self.shells = shells
         self.nside = nside
         self.level = _sub_pixel_level(rays_per_pixel)
         self.randomise = bool(randomise_copies)
@@ -107,8 +117,14 @@ class SkyTracer(Tracer):
         for span in range(self.plan.n_spans):
             trace_lattice(*self._lattice_arguments(span, directions), *out.values())
         per_pixel = 4**self.level
-        return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
-                for name, values in out.items()}
+        return self._with_shells({name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
+                                  for name, values in out.items()})
+
+    def _with_shells(self, pixel):
+        """A batch's per-pixel arrays, with each pixel's kernel per shell where the run has shells."""
+        if self.shells is not None:
+            pixel["kernel_shells_boxes"] = self.shells.cells_to_bins(pixel["kernel_cells"])
+        return pixel
 
     def _lattice_arguments(self, span, directions):
         """The arguments of a lattice kernel for span ``span``, all but the outputs."""
@@ -141,19 +157,24 @@ class GpuSkyTracer(GpuTracing, SkyTracer):
         per_pixel = 4**self.level
         means = {}
         for name, values in out.items():
-            rays = values.reshape(n_rays, values.size // n_rays)
-            mean = cuda.device_array((pixels.size, rays.shape[1]))
-            grid = ((pixels.size + 31) // 32, (rays.shape[1] + 3) // 4)
-            self._gpu.average_rows[grid, (32, 4)](rays, per_pixel, mean)
+            columns = values.size // n_rays
+            if columns == 0:  # no redshift cells: nothing to average, and a grid of no blocks is no launch
+                means[name] = np.zeros((pixels.size,) + values.shape[1:])
+                continue
+            mean = cuda.device_array((pixels.size, columns))
+            grid = ((pixels.size + 31) // 32, (columns + 3) // 4)
+            self._gpu.average_rows[grid, (32, 4)](values.reshape(n_rays, columns), per_pixel, mean)
             means[name] = mean.copy_to_host().reshape((pixels.size,) + values.shape[1:])
-        return means
+        return self._with_shells(means)
 
 
 def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu",
-             **removed):
-    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order."""
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
+             device="cpu", **removed):
+    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order;
+    with ``shells_z``, its arrays hold each pixel's kernel per shell (``kernel_shells_boxes``) and its run
+    record the shells' edges (``shell_edges_z``)."""
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -168,6 +189,11 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1,
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     device, device_note = choose_device(device, executor)
     npix = 12 * nside * nside
+    edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
+    shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
+    if shells is not None:  # a shell's maps take a third of a pixel's 48 bytes per mass
+        check_run_memory(npix, mass.size * (1 + shells.n_bins / 3), "nside, mass_eV and shells_z (--nside, "
+                         "--mass-count, --shells)")
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
@@ -175,15 +201,16 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1,
         "randomise_copies": bool(randomise_copies),
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name, **device_record(device, device_note),
+        "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
+        **device_record(device, device_note),
     }
     warn_outside_probed_range(series, mass, z_boxes)
     tracer, executor = device_tracer(device, SkyTracer, GpuSkyTracer, (series, mass, nside, 4**level, z_boxes, seed,
-                                     photon_energy_eV, plasma.cosmology, randomise_copies), executor)
+                                     photon_energy_eV, plasma.cosmology, randomise_copies, shells), executor)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
     # stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,
-                         progress, unit="pixel", description="sky")
+    arrays = run_batches(tracer, backend, mass, run, sky_layout(shells), FORMAT, npix, batch_pixels, n_jobs,
+                         executor, progress, unit="pixel", description="sky")
     return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)

@@ -21,8 +21,6 @@ from raytrace.kernels.sightlines import trace_pieces
 from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from raytrace.tracing.backends import MemoryBackend
 from raytrace.tracing.batches import Traced, run_batches
-from raytrace.tracing.devices import choose_device, device_record, device_tracer
-from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
     background_part,
@@ -35,7 +33,10 @@ from raytrace.tracing.checks import (
     check_trace_options,
     warn_outside_probed_range,
 )
+from raytrace.tracing.devices import choose_device, device_record, device_tracer
+from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.rays import draw_rays, plan_rays
+from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins, run_layout
 
 FORMAT = "raytrace-sightlines-2"
 
@@ -56,7 +57,7 @@ class Tracer:
 
     device = "cpu"  # where :meth:`trace` runs (raytrace.tracing.gputrace: "gpu")
 
-    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
+    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
         self.boxes = series.boxes
         self.blend = bool(series.blend)
         self.redshifts = np.array([box.redshift for box in self.boxes])
@@ -68,6 +69,9 @@ class Tracer:
         spacing = np.diff(self.ln_targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
         self.photon_energy_eV = float(photon_energy_eV)
+        # Each crossing's kernel also goes to its redshift cell (raytrace.tracing.redshiftbins); none without bins.
+        self.cell_edges = np.zeros((mass_eV.size, 0)) if bins is None else bins.inner_opz
+        self.cell_count = 0 if bins is None else bins.n_cells
 
     def _span_arguments(self, span):
         """The leading arguments of a kernel call for span ``span``: cubes, scales, blending."""
@@ -79,10 +83,11 @@ class Tracer:
                 blended, float(self.redshifts[low]), float(self.redshifts[high]))
 
     def _physics_arguments(self):
-        """The trailing arguments of a kernel call: tables, targets, constants."""
+        """The trailing arguments of a kernel call: tables, targets, constants, the redshift cells' edges."""
         plan = self.plan
         return (plan.one_plus_z, plan.hubble_over_c, 1.0 / plan.chi_step, self.targets, self.ln_targets,
-                self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV)
+                self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV,
+                self.cell_edges)
 
     def _outputs(self, n_rows):
         """The per-row output arrays, zero, in the order the kernels take them."""
@@ -91,7 +96,8 @@ class Tracer:
                 "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "tangent_events": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "kernel_tangent": np.zeros((n_rows, n_masses)),
-                "dispersion_measure_boxes": np.zeros(n_rows)}
+                "dispersion_measure_boxes": np.zeros(n_rows),
+                "kernel_cells": np.zeros((n_rows, self.cell_count, n_masses))}
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -117,13 +123,13 @@ class RayTracer(Tracer):
     boxes' files); :meth:`trace` is a pure function of the ray indices.
     """
 
-    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
-        dispersion_measure_boxes, direction) for the given rays."""
+        dispersion_measure_boxes, kernel_cells, direction) for the given rays."""
         ray_direction, starts, directions = self._ray_geometry(ray_indices)
         out = self._outputs(len(ray_indices))
         for span in range(self.plan.n_spans):
@@ -170,8 +176,14 @@ class GpuRayTracer(GpuTracing, RayTracer):
 
 def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                      batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, device="cpu", **removed):
-    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s. Returns a :class:`Traced`."""
+                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=None,
+                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, device="cpu", **removed):
+    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s. Returns a :class:`Traced`.
+
+    With ``redshift_bins`` each ray's kernel also goes to its redshift cells, which the object
+    ``reducer(bins, mass_eV, plasma, z_end, kernel_background, n_rays)`` makes takes batch by batch
+    (``add(batch, start, arrays)``, :func:`raytrace.tracing.batches.run_batches`): the Traced run's ``reducer``.
+    """
     check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -198,11 +210,15 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
         "cosmology": plasma.cosmology.name,
         **device_record(device, device_note),
     }
+    bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
+    run.update(bins.run_record() if bins is not None else {})
     warn_outside_probed_range(series, mass, z_boxes)
     tracer, executor = device_tracer(device, RayTracer, GpuRayTracer,
-                                     (series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology), executor)
+                                     (series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins), executor)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
+    reduce = None if bins is None or reducer is None else reducer(
+        bins, mass, plasma, z_max if include_background else z_boxes, kernel_background, n_rays)
     backend = backend if backend is not None else MemoryBackend()
-    arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
-                         executor, progress, unit="ray", description="sightlines")
-    return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)
+    arrays = run_batches(tracer, backend, mass, run, run_layout(SIGHTLINE_LAYOUT, bins), FORMAT, n_rays, batch_size,
+                         n_jobs, executor, progress, unit="ray", description="sightlines", reducer=reduce)
+    return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs, reduce)
