@@ -126,6 +126,8 @@ TRACE_OPTIONS = (
            metavar="ADDRESS"),
     Option("rays.workers", int, None, "worker processes of the local cluster (--scheduler local; default: one per core)",
            at_least=1),
+    Option("rays.device", str, "cpu", "where the rays are traced: the CPU, a CUDA GPU (numba-cuda: the 'gpu' "
+           "extra), or auto, a GPU where numba-cuda sees one and else the CPU", choices=("cpu", "gpu", "auto")),
 )
 
 #: Every output path can be switched off with an empty value (--plot "", or plot = "" in a run file).
@@ -154,9 +156,6 @@ SIGHTLINE_OPTIONS = (BOX_OPTIONS + MASS_OPTIONS
                      + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),)
                      + TRACE_OPTIONS + BIN_OPTIONS + OUTPUT_OPTIONS)
 
-_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.photon_energy_eV", "rays.seed", "rays.jobs",
-                   "rays.scheduler", "rays.workers")
-
 #: The mass whose map a sky figure, the first FITS map and the report show (default: :func:`raytrace.report.plots.shown_mass_index`).
 SHOWN_MASS = Option("output.mass_eV", float, None, "dark-photon mass in eV of the map shown: the figure and the "
                     "first FITS map (default: the middle of the masses resonating in most pixels)", above=0.0,
@@ -167,7 +166,7 @@ CL_LIMITS = Option("anisotropy.cl_limits", str, None, "table of l, C_l upper lim
 
 SKY_OPTIONS = (
     BOX_OPTIONS + MASS_GRID + (MASS_VALUES,)
-    + tuple(option for option in TRACE_OPTIONS if option.key in _SKY_TRACE_KEYS)
+    + tuple(option for option in TRACE_OPTIONS if option.key != "rays.batch_size")
     + (
         replace(TRACE_OPTIONS[6], default=1024, help="pixels per batch, the checkpoint's granularity "
                 "(results do not depend on it)", aliases=("--batch-pixels",), old_keys=("sky.batch_pixels",)),

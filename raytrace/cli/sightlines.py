@@ -184,6 +184,7 @@ def run_outputs(values, output, plot):
             photon_energy_eV=values["rays.photon_energy_eV"], n_jobs=values["rays.jobs"],
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
+            device=values["rays.device"],
             redshift_bins=bins_value(values["rays.redshift_bins"], "--redshift-bins (TOML rays.redshift_bins)"),
             keep_ray_bins=values["rays.keep_ray_bins"], **classes_option(values),
         )

@@ -80,7 +80,7 @@ def run_outputs(values):
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
             randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
-            backend=backend, progress=True, executor=executor,
+            backend=backend, progress=True, executor=executor, device=values["rays.device"],
             shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"),
         )
     spectra = limits = None

@@ -214,7 +214,7 @@ class SkyResult(KernelRows):
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
-             **removed):
+             device="cpu", **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (>= 2) rays per pixel, at random stratified positions inside
@@ -225,8 +225,8 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, 
     ``ordering`` is "RING" or "NESTED" for the result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
     Other arguments (``backend``, ``executor`` for a cluster) as in
-    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
-    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
+    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
     ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
     :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
     (``kernel_shells``), each crossing in the shell of its redshift.
@@ -235,6 +235,7 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, 
                        include_background=include_background, z_boxes=z_boxes, ordering=ordering, plasma=plasma,
                        randomise_copies=randomise_copies, batch_pixels=batch_pixels, backend=backend,
                        progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, shells_z=shells_z,
+                       device=device,
                        **removed)
     arrays, nside = traced.arrays, traced.run["nside"]
     if traced.run["ordering"] == "RING":

@@ -36,6 +36,8 @@ from raytrace.tracing.checks import (
     check_trace_options,
     warn_outside_probed_range,
 )
+from raytrace.tracing.devices import choose_device, device_record, device_tracer
+from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.rays import CUBE_SYMMETRIES
 from raytrace.tracing.redshiftbins import bin_edges, bin_setup
 from raytrace.tracing.sightlines import Tracer
@@ -102,31 +104,58 @@ class SkyTracer(Tracer):
         return ray_directions(self.nside, pixels, self.rays_per_pixel, self.seed)
 
     def trace(self, pixels):
-        plan = self.plan
         directions = self.ray_directions(pixels)
         out = self._outputs(directions.shape[0])
-        for span in range(plan.n_spans):
-            box = int(plan.span_box[span])
-            geometry = self.boxes[box]
-            trace_lattice(*self._span_arguments(span), float(plan.span_chi_a[span]), float(plan.span_chi_b[span]),
-                          directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
-                          CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
-                          out["crossings"], out["tangent_events"], out["kernel_tangent"],
-                          out["dispersion_measure_boxes"], *self._cell_arguments(out))
+        for span in range(self.plan.n_spans):
+            trace_lattice(*self._lattice_arguments(span, directions), *out.values())
+        return self._pixel_means(out, len(pixels))
+
+    def _pixel_means(self, rows, n_pixels):
+        """Each pixel's means over its rays (and split A's and B's kernel), with its kernel per shell where the
+        run has shells: the same arithmetic whichever device traced the rows."""
         means = {}
-        for name, values in out.items():
-            means[name], splits = pixel_means(values, len(pixels), self.rays_per_pixel)
+        for name, values in rows.items():
+            means[name], splits = pixel_means(values, n_pixels, self.rays_per_pixel)
             if name == "kernel_boxes" and splits is not None:
                 means["kernel_splits"] = splits
         if self.shells is not None:
             means["kernel_shells_boxes"] = self.shells.cells_to_bins(means["kernel_cells"])
         return means
 
+    def _lattice_arguments(self, span, directions):
+        """The arguments of a lattice kernel for span ``span``, all but the outputs."""
+        plan = self.plan
+        box = int(plan.span_box[span])
+        return (*self._span_arguments(span), float(plan.span_chi_a[span]), float(plan.span_chi_b[span]), directions,
+                self.observer, float(self.boxes[box].box_size_cMpc), self.seed, self.copy_keys[box], CUBE_SYMMETRIES,
+                self.randomise, *self._physics_arguments())
+
+
+class GpuSkyTracer(GpuTracing, SkyTracer):
+    """:class:`SkyTracer` on a GPU (:class:`~raytrace.tracing.gputrace.GpuTracing`)."""
+
+    def __init__(self, *arguments):
+        SkyTracer.__init__(self, *arguments)
+        self._set_up_device(self.rays_per_pixel, self._physics_resident() + [CUBE_SYMMETRIES, self.observer])
+
+    def trace(self, pixels):
+        return self._in_calls(pixels, self._trace_call)
+
+    def _trace_call(self, pixels):
+        directions = self.ray_directions(pixels)
+        out = self._device_outputs(directions.shape[0])
+        sent = {}
+        for span in range(self.plan.n_spans):
+            self._launch(self._gpu.trace_lattice, directions.shape[0], self._lattice_arguments(span, directions), out,
+                         sent)
+        # The rows come back and are averaged here, as on the CPU: a pixel's rays fall in two splits of any size.
+        return self._pixel_means({name: values.copy_to_host() for name, values in out.items()}, len(pixels))
+
 
 def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
-             **removed):
+             device="cpu", **removed):
     """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order;
     with ``shells_z``, its arrays hold each pixel's kernel per shell (``kernel_shells_boxes``) and its run
     record the shells' edges (``shell_edges_z``)."""
@@ -142,6 +171,7 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1,
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    device, device_note = choose_device(device, executor)
     edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
     shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
     layout = sky_layout(rays_per_pixel, shells)
@@ -159,10 +189,11 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1,
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
+        **device_record(device, device_note),
     }
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = SkyTracer(series, mass, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies, shells)
+    tracer, executor = device_tracer(device, SkyTracer, GpuSkyTracer, (series, mass, nside, rays_per_pixel, z_boxes,
+                                     seed, photon_energy_eV, plasma.cosmology, randomise_copies, shells), executor)
     kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
     # Pixels are traced in NESTED order and stored in that order; the result reorders to RING on request.
