@@ -72,7 +72,9 @@ def stored(run_files):
                                                        "dispersion_measure_boxes")}
         arrays["dm_background"] = float(handle.attrs["dispersion_measure_background"])
     with h5py.File(sky_path, "r") as handle:
-        arrays["sky_kernel"] = handle["kernel_boxes"][...] + handle["kernel_background"][...][None, :]
+        # A sky's maps are stored mass-major: its pixels on axis 1 (the dataset's attribute rows_axis).
+        assert handle["kernel_boxes"].attrs["rows_axis"] == 1
+        arrays["sky_kernel"] = handle["kernel_boxes"][...].T + handle["kernel_background"][...][None, :]
     arrays["kernel"] = arrays["kernel_boxes"] + arrays["kernel_background"][None, :]
     return arrays
 

@@ -19,6 +19,7 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.core.errors import InputError
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
+from raytrace.sky.maps import SkyResult
 from raytrace.statistics.onepoint import pdf_mean
 from raytrace.statistics.resolution import degrade, resolution_convergence, richardson, write_convergence_page
 from raytrace.statistics.spread import hill_index, relative_spread_interval, sky_rms_interval, spread, top_share
@@ -164,10 +165,10 @@ def test_top_share_and_robust_spreads():
 
 
 def test_sky_rms_interval_contains_the_map_rms():
-    class FakeSky:  # the interval needs only per-pixel kernels
-        kernel = np.random.default_rng(3).lognormal(0, 0.4, (768, 2)) * 1e5
-
-    interval = sky_rms_interval(FakeSky(), 2.35e-4, n_resamples=200, seed=1)
+    kernel = np.random.default_rng(3).lognormal(0, 0.4, (768, 2)) * 1e5  # the interval needs only these maps
+    sky = SkyResult([1e-14, 2e-14], kernel, np.zeros(2), np.zeros((768, 2)), np.zeros(768), 0.0,
+                    {"nside": 8, "ordering": "RING", "z_max": 1.0})
+    interval = sky_rms_interval(sky, 2.35e-4, n_resamples=200, seed=1)
     assert np.all(interval["rms_low"] < interval["rms"]) and np.all(interval["rms"] < interval["rms_high"])
     assert np.all(interval["epsilon_low"] < interval["epsilon_max"])
     # epsilon_max = sqrt(threshold / rms) (raytrace.limits.anisotropy.anisotropy_limit's rule, PHYSICS.md s.6).

@@ -85,9 +85,10 @@ def datasets(path):
 def assert_same_result(path, reference_path):
     arrays, attributes = datasets(path)
     expected_arrays, expected_attributes = datasets(reference_path)
+    # The result file is the run's checkpoint, finished: it keeps each batch's rows and checksum.
     assert sorted(arrays) == sorted(expected_arrays) == sorted(
         [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", "pdf_mean/kernel_boxes", "pdf_mean/kernel_background",
-         "pdf_mean/error"])
+         "pdf_mean/error", "batch_rows", "batch_sha256", "batch_done"])
     for name, values in expected_arrays.items():
         assert np.array_equal(arrays[name], values), name
     assert attributes == expected_attributes
@@ -204,10 +205,10 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
         output.write_bytes(b"an earlier result")
     before = set(os.listdir(folder))
 
-    def disk_full(handle, path):  # the last step inside the temporary file, after every dataset is written
+    def disk_full(handle):  # the last write of a run, after every batch: its completion flag
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr("raytrace.core.resultfiles._check_finite", disk_full)
+    monkeypatch.setattr("raytrace.tracing.backends.mark_complete", disk_full)
     # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
     assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")

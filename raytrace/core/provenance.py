@@ -132,7 +132,7 @@ class OutputSet:
 
     def __init__(self):
         self.pending = []      # (temporary, final path)
-        self.afterwards = []   # callables run once every output is in place
+        self.kept = set()      # temporaries a failure leaves where they are (a finished run's result)
 
     def commit(self):
         for index, (temporary, path) in enumerate(self.pending):
@@ -145,12 +145,10 @@ class OutputSet:
                     from None
             remove_stale_temporaries(path)
         self.pending = []
-        for action in self.afterwards:
-            action()
 
     def discard(self):
         for temporary, _ in self.pending:
-            if os.path.exists(temporary):
+            if os.path.exists(temporary) and temporary not in self.kept:
                 os.unlink(temporary)
         self.pending = []
 
@@ -164,9 +162,8 @@ def output_set(paths=(), overwrite=False):
 
     ``paths`` are checked first (:func:`check_outputs`). Each output goes to a
     temporary file beside its final name; when the block ends normally all are
-    renamed into place, then the actions given to :func:`after_outputs` run (e.g.
-    removing a checkpoint); on any exception every temporary file is removed and
-    nothing at a final name changes.
+    renamed into place; on any exception every temporary file is removed (but
+    those of :func:`move_into_place`, which stay) and nothing at a final name changes.
     """
     check_outputs(paths, overwrite)
     pending = OutputSet()
@@ -181,13 +178,15 @@ def output_set(paths=(), overwrite=False):
     pending.commit()
 
 
-def after_outputs(action):
-    """Run ``action`` once the current output set is in place (now, outside one)."""
+def move_into_place(source, path):
+    """Rename ``source`` onto ``path``: now, or inside an output set with the set's other outputs. A set
+    that fails leaves ``source`` where it is (a finished run's result file, which a resume puts in place)."""
     pending = _OUTPUT_SET.get()
     if pending is None:
-        action()
-    else:
-        pending.afterwards.append(action)
+        os.replace(source, path)
+        return
+    pending.pending.append((source, Path(path)))
+    pending.kept.add(source)
 
 
 def remove_stale_temporaries(path):

@@ -3,8 +3,15 @@
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
 its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
-angular power spectra (healpy.anafast), FITS maps, Mollweide plots, and the
-anisotropy limit on epsilon.
+angular power spectra (healpy.anafast), FITS maps (:mod:`raytrace.sky.fitsmaps`),
+Mollweide plots, and the anisotropy limit on epsilon.
+
+A sky's maps stay where its run wrote them: in its result file, or for a run
+without one in the same file in memory. Everything downstream reads them one
+mass at a time (:meth:`SkyResult.map`, :meth:`SkyResult.columns`), so memory
+holds one map (plus the file's page cache) whatever nside and the number of
+masses; the whole arrays (``kernel``, ``crossings`` ...) are still there for
+small skies and read every map.
 
 The light cone is traced by :mod:`raytrace.tracing.lattice`, which says how
 the copies of the boxes are laid out and transformed. The random transforms break the exact repetition a plain periodic
@@ -13,18 +20,21 @@ angle at each distance (about box size / chi), so beyond chi ~ box size / theta
 the map of one copy is no longer a fair sample of larger structures.
 """
 
-from pathlib import Path
+import json
 
 import numpy as np
 
-from raytrace import __version__
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, save_arrays
+from raytrace.core.resultfiles import RowArray, open_complete, read_group, save_rows
 from raytrace.physics.conversion import anisotropy_per_probability
-from raytrace.statistics.meancheck import attach_pdf_check, pdf_check_group, read_pdf_check
+from raytrace.statistics.meancheck import SKY_CHECK_POINTS, check_groups, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.results import KernelRows, tangent_arrays
-from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
-from raytrace.tracing.lattice import FORMAT, SKY_LAYOUT, trace_sky
+from raytrace.statistics.spread import Columns
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
+from raytrace.tracing.lattice import FORMAT, trace_sky
+
+#: Pixels per piece when the face of each pixel is worked out (RING order): 8 MB of indices at a time.
+_FACE_PIECE = 1 << 20
 
 
 def _healpy():
@@ -34,31 +44,121 @@ def _healpy():
 
 
 class SkyResult(KernelRows):
-    """Kernel maps of one observer's sky.
+    """Kernel maps of one observer's sky, in memory or in its result file.
 
-    ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
+    ``maps`` holds each per-mass array (n_masses, npix), mass-major, as numpy
+    arrays or the file's datasets; :meth:`map` reads one mass's map. ``kernel``
+    (npix, n_masses) in eV, pixel order as ``ordering`` says, reads them all;
+    P = epsilon^2 K / omega_0.
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
                  dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
-        self.mass_eV = np.asarray(mass_eV, dtype=float)
-        self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
-        self.kernel_background = np.asarray(kernel_background, dtype=float)
-        self.crossings = np.asarray(crossings, dtype=float)
+        kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         # Per pixel: means over the pixel's rays, so fractional counts.
-        self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
+        events, tangent = tangent_arrays(kernel_boxes, tangent_events, kernel_tangent)
+        maps = {"kernel_boxes": kernel_boxes.T, "crossings": np.asarray(crossings, dtype=float).T,
+                "tangent_events": np.asarray(events, dtype=float).T, "kernel_tangent": tangent.T}
+        self._set_up(mass_eV, maps, kernel_background, dispersion_measure_boxes, dispersion_measure_background, run)
+
+    def _set_up(self, mass_eV, maps, kernel_background, dispersion_measure_boxes, dispersion_measure_background,
+                run, handle=None):
+        self.mass_eV = np.asarray(mass_eV, dtype=float)
+        self.maps = maps
+        self.kernel_background = np.asarray(kernel_background, dtype=float)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
+        self.handle = handle
+
+    @classmethod
+    def from_file(cls, handle):
+        """The sky an open, complete result file holds; its maps are read from the file when asked."""
+        sky = object.__new__(cls)
+        maps = {name: item for name, item in handle.items() if int(item.attrs.get("rows_axis", 0)) >= 1}
+        if not maps:  # files before format version 3 hold (npix, n_masses), rows first, and fit in memory
+            kernel = handle["kernel_boxes"][...]
+            events, tangent = tangent_arrays(kernel, *(handle[name][...] if name in handle else None
+                                                       for name in ("tangent_events", "kernel_tangent")))
+            maps = {"kernel_boxes": kernel.T, "crossings": handle["crossings"][...].astype(float).T,
+                    "tangent_events": events.astype(float).T, "kernel_tangent": tangent.T}
+        sky._set_up(handle["mass_eV"][...], maps, handle["kernel_background"][...],
+                    handle["dispersion_measure_boxes"][...], handle.attrs["dispersion_measure_background"],
+                    json.loads(handle.attrs["run"]), handle)
+        sky.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), sky.mass_eV)
+        return sky
 
     def __repr__(self):
         return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
 
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def close(self):
+        """Close the result file the maps are read from (a sky in memory has none)."""
+        if self.handle is not None:
+            self.handle.close()
+
     @property
     def npix(self):
-        return self.kernel_boxes.shape[0]
+        return self.dispersion_measure_boxes.size
+
+    def _whole(self, name):
+        return np.asarray(self.maps[name][...], dtype=float).T
+
+    kernel_boxes = property(lambda self: self._whole("kernel_boxes"), doc="(npix, n_masses): every map, read whole")
+    crossings = property(lambda self: self._whole("crossings"), doc="(npix, n_masses): every map, read whole")
+    tangent_events = property(lambda self: self._whole("tangent_events"), doc="(npix, n_masses), read whole")
+    kernel_tangent = property(lambda self: self._whole("kernel_tangent"), doc="(npix, n_masses), read whole")
+
+    # -- one mass at a time ---------------------------------------------------------------
+    def pixels(self, name, k, start=0, stop=None):
+        """Pixels start..stop-1 of mass ``k``'s map of ``name`` (one read); "kernel" is boxes plus background."""
+        if name == "kernel":
+            return self.pixels("kernel_boxes", k, start, stop) + self.kernel_background[k]
+        return np.asarray(self.maps[name][k, start:self.npix if stop is None else stop], dtype=float)
+
+    def map(self, name, k):
+        """Mass ``k``'s whole map of ``name`` (float64, one contiguous read of the file)."""
+        return self.pixels(name, k)
+
+    def columns(self, name="kernel", masses=None, scale=1.0):
+        """The maps of ``name`` at the mass indices ``masses`` (default all) times ``scale``, as
+        :class:`~raytrace.statistics.spread.Columns`: read a block of pixels or one map at a time."""
+        masses = list(range(self.mass_eV.size)) if masses is None else [int(k) for k in masses]
+        return Columns(self.npix, len(masses),
+                       lambda a, b: np.stack([self.pixels(name, k, a, b) * scale for k in masses], axis=1),
+                       lambda j: self.map(name, masses[j]) * scale)
+
+    def mean(self):
+        """Mean kernel over the pixels (eV), per mass."""
+        return self.columns().each(np.mean)
+
+    def resonating_fraction(self):
+        """Share of pixels with a crossing inside the boxes, per mass."""
+        return self.columns("crossings").each(lambda crossings: np.count_nonzero(crossings) / crossings.size)
+
+    def faces(self):
+        """The base HEALPix pixel (0 to 11) of every pixel, in this sky's order (int8: npix bytes)."""
+        per_face = self.nside * self.nside
+        if self.ordering == "NESTED":
+            return np.repeat(np.arange(12, dtype=np.int8), per_face)
+        faces = np.empty(self.npix, dtype=np.int8)
+        for start in range(0, self.npix, _FACE_PIECE):
+            stop = min(start + _FACE_PIECE, self.npix)
+            faces[start:stop] = _healpy().ring2nest(self.nside, np.arange(start, stop)) // per_face
+        return faces
+
+    def face_means(self):
+        """(12, n_masses): the mean kernel over each of the 12 base pixels, one map at a time."""
+        faces = self.faces()
+        counts = np.bincount(faces, minlength=12)
+        return self.columns().each(lambda kernel: np.bincount(faces, weights=kernel, minlength=12) / counts).T
 
     def mass_index(self, mass_eV):
         """Index of the grid mass nearest (in log) to ``mass_eV``."""
@@ -67,7 +167,7 @@ class SkyResult(KernelRows):
         return int(np.argmin(np.abs(np.log(self.mass_eV) - np.log(mass_eV))))
 
     def kernel_map(self, mass_eV):
-        return self.kernel[:, self.mass_index(mass_eV)]
+        return self.map("kernel", self.mass_index(mass_eV))
 
     def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
         from raytrace.physics.conversion import probability_from_kernel
@@ -92,73 +192,36 @@ class SkyResult(KernelRows):
 
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
-        groups = {} if self.pdf_check is None else {"pdf_mean": pdf_check_group(self.pdf_check)}
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SKY_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background}, groups)
+        """Write the sky to HDF5 atomically, one map at a time (maps in their stored precision)."""
+        layout = {name: RowArray(lambda r, m: (m, r), maps.dtype, 1) for name, maps in self.maps.items()}
+        layout["dispersion_measure_boxes"] = RowArray(lambda r, m: (r,), np.float64)
+
+        def fill(handle):
+            for name in self.maps:
+                for k in range(self.mass_eV.size):
+                    handle[name][k] = self.maps[name][k]
+            handle["dispersion_measure_boxes"][...] = self.dispersion_measure_boxes
+
+        return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, layout, self.npix,
+                         {"kernel_background": self.kernel_background},
+                         {"dispersion_measure_background": self.dispersion_measure_background}, self.stored_groups(),
+                         fill)
 
     @classmethod
     def load(cls, path):
-        with open_result(path, FORMAT, "sky") as handle:
-            import json
-
-            result = cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                         handle["crossings"][...], handle["dispersion_measure_boxes"][...],
-                         handle.attrs["dispersion_measure_background"], json.loads(handle.attrs["run"]),
-                         tangent_events=handle["tangent_events"][...], kernel_tangent=handle["kernel_tangent"][...])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
-        return result
+        """The sky of a result file, its maps read from the file when asked (close it, or use ``with``)."""
+        return cls.from_file(open_complete(path, FORMAT, "sky"))
 
     def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
-        """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
+        """HEALPix FITS maps of K at ``masses_eV``, and of P when ``epsilon`` is given, streamed
+        (:func:`raytrace.sky.fitsmaps.write_fits`).
 
         The maps come in the order of ``masses_eV``, so the first is the one
-        ``healpy.read_map`` returns by default: put the shown mass first. The header
-        carries nside, ordering, units, the frame (SKYFRAME: the box axes, no
-        celestial COORDSYS), each map's mass, the run's seed, z range, the input
-        checksums, EPSILON and OMEGA0 only with probability maps, and ``owner``
-        (the run's result file, keyword RTRESULT; see :mod:`raytrace.core.companions`).
+        ``healpy.read_map`` returns by default: put the shown mass first.
         """
-        from raytrace.core.companions import FITS_KEYWORD
-        from raytrace.core.provenance import atomic_output
+        from raytrace.sky.fitsmaps import write_fits
 
-        healpy = _healpy()
-        if epsilon is not None and omega0_eV is None:
-            raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
-        maps, names, units, cards = [], [], [], []
-        for i, mass in enumerate(np.atleast_1d(masses_eV)):
-            k = self.mass_index(float(mass))
-            cards.append((f"MASS{i + 1}", float(self.mass_eV[k]), "dark-photon mass of map, eV"))
-            maps.append(self.kernel[:, k])
-            names.append(f"KERNEL{i + 1}")
-            units.append("eV")
-            if epsilon is not None:
-                maps.append(self.probability_map(self.mass_eV[k], epsilon, omega0_eV))
-                names.append(f"PROB{i + 1}")
-                units.append("")
-        if epsilon is not None:
-            cards += [("EPSILON", float(epsilon), "kinetic mixing of PROB maps"),
-                      ("OMEGA0", float(omega0_eV), "observed photon energy of PROB maps, eV")]
-        cards += [("ZMAX", self.run["z_max"], "rays reach this redshift"),
-                  ("ZBOXES", self.run["z_boxes"], "boxes serve up to this redshift"),
-                  ("SEED", self.run["seed"], "random seed of the light cone"),
-                  ("RAYSPIX", self.run["rays_per_pixel"], "rays averaged per pixel"),
-                  ("RTVERS", __version__, "raytrace version"),
-                  ("SKYFRAME", "box axes", "frame: the boxes' axes, not a celestial frame")]
-        for i, box in enumerate(self.run["boxes"]):
-            checksum = str(box.get("checksum", "")).replace("sha256:", "")
-            # 64 hex digits fill the card: no room for a comment.
-            cards.append((f"BOXSUM{i + 1}", checksum[:64]))
-        if owner is not None:
-            cards.append((FITS_KEYWORD, str(owner), "result file of the run"))
-        # healpy names every map extension 'xtension'; its extra cards replace that.
-        cards.append(("EXTNAME", "RAYTRACE_MAPS", "conversion kernel maps of a raytrace sky"))
-        path = Path(path)
-        with atomic_output(path, overwrite=overwrite) as temporary:
-            # coord=None: healpy writes no COORDSYS, the map's frame is the box axes (SKYFRAME).
-            healpy.write_map(str(temporary), maps, nest=self.ordering == "NESTED", coord=None,
-                             column_names=names, column_units=units, extra_header=cards, overwrite=True,
-                             dtype=np.float64)
-        return path
+        return write_fits(self, path, masses_eV, epsilon, omega0_eV, overwrite, owner)
 
     def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
         """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
@@ -185,28 +248,30 @@ class SkyResult(KernelRows):
 
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV,
+             map_precision="float64", **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
     are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
     result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
+    ``map_precision`` "float32" stores the maps per mass in single precision
+    (half the file; see :data:`raytrace.tracing.lattice.PRECISIONS`).
     Other arguments (``backend``, ``executor`` for a cluster) as in
     :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
-    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster. With an
+    :class:`~raytrace.tracing.backends.HDF5Backend` the maps go batch by batch
+    to the result file and the returned sky reads them from there.
     """
-    traced = trace_sky(series, mass_eV, nside, z_max, seed=seed, rays_per_pixel=rays_per_pixel, n_jobs=n_jobs,
-                       include_background=include_background, z_boxes=z_boxes, ordering=ordering, plasma=plasma,
-                       randomise_copies=randomise_copies, batch_pixels=batch_pixels, backend=backend,
-                       progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, **removed)
-    arrays, nside = traced.arrays, traced.run["nside"]
-    if traced.run["ordering"] == "RING":
-        ring_to_nest = _healpy().ring2nest(nside, np.arange(12 * nside * nside))
-        for values in arrays.values():  # in place, one array at a time: no second set of maps
-            values[...] = values[ring_to_nest]
-    result = SkyResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
-                       arrays["dispersion_measure_boxes"], traced.dispersion_measure_background, traced.run,
-                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
-    attach_pdf_check(result, traced.series, traced.plasma, n_jobs)  # the built-in check (raytrace.statistics.meancheck)
-    return traced.backend.finish(result)
+    from raytrace.boxes import as_series
+
+    series = as_series(series)
+    plasma = check_background(plasma)
+    traced = trace_sky(series, mass_eV, nside, z_max, n_jobs=n_jobs, backend=backend, progress=progress,
+                       executor=executor, groups=check_groups(series, plasma, n_jobs, SKY_CHECK_POINTS), seed=seed,
+                       rays_per_pixel=rays_per_pixel, include_background=include_background, z_boxes=z_boxes,
+                       ordering=ordering, plasma=plasma, randomise_copies=randomise_copies,
+                       batch_pixels=batch_pixels, photon_energy_eV=photon_energy_eV, map_precision=map_precision,
+                       **removed)
+    return warn_on_mismatch(SkyResult.from_file(traced.stored))  # the built-in check (raytrace.statistics.meancheck)

@@ -14,12 +14,12 @@ import json
 import numpy as np
 
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, save_arrays
+from raytrace.core.resultfiles import open_result, read_group, rows_first, save_rows, write_rows
 from raytrace.physics.conversion import probability_from_kernel
-from raytrace.statistics.meancheck import attach_pdf_check, mean_check, pdf_check_group, read_pdf_check
+from raytrace.statistics.meancheck import check_groups, mean_check, pdf_check_group, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
 from raytrace.statistics.onepoint import PdfMean
-from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
 from raytrace.tracing.sightlines import FORMAT, SIGHTLINE_LAYOUT, trace_sightlines
 
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
@@ -146,27 +146,26 @@ class SightlineResult(KernelRows):
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
         """Write the result to HDF5 atomically, with its provenance."""
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background},
-                           self.stored_groups())
+        return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self.n_rays,
+                         {"kernel_background": self.kernel_background},
+                         {"dispersion_measure_background": self.dispersion_measure_background}, self.stored_groups(),
+                         lambda handle: write_rows(handle, SIGHTLINE_LAYOUT, 0, vars(self)))
 
     @classmethod
     def load(cls, path):
-        """Read a result written by :meth:`save`."""
+        """Read a result written by :meth:`save` or by a run."""
         with open_result(path, FORMAT, "sightline") as handle:
-            result = cls(
-                handle["mass_eV"][...],
-                handle["kernel_boxes"][...],
-                handle["kernel_background"][...],
-                handle["crossings"][...],
-                handle["dispersion_measure_boxes"][...],
-                handle.attrs["dispersion_measure_background"],
-                handle["direction"][...],
-                json.loads(handle.attrs["run"]),
-                tangent_events=handle["tangent_events"][...],
-                kernel_tangent=handle["kernel_tangent"][...],
-            )
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
+            return cls.from_file(handle)
+
+    @classmethod
+    def from_file(cls, handle):
+        """The result an open, complete result file holds (read whole: a sightline run's rows fit in memory)."""
+        rows = {name: rows_first(handle[name]) for name in SIGHTLINE_LAYOUT if name in handle}
+        result = cls(handle["mass_eV"][...], rows["kernel_boxes"], handle["kernel_background"][...], rows["crossings"],
+                     rows["dispersion_measure_boxes"], handle.attrs["dispersion_measure_background"],
+                     rows["direction"], json.loads(handle.attrs["run"]), tangent_events=rows.get("tangent_events"),
+                     kernel_tangent=rows.get("kernel_tangent"))
+        result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
         return result
 
 
@@ -213,8 +212,8 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         the boxes serve all of 0..z_max
     batch_size : rays per batch (results do not depend on it)
     plasma : MeanPlasma for the background part (default: CAMB, Planck 2018)
-    backend : MemoryBackend (default) or HDF5Backend (checkpointed, resumable),
-        both in :mod:`raytrace.tracing.backends`
+    backend : MemoryBackend (default) or HDF5Backend (the result file written batch by
+        batch, resumable), both in :mod:`raytrace.tracing.backends`
     executor : optional callable ``executor(tracer, batches)`` that runs the
         batches ``(batch, start, stop)`` elsewhere (a cluster) and yields
         ``(batch, start, arrays)`` as they complete; if it has a ``prepare(tracer)``
@@ -224,14 +223,11 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         their Airy form (PHYSICS.md section 9); every other crossing's kernel is
         frequency-free. Default: k T_0.
     """
+    plasma = check_background(plasma)
     traced = trace_sightlines(series, mass_eV, n_rays, z_max, seed=seed, n_jobs=n_jobs,
                               include_background=include_background, z_boxes=z_boxes, batch_size=batch_size,
                               plasma=plasma, backend=backend, progress=progress, executor=executor,
-                              photon_energy_eV=photon_energy_eV, **removed)
-    arrays = traced.arrays
-    result = SightlineResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
-                             arrays["dispersion_measure_boxes"], traced.dispersion_measure_background,
-                             arrays["direction"], traced.run, tangent_events=arrays["tangent_events"],
-                             kernel_tangent=arrays["kernel_tangent"])
-    attach_pdf_check(result, traced.series, traced.plasma, n_jobs)
-    return traced.backend.finish(result)
+                              photon_energy_eV=photon_energy_eV, groups=check_groups(series, plasma, n_jobs),
+                              **removed)
+    with traced.stored as handle:
+        return warn_on_mismatch(SightlineResult.from_file(handle))

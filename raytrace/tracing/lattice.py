@@ -1,9 +1,11 @@
 """The sky's tracer: one observer, rays along HEALPix pixels through a lattice of transformed copies.
 
 In: a box series, a mass grid, nside, rays per pixel and z_max. Out: a
-:class:`~raytrace.tracing.batches.Traced` run: per-pixel means over each
-pixel's rays of the kernel from the boxes, crossings, near-tangent events and
-dispersion measure, in NESTED order, plus the homogeneous background's part.
+:class:`~raytrace.tracing.batches.Traced` run: its result file of per-pixel
+means over each pixel's rays of the kernel from the boxes, crossings,
+near-tangent events and dispersion measure, in the run's pixel order (RING or
+NESTED), each mass's map contiguous, plus the homogeneous background's part.
+:func:`plan_sky` checks a run and sizes it without tracing.
 
 The observer sits at a seeded random point of the lattice of box copies around
 it. Each copy, indexed by its integer position and by the snapshot serving its
@@ -15,23 +17,24 @@ a real sky.
 """
 
 import math
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from raytrace import __version__
 from raytrace.boxes import as_series
 from raytrace.core.errors import InputError, require_number
+from raytrace.core.resultfiles import RowArray, result_bytes
 from raytrace.kernels.lattice import trace_lattice
 from raytrace.tracing.backends import MemoryBackend
 from raytrace.tracing.batches import Traced, run_batches
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
-    background_part,
+    background_contents,
     boxes_redshift_range,
     check_background,
     check_masses,
     check_no_other_options,
-    check_run_memory,
     check_seed,
     check_trace_options,
     warn_outside_probed_range,
@@ -41,23 +44,41 @@ from raytrace.tracing.sightlines import Tracer
 
 FORMAT = "raytrace-sky-2"
 ORDERINGS = ("RING", "NESTED")
+#: Largest nside: 50 M pixels, l up to 6143, past the measured TT spectrum's 2508 (nside 1024 reaches 3071);
+#: what reads a sky holds one map of it at a time (400 MB).
+MAX_NSIDE = 2048
+#: Stored precisions of the per-pixel maps. float32 rounds a value to 6e-8 of itself (half a unit in the
+#: 24th bit), some 10^6 times below a pixel's sampling noise (rms/mean 0.08-0.4 for 1-16 rays per pixel,
+#: PHYSICS.md section 10), and halves the file.
+PRECISIONS = ("float64", "float32")
 
+# The per-pixel arrays a sky fills: the maps per mass are mass-major (axis 1 holds the pixels), so one
+# mass's map is one contiguous read of the result file.
 SKY_LAYOUT = {
-    "kernel_boxes": (lambda r, m: (r, m), np.float64),
-    "crossings": (lambda r, m: (r, m), np.float64),
-    "tangent_events": (lambda r, m: (r, m), np.float64),
-    "kernel_tangent": (lambda r, m: (r, m), np.float64),
-    "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
+    "kernel_boxes": RowArray(lambda r, m: (m, r), np.float64, 1),
+    "crossings": RowArray(lambda r, m: (m, r), np.float64, 1),
+    "tangent_events": RowArray(lambda r, m: (m, r), np.float64, 1),
+    "kernel_tangent": RowArray(lambda r, m: (m, r), np.float64, 1),
+    "dispersion_measure_boxes": RowArray(lambda r, m: (r,), np.float64),
 }
+
+
+def sky_layout(precision):
+    """:data:`SKY_LAYOUT` with its maps per mass stored in ``precision`` (one of :data:`PRECISIONS`)."""
+    if precision not in PRECISIONS:
+        raise InputError(f"map_precision (--map-precision): expected one of {', '.join(PRECISIONS)}, got "
+                         f"{precision!r}")
+    return {name: entry._replace(dtype=np.dtype(precision)) if entry.rows_axis else entry
+            for name, entry in SKY_LAYOUT.items()}
 
 
 def _check_nside(nside):
     what = "nside (--nside)"
-    expected = "a power of 2 (1, 2, 4, ..., 2^29)"
-    nside = require_number(nside, what, whole=True, at_least=1, at_most=2**29, expected=expected)
+    expected = f"a power of 2 from 1 to {MAX_NSIDE}"
+    nside = require_number(nside, what, whole=True, at_least=1, at_most=MAX_NSIDE, expected=expected)
     if nside & (nside - 1):
         raise InputError(f"{what}: expected {expected}, got {nside!r}")
-    return nside
+    return int(nside)
 
 
 def _sub_pixel_level(rays_per_pixel):
@@ -78,13 +99,15 @@ def observer_position(seed, box_size_cMpc):
 
 
 class SkyTracer(Tracer):
-    """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (NESTED)."""
+    """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (in ``ordering``)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
-                 randomise_copies=True):
+                 randomise_copies=True, ordering="NESTED"):
         self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
         self.nside = nside
+        self.ordering = ordering
         self.level = _sub_pixel_level(rays_per_pixel)
+        self.rays_per_row = 4**self.level
         self.randomise = bool(randomise_copies)
         self.observer = observer_position(seed, self.boxes[0].box_size_cMpc)
         # Blended snapshots share a grid and are mixed point by point: they must see the
@@ -92,10 +115,14 @@ class SkyTracer(Tracer):
         self.copy_keys = [0 if series.blend else b for b in range(len(self.boxes))]
 
     def ray_directions(self, pixels):
-        """Unit vectors of the sub-pixel centres of NESTED ``pixels``, (n_pixels * 4^level, 3)."""
+        """Unit vectors of the sub-pixel centres of ``pixels``, (n_pixels * 4^level, 3): the centres of
+        each pixel's NESTED children at nside * 2^level."""
         import healpy
 
-        children = (np.asarray(pixels, dtype=np.int64)[:, None] * 4**self.level
+        nested = np.asarray(pixels, dtype=np.int64)
+        if self.ordering == "RING":
+            nested = healpy.ring2nest(self.nside, nested)
+        children = (nested[:, None] * 4**self.level
                     + np.arange(4**self.level)[None, :]).ravel()
         return np.ascontiguousarray(np.array(healpy.pix2vec(self.nside * 2**self.level, children, nest=True)).T)
 
@@ -116,10 +143,35 @@ class SkyTracer(Tracer):
                 for name, values in out.items()}
 
 
-def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
-             z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
-    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s. Returns a Traced run, pixels in NESTED order."""
+@dataclass(frozen=True, eq=False)
+class SkyPlan:
+    """A checked sky run before any tracing: its tracer, record, result layout and what else its file holds."""
+
+    tracer: SkyTracer
+    mass_eV: np.ndarray
+    run: dict
+    layout: dict
+    contents: object
+    series: object
+    plasma: object
+
+    @property
+    def n_pixels(self):
+        return 12 * self.tracer.nside**2
+
+    @property
+    def n_batches(self):
+        return -(-self.n_pixels // self.run["batch_pixels"])
+
+    def result_bytes(self):
+        """Bytes of the run's result file on disk."""
+        return result_bytes(self.layout, self.n_pixels, self.mass_eV.size, self.n_batches)
+
+
+def plan_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, include_background=True, z_boxes=None,
+             ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
+             photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, map_precision="float64", **removed):
+    """Check a sky run's arguments (those of :func:`raytrace.cast_sky`) and plan it: a :class:`SkyPlan`."""
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -128,27 +180,37 @@ def trace_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1,
     level = _sub_pixel_level(rays_per_pixel)
     if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
+    layout = sky_layout(map_precision)
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
-    check_run_memory(12 * nside * nside, mass.size, "nside and mass_eV (--nside, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
-    npix = 12 * nside * nside
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
         "seed": int(seed), "photon_energy_eV": photon_energy_eV, "batch_pixels": int(batch_pixels),
-        "randomise_copies": bool(randomise_copies),
+        "randomise_copies": bool(randomise_copies), "map_precision": map_precision,
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
     warn_outside_probed_range(series, mass, z_boxes)
+    # Pixels are traced and stored in the result's own order: each is traced on its own,
+    # so the maps are the same bits in RING or NESTED order, with no reordering pass.
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies)
-    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
+                       randomise_copies, ordering)
+    contents = background_contents(plasma, mass, z_boxes, z_max, include_background, None)
+    return SkyPlan(tracer, mass, run, layout, contents, series, plasma)
+
+
+def trace_sky(series, mass_eV, nside, z_max, n_jobs=1, backend=None, progress=False, executor=None, groups=None,
+              **options):
+    """Trace a sky; the arguments are :func:`raytrace.cast_sky`'s, and ``groups`` that of
+    :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced` run."""
+    plan = plan_sky(series, mass_eV, nside, z_max, **options)
     backend = backend if backend is not None else MemoryBackend()
-    # Pixels are traced in NESTED order (sub-pixels are then contiguous children) and
-    # stored in that order; the result reorders to RING on request.
-    arrays = run_batches(tracer, backend, mass, run, SKY_LAYOUT, FORMAT, npix, batch_pixels, n_jobs, executor,
-                         progress, unit="pixel", description="sky")
-    return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)
+    backend.check_room(plan.result_bytes(), "pixels or masses (--nside, --mass-count; --map-precision float32 "
+                                            "halves the maps)")
+    stored = run_batches(plan.tracer, backend, plan.mass_eV, plan.run, plan.layout, FORMAT,
+                         plan.n_pixels, plan.run["batch_pixels"], n_jobs, executor, progress,
+                         f"sky of {plan.n_pixels} pixels", replace(plan.contents, groups=groups))
+    return Traced(stored, plan.run, plan.series, plan.plasma, n_jobs)

@@ -1,9 +1,9 @@
 """Random sightlines: each ray walks its own stack of randomly transformed box copies.
 
 In: a box series (or a list of boxes, or one box), a sorted mass grid (eV), the
-number of rays, z_max and the run's options. Out: a :class:`Traced` run: per-ray
-arrays (kernel from the boxes, crossings, near-tangent events, dispersion
-measure, direction) and the homogeneous background's part.
+number of rays, z_max and the run's options. Out: a :class:`Traced` run: its
+result file of per-ray arrays (kernel from the boxes, crossings, near-tangent
+events, dispersion measure, direction) and the homogeneous background's part.
 
 The boxes serve redshifts up to ``z_boxes``; with ``include_background`` the
 homogeneous universe adds the rest up to ``z_max`` (the same for every ray and
@@ -17,18 +17,18 @@ import numpy as np
 from raytrace import __version__
 from raytrace.boxes import as_series
 from raytrace.core.errors import require_number
+from raytrace.core.resultfiles import RowArray, result_bytes
 from raytrace.kernels.sightlines import trace_pieces
 from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from raytrace.tracing.backends import MemoryBackend
 from raytrace.tracing.batches import Traced, run_batches
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
-    background_part,
+    background_contents,
     boxes_redshift_range,
     check_background,
     check_masses,
     check_no_other_options,
-    check_run_memory,
     check_seed,
     check_trace_options,
     warn_outside_probed_range,
@@ -37,14 +37,14 @@ from raytrace.tracing.rays import draw_rays, plan_rays
 
 FORMAT = "raytrace-sightlines-2"
 
-# name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
+# The per-ray arrays a sightline run fills, rows first (counts stored as float64, as a sky's means are).
 SIGHTLINE_LAYOUT = {
-    "kernel_boxes": (lambda r, m: (r, m), np.float64),
-    "crossings": (lambda r, m: (r, m), np.int32),
-    "tangent_events": (lambda r, m: (r, m), np.int32),
-    "kernel_tangent": (lambda r, m: (r, m), np.float64),
-    "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
-    "direction": (lambda r, m: (r, 3), np.float64),
+    "kernel_boxes": RowArray(lambda r, m: (r, m), np.float64),
+    "crossings": RowArray(lambda r, m: (r, m), np.float64),
+    "tangent_events": RowArray(lambda r, m: (r, m), np.float64),
+    "kernel_tangent": RowArray(lambda r, m: (r, m), np.float64),
+    "dispersion_measure_boxes": RowArray(lambda r, m: (r,), np.float64),
+    "direction": RowArray(lambda r, m: (r, 3), np.float64),
 }
 
 
@@ -64,6 +64,15 @@ class Tracer:
         spacing = np.diff(self.ln_targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
         self.photon_energy_eV = float(photon_energy_eV)
+
+    #: Rays traced per row (a sky's pixel averages several).
+    rays_per_row = 1
+
+    def cells_per_row(self):
+        """Length of one row's rays in cells of the boxes that serve each span: what a row costs."""
+        plan = self.plan
+        cell = np.array([self.boxes[int(box)].cell_size_cMpc for box in plan.span_box])
+        return self.rays_per_row * float(np.sum((plan.span_chi_b - plan.span_chi_a) / cell))
 
     def _span_arguments(self, span):
         """The leading arguments of a kernel call for span ``span``: cubes, scales, blending."""
@@ -135,15 +144,15 @@ class RayTracer(Tracer):
 
 def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                      batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
-    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s. Returns a :class:`Traced`."""
+                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, groups=None, **removed):
+    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s, and
+    ``groups`` that of :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced`."""
     check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
-    n_rays = require_number(n_rays, "n_rays", whole=True, at_least=1)
+    n_rays = int(require_number(n_rays, "n_rays", whole=True, at_least=1))
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
-    check_run_memory(n_rays, mass.size, "n_rays and mass_eV (--rays, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     run = {
@@ -163,8 +172,11 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     }
     warn_outside_probed_range(series, mass, z_boxes)
     tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
-    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
     backend = backend if backend is not None else MemoryBackend()
-    arrays = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
-                         executor, progress, unit="ray", description="sightlines")
-    return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs)
+    n_batches = -(-n_rays // int(batch_size))
+    backend.check_room(result_bytes(SIGHTLINE_LAYOUT, n_rays, mass.size, n_batches),
+                       "rays or masses (--rays, --mass-count)")
+    contents = background_contents(plasma, mass, z_boxes, z_max, include_background, groups)
+    stored = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
+                         executor, progress, f"{n_rays} sightlines", contents)
+    return Traced(stored, run, series, plasma, n_jobs)
