@@ -294,17 +294,13 @@ def test_demo_sky_shows_a_mass_resonating_in_at_least_90_percent_of_pixels(demo_
 
 
 def test_shown_mass_rule_prefers_masses_resonating_in_most_pixels():
-    class Sky:  # a hand-made sky: 10 pixels, 5 masses; the edge masses resonate in 1 pixel
-        mass_eV = np.geomspace(1e-14, 1e-12, 5)
-        crossings = np.zeros((10, 5))
-
-        def mass_index(self, mass):
-            return int(np.argmin(np.abs(np.log(self.mass_eV / mass))))
-
-    sky = Sky()
-    sky.crossings[0, [0, 4]] = 1.0
-    sky.crossings[:, [1, 2, 3]] = 2.0
-    sky.crossings[3, 1] = 0.0  # mass 1 misses one pixel: masses 2 and 3 resonate in all
+    # A hand-made sky: 12 pixels (nside 1), 5 masses; the edge masses resonate in 1 pixel.
+    crossings = np.zeros((12, 5))
+    crossings[0, [0, 4]] = 1.0
+    crossings[:, [1, 2, 3]] = 2.0
+    crossings[3, 1] = 0.0  # mass 1 misses one pixel: masses 2 and 3 resonate in all
+    sky = SkyResult(np.geomspace(1e-14, 1e-12, 5), np.ones((12, 5)), np.zeros(5), crossings, np.zeros(12), 0.0,
+                    {"nside": 1, "ordering": "RING"})
     assert shown_mass_index(sky) in (2, 3)
     assert shown_mass_index(sky, 1e-12) == 4
 

@@ -177,9 +177,10 @@ def _warn_spread(result):
 
     from raytrace.statistics.spread import TOP_SHARE_WARNING, top_share
 
-    if result.kernel.shape[0] < 2:
+    kernel = result.columns()  # a sky's maps one at a time
+    if kernel.n_rows < 2:
         return
-    share = np.nan_to_num(top_share(result.kernel))
+    share = np.nan_to_num(top_share(kernel))
     bad = np.flatnonzero(share > TOP_SHARE_WARNING)
     if bad.size:
         shown = ", ".join(f"{result.mass_eV[k]:.3g} eV ({100 * share[k]:.0f} %)" for k in bad[:6])

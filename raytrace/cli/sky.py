@@ -1,4 +1,9 @@
-"""``raytrace sky``: a HEALPix sky map of conversion seen by one observer, from a TOML run file or flags."""
+"""``raytrace sky``: a HEALPix sky map of conversion seen by one observer, from a TOML run file or flags.
+
+With ``--estimate`` it traces nothing and prints what the run will take (:mod:`raytrace.sky.estimate`).
+"""
+
+import time
 
 import numpy as np
 
@@ -27,7 +32,10 @@ def add_arguments(parser):
 def run(args):
     from raytrace.core.provenance import output_set
 
+    started = time.perf_counter()
     values = settings(args, SKY_OPTIONS)
+    if values["sky.estimate"]:
+        return print_estimate(values, started)
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
@@ -40,6 +48,29 @@ def run(args):
             print(f"{what}: {values[key]}{first}")
     note_without_outputs("sky", values, keys)
     return 0
+
+
+def print_estimate(values, started):
+    """Size the run (``--estimate``) and print it; nothing is traced or written."""
+    from raytrace.sky.estimate import estimate_sky
+
+    estimate = estimate_sky(load_boxes(values), masses(values), values["sky.nside"], values["rays.z_max"],
+                            n_jobs=values["rays.jobs"], started=started, **sky_options(values))
+    print(f"# sky of nside {values['sky.nside']} to z = {values['rays.z_max']:g}: what the run will take "
+          "(nothing traced or written)")
+    for line in estimate.lines():
+        print(line)
+    return 0
+
+
+def sky_options(values):
+    """The keyword arguments of cast_sky that the run file and flags give, besides the boxes, masses, nside,
+    z_max and threads."""
+    return dict(seed=values["rays.seed"], rays_per_pixel=values["sky.rays_per_pixel"],
+                include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+                ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
+                randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
+                map_precision=values["sky.map_precision"])
 
 
 def check_fits_path(path):
@@ -67,14 +98,8 @@ def run_outputs(values):
     omega0 = observed_energy(values)
     backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
     with cluster_executor(values) as executor:
-        sky = cast_sky(
-            series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
-            rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
-            include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
-            ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
-            randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
-            backend=backend, progress=True, executor=executor,
-        )
+        sky = cast_sky(series, mass, values["sky.nside"], values["rays.z_max"], n_jobs=values["rays.jobs"],
+                       backend=backend, progress=True, executor=executor, **sky_options(values))
     limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
     shown = shown_mass_index(sky, values["output.mass_eV"])
     print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
@@ -91,15 +116,14 @@ def run_outputs(values):
 
 
 def print_summary(sky, limit, threshold, omega0, shown):
+    """The run's table at up to 16 masses; every statistic reads one map at a time."""
     from raytrace.statistics.spread import robust_spread, sky_rms_interval
 
-    mean = sky.kernel.mean(axis=0)
-    rms = sky.kernel.std(axis=0)
-    half_width, mad = robust_spread(sky.kernel)
+    rows = list(range(0, sky.mass_eV.size, max(1, sky.mass_eV.size // 16)))
     check = sky.mean_check()
-    ratio = check.ratio() if check is not None else np.full(mean.size, np.nan)
-    relative_sem = check.relative_error() if check is not None else np.full(mean.size, np.nan)
-    interval = sky_rms_interval(sky, omega0, n_resamples=200, seed=sky.run["seed"], threshold=threshold)
+    ratio = check.ratio() if check is not None else np.full(sky.mass_eV.size, np.nan)
+    relative_sem = check.relative_error() if check is not None else np.full(sky.mass_eV.size, np.nan)
+    interval = sky_rms_interval(sky, omega0, n_resamples=200, seed=sky.run["seed"], threshold=threshold, masses=rows)
     print(f"# sky of nside {sky.nside} ({sky.npix} pixels, {sky.run['rays_per_pixel']} rays each), z = 0 to "
           f"{sky.run['z_max']:g}, boxes to z = {sky.run['z_boxes']:g}, seed {sky.run['seed']}")
     print(f"# anisotropy test: rms of dT/T below {threshold:g} at omega_0 = {omega0:.4g} eV")
@@ -108,18 +132,20 @@ def print_summary(sky, limit, threshold, omega0, shown):
     if "epsilon_max_cl" in limit:
         header += f" {'eps_max_Cl':>11}"
     print(header)
-    step = max(1, sky.mass_eV.size // 16)
-    for k in range(0, sky.mass_eV.size, step):
-        relative = rms[k] / mean[k] if mean[k] > 0 else 0.0
-        line = (f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:9.3f} {half_width[k]:9.3e} {mad[k]:9.3e} "
+    for j, k in enumerate(rows):
+        kernel = sky.map("kernel", k)
+        mean, rms = kernel.mean(), kernel.std()
+        (half_width,), (mad,) = robust_spread(kernel)
+        relative = rms / mean if mean > 0 else 0.0
+        line = (f"  {sky.mass_eV[k]:11.4e} {mean:11.4e} {relative:9.3f} {half_width:9.3e} {mad:9.3e} "
                 f"{ratio[k]:7.4f} {relative_sem[k]:7.4f} {limit['epsilon_max_rms'][k]:12.3e} "
-                f"{interval['epsilon_low'][k]:10.3e}-{interval['epsilon_high'][k]:<10.3e}")
+                f"{interval['epsilon_low'][j]:10.3e}-{interval['epsilon_high'][j]:<10.3e}")
         if "epsilon_max_cl" in limit:
             line += f" {limit['epsilon_max_cl'][k]:11.3e}"
         print(line)
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
           "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
     _warn_spread(sky)
-    resonating = (sky.crossings[:, shown] > 0).mean()
+    resonating = np.count_nonzero(sky.map("crossings", shown)) / sky.npix
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "
           "(--mass chooses; default: the middle of the masses resonating in most pixels)")

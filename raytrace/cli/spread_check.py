@@ -29,10 +29,11 @@ def run(args):
     is_sky = hasattr(result, "nside")
     if not is_sky and (args.frequency is not None or args.isotropy_threshold is not None):
         raise InputError("--frequency, --isotropy-threshold: only meaningful for a sky result")
+    kernel = result.columns()  # a sky's maps are read one at a time, or in blocks of pixels
     with _flag_names():
-        found = spread(result.kernel, result.mass_eV, args.resamples, args.seed, args.level)
+        found = spread(kernel, result.mass_eV, args.resamples, args.seed, args.level)
     rows = range(result.mass_eV.size)
-    print(f"# {args.result}: {result.kernel.shape[0]} {'pixels' if is_sky else 'rays'}")
+    print(f"# {args.result}: {kernel.n_rows} {'pixels' if is_sky else 'rays'}")
     for line in found.table(rows):
         print(line)
     message = found.warning()

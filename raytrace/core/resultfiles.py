@@ -109,14 +109,15 @@ def read_group(handle, name):
     return {key: group[key][...] for key in group}, dict(group.attrs)
 
 
-def allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attributes, groups, n_batches=0):
+def allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attributes, groups, n_batches=0,
+             where=None):
     """Every dataset and attribute of a result file, 'complete' false; the per-row datasets of ``layout``
     allocated contiguous at creation and never filled by HDF5, so that filling them only writes bytes at
     fixed offsets (a kill at any moment leaves a readable file). ``per_mass``: ``{name: values}`` (the
     background's kernel); ``groups``: ``{name: (datasets, attributes)}`` as :func:`write_group` takes them;
-    ``n_batches`` > 0 adds a run's bookkeeping (:data:`BATCH_DATASETS`). NaN or inf anywhere is refused.
+    ``n_batches`` > 0 adds a run's bookkeeping (:data:`BATCH_DATASETS`). NaN or inf anywhere is refused,
+    naming ``where`` (the output the file becomes).
     """
-    where = handle.filename
     early = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
     early.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)
     early.set_fill_time(h5py.h5d.FILL_TIME_NEVER)
@@ -143,13 +144,14 @@ def allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attrib
     handle.attrs["complete"] = np.False_
 
 
-def write_rows(handle, layout, start, arrays):
+def write_rows(handle, layout, start, arrays, where=None):
     """Write rows start.. of each ``arrays[name]`` (rows first, as tracers give them) where ``layout`` puts
-    them; returns the blocks as stored, in layout order. NaN or inf is refused before anything is written."""
+    them; returns the blocks as stored, in layout order. NaN or inf is refused before anything is written,
+    naming ``where`` (the output the file becomes)."""
     blocks = []
     for name, entry in layout.items():
         values = np.asarray(arrays[name])
-        check_finite(values, f"dataset {name}", handle.filename)
+        check_finite(values, f"dataset {name}", where)
         blocks.append(np.ascontiguousarray(np.moveaxis(values, 0, entry.rows_axis), dtype=entry.dtype))
     for (name, entry), block in zip(layout.items(), blocks):
         handle[name][rows_index(entry, start, start + len(arrays[name]))] = block
@@ -187,7 +189,7 @@ def save_rows(path, overwrite, format_name, mass_eV, run, layout, n_rows, per_ma
     """Write a result file atomically: :func:`allocate`, reserve its blocks, ``fill(handle)``, mark it complete."""
     with atomic_output(path, overwrite=overwrite) as temporary:
         with h5py.File(temporary, "w") as handle:
-            allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attributes, groups)
+            allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attributes, groups, where=path)
         reserve_blocks(temporary)
         with h5py.File(temporary, "r+") as handle:
             fill(handle)

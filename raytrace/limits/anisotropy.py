@@ -24,32 +24,44 @@ def anisotropy_limit(sky, omega0_eV, threshold=ISOTROPY_LEVEL, cl_limits=None):
     ``threshold``, epsilon_max = sqrt(threshold / rms_1); from an upper-limit table
     of C_l (``cl_limits``: array of (l, limit) rows, dT/T units squared),
     C_l scales as epsilon^4 and epsilon_max = min over l of (limit_l / C_l,1)^(1/4).
-    Returns a dict with "mass_eV", "epsilon_max_rms" and, with a table, "epsilon_max_cl".
+    The maps are read one mass at a time. Returns a dict with "mass_eV",
+    "epsilon_max_rms" and, with a table, "epsilon_max_cl".
     """
     if not (np.isfinite(threshold) and threshold > 0):
         raise InputError(f"threshold: expected a positive dT/T level, got {threshold!r}")
-    shape_factor = anisotropy_per_probability(omega0_eV)
-    dtt = -sky.kernel / omega0_eV * shape_factor  # dT/T at epsilon = 1, (npix, n_masses)
-    # A map whose pixels are all equal has no anisotropy; np.std's rounding would give it a tiny rms.
-    flat = np.ptp(dtt, axis=0) == 0
-    rms = np.where(flat, 0.0, dtt.std(axis=0))
+    table = None if cl_limits is None else _checked_table(cl_limits)
+    dtt = sky.columns("kernel", scale=-anisotropy_per_probability(omega0_eV) / omega0_eV)  # dT/T at epsilon = 1
+    rms, best = np.zeros(dtt.n_columns), np.full(dtt.n_columns, np.inf)
+    for k in range(dtt.n_columns):
+        values = dtt.column(k)
+        # A map whose pixels are all equal has no anisotropy; np.std's rounding would give it a tiny rms.
+        if np.ptp(values) == 0:
+            continue
+        rms[k] = values.std()
+        if table is not None:
+            best[k] = _cl_limit(sky, values, table)
     with np.errstate(divide="ignore"):
         out = {"mass_eV": sky.mass_eV, "epsilon_max_rms": np.where(rms > 0, np.sqrt(threshold / np.where(rms > 0, rms, 1)), np.inf)}
-    if cl_limits is not None:
-        table = np.asarray(cl_limits, dtype=float)
-        if table.ndim != 2 or table.shape[1] != 2 or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
-            raise InputError("cl_limits: expected rows of (l >= 1, positive C_l limit)")
-        ells = table[:, 0].astype(int)
-        lmax = min(int(ells.max()), 3 * sky.nside - 1)
-        keep = ells <= lmax
-        best = np.full(sky.mass_eV.size, np.inf)
-        for k in np.flatnonzero(~flat):
-            cl = sky.angular_power(dtt[:, k], lmax=lmax)
-            ratio = table[keep, 1] / np.where(cl[ells[keep]] > 0, cl[ells[keep]], np.nan)
-            if np.any(np.isfinite(ratio)):
-                best[k] = np.nanmin(ratio) ** 0.25
+    if table is not None:
         out["epsilon_max_cl"] = best
     return out
+
+
+def _checked_table(cl_limits):
+    table = np.asarray(cl_limits, dtype=float)
+    if table.ndim != 2 or table.shape[1] != 2 or np.any(table[:, 1] <= 0) or np.any(table[:, 0] < 1):
+        raise InputError("cl_limits: expected rows of (l >= 1, positive C_l limit)")
+    return table
+
+
+def _cl_limit(sky, dtt, table):
+    """(min over the table's measured l of limit_l / C_l)^(1/4) for one dT/T map at epsilon = 1 (inf: none)."""
+    ells = table[:, 0].astype(int)
+    lmax = min(int(ells.max()), 3 * sky.nside - 1)
+    keep = ells <= lmax
+    cl = sky.angular_power(dtt, lmax=lmax)
+    ratio = table[keep, 1] / np.where(cl[ells[keep]] > 0, cl[ells[keep]], np.nan)
+    return np.nanmin(ratio) ** 0.25 if np.any(np.isfinite(ratio)) else np.inf
 
 
 def read_cl_limits(path):

@@ -41,12 +41,13 @@ def trust_lines(result, rows, sky=None, sky_index=None, omega0_eV=None, threshol
             warned.append(message)
             lines.append(f"  WARNING: {message}")
     if sky is not None and sky_index is not None:
-        interval = sky_rms_interval(sky, omega0_eV, n_resamples, int(sky.run.get("seed", 0)), threshold=threshold)
-        k = sky_index
-        lines.append(f"sky at m = {sky.mass_eV[k]:.3g} eV: rms dT/T at epsilon = 1 {interval['rms'][k]:.3g} "
-                     f"(68 % bootstrap over pixels {interval['rms_low'][k]:.3g} to {interval['rms_high'][k]:.3g}); "
-                     f"rms anisotropy limit epsilon_max = {interval['epsilon_max'][k]:.3g} "
-                     f"({interval['epsilon_low'][k]:.3g} to {interval['epsilon_high'][k]:.3g}); correlated pixels: "
+        interval = sky_rms_interval(sky, omega0_eV, n_resamples, int(sky.run.get("seed", 0)), threshold=threshold,
+                                    masses=[sky_index])
+        interval = {key: value[0] if isinstance(value, np.ndarray) else value for key, value in interval.items()}
+        lines.append(f"sky at m = {sky.mass_eV[sky_index]:.3g} eV: rms dT/T at epsilon = 1 {interval['rms']:.3g} "
+                     f"(68 % bootstrap over pixels {interval['rms_low']:.3g} to {interval['rms_high']:.3g}); "
+                     f"rms anisotropy limit epsilon_max = {interval['epsilon_max']:.3g} "
+                     f"({interval['epsilon_low']:.3g} to {interval['epsilon_high']:.3g}); correlated pixels: "
                      "a lower bound on the interval's width")
         sky_check = sky.mean_check()
         if sky_check is not None and sky_check.message():

@@ -19,6 +19,7 @@ from raytrace.physics.conversion import probability_from_kernel
 from raytrace.statistics.meancheck import check_groups, mean_check, pdf_check_group, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
 from raytrace.statistics.onepoint import PdfMean
+from raytrace.statistics.spread import Columns
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
 from raytrace.tracing.sightlines import FORMAT, SIGHTLINE_LAYOUT, trace_sightlines
 
@@ -44,6 +45,12 @@ class KernelRows:
     def kernel(self):
         """K in eV per row and mass, boxes plus background; P = epsilon^2 K / omega_0."""
         return self.kernel_boxes + self.kernel_background[None, :]
+
+    def columns(self, name="kernel", masses=None, scale=1.0):
+        """The per-row values of ``name`` at the mass indices ``masses`` (default all) times ``scale``, as
+        :class:`~raytrace.statistics.spread.Columns` (a sky reads them from its file one map at a time)."""
+        values = getattr(self, name)
+        return Columns.of((values if masses is None else values[:, list(masses)]) * scale)
 
     @property
     def dispersion_measure(self):
@@ -149,7 +156,7 @@ class SightlineResult(KernelRows):
         return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self.n_rays,
                          {"kernel_background": self.kernel_background},
                          {"dispersion_measure_background": self.dispersion_measure_background}, self.stored_groups(),
-                         lambda handle: write_rows(handle, SIGHTLINE_LAYOUT, 0, vars(self)))
+                         lambda handle: write_rows(handle, SIGHTLINE_LAYOUT, 0, vars(self), path))
 
     @classmethod
     def load(cls, path):

@@ -165,7 +165,7 @@ class HDF5Backend:
         with atomic_output(self.checkpoint, overwrite=True, at_once=True) as temporary:
             with h5py.File(temporary, "w") as handle:
                 allocate(handle, format_name, mass_eV, run, self.layout, n_rows, contents.per_mass,
-                         contents.attributes, groups, n_batches)
+                         contents.attributes, groups, n_batches, self.path)
                 handle.attrs["header_sha256"] = _header_digest(handle.attrs["run"], shapes)
             reserve_blocks(temporary)
 
@@ -219,7 +219,7 @@ class HDF5Backend:
     def write_batch(self, batch, start, arrays):
         stop = start + len(arrays[next(iter(self.layout))])
         try:
-            blocks = write_rows(self.handle, self.layout, start, arrays)
+            blocks = write_rows(self.handle, self.layout, start, arrays, self.path)
             self.handle["batch_rows"][batch] = (start, stop)
             self.handle["batch_sha256"][batch] = _batch_digest(batch, start, blocks)
             self.handle.flush()
@@ -271,10 +271,10 @@ class MemoryBackend(HDF5Backend):
     def open(self, mass_eV, n_rows, run, n_batches, layout, format_name, contents):
         self.layout = layout
         groups = contents.made_groups(run)
-        self.checkpoint = Path(f"raytrace-run-{os.getpid()}-{next(self._files)}.h5 (in memory)")
+        self.path = self.checkpoint = Path(f"raytrace-run-{os.getpid()}-{next(self._files)}.h5 (in memory)")
         self.handle = h5py.File(self.checkpoint.name, "w", driver="core", backing_store=False)
         allocate(self.handle, format_name, mass_eV, run, layout, n_rows, contents.per_mass, contents.attributes,
-                 groups, n_batches)
+                 groups, n_batches, self.path)
 
     def finish(self):
         mark_complete(self.handle)
