@@ -43,7 +43,7 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
         if executor is None:
             with numba_threads(n_jobs):
                 # Without a bar, one call per batch; with one, steps small enough for it to move.
-                step = step_rows(batch_size, numba.get_num_threads()) if progress else batch_size
+                step = step_rows(batch_size, numba.get_num_threads(), cells) if progress else batch_size
                 for number, (b, start, stop) in enumerate(todo):
                     # Small steps move the bar per group of rays; each row is traced on its own,
                     # so the arrays are the same bits as one call for the batch.

@@ -49,7 +49,7 @@ def sample_rate(tracer, n_rows, n_jobs, batch_rows, seconds=4.0):
     cells = tracer.cells_per_row()
     with numba_threads(n_jobs):
         threads = numba.get_num_threads()
-        step = step_rows(batch_rows, threads)
+        step = step_rows(batch_rows, threads, cells)
         tracer.trace(spread_rows(n_rows, 0, min(step, n_rows)))  # compiles, or loads the kernels: not counted
         done, elapsed, calls = 0, 0.0, 1
         while elapsed < seconds and done < n_rows:
