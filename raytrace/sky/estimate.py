@@ -4,9 +4,11 @@ In: a sky run's arguments (those of :func:`~raytrace.sky.maps.cast_sky`), its
 threads and the time its command started. Out: :class:`SkyEstimate`: the box
 cells to trace, the result's size on disk, the memory of a worker, the run's
 fixed costs as measured here (set-up, and its built-in one-point check, which
-is computed: it is the run's own), and the tracing rate measured on a short
-sample of the run's own pixels here (:func:`raytrace.tracing.sizing.sample_rate`),
-with the wall time they give, on this machine and on a cluster of N threads.
+is computed: it is the run's own), the tracing rate measured on a short sample
+of the run's own pixels here (:func:`raytrace.tracing.sizing.sample_rate`), and
+the command's summary after the run (``summary``: timed here on a stand-in sky
+of nside 64 and scaled to the run's pixels), with the wall time they give, on
+this machine and on a cluster of N threads.
 """
 
 import resource
@@ -33,8 +35,9 @@ class SkyEstimate:
     batch_pixels: int
     batch_bytes: int
     process_bytes: int
-    setup_seconds: float
+    planned_seconds: float
     check_seconds: float
+    summary_seconds: float
     rate: object
 
     @property
@@ -43,7 +46,12 @@ class SkyEstimate:
 
     @property
     def wall_seconds(self):
-        return self.setup_seconds + self.check_seconds + self.tracing_seconds
+        return self.setup_seconds + self.check_seconds + self.tracing_seconds + self.summary_seconds
+
+    @property
+    def setup_seconds(self):
+        """From the command's start to its first pixel: boxes, plan, and loading (or compiling) the kernels."""
+        return self.planned_seconds + self.rate.first_call
 
     def lines(self):
         """The estimate in words, one fact a line."""
@@ -61,16 +69,18 @@ class SkyEstimate:
             f"({per_thread / 1e6:.3g} M cells/s per thread), measured on {rate.rows} of the run's pixels in "
             f"{rate.seconds:.1f} s",
             f"expected wall time here: {_duration(self.wall_seconds)} (set-up {_duration(self.setup_seconds)}, "
-            f"one-point check {_duration(self.check_seconds)}, tracing {_duration(self.tracing_seconds)}); "
-            f"the summary and outputs after it read each map a few times",
+            f"one-point check {_duration(self.check_seconds)}, tracing {_duration(self.tracing_seconds)}, "
+            f"summary {_duration(self.summary_seconds)}); FITS maps add a read of every map",
             f"on a cluster of N threads like these: tracing {_duration(self.cells / per_thread)} / N "
             f"({self.cells / per_thread / 3600:.3g} thread-hours)",
         ]
 
 
-def estimate_sky(series, mass_eV, nside, z_max, n_jobs=1, started=None, sample_seconds=4.0, **options):
+def estimate_sky(series, mass_eV, nside, z_max, n_jobs=1, started=None, summary=None, sample_seconds=4.0,
+                 **options):
     """The :class:`SkyEstimate` of ``cast_sky(series, mass_eV, nside, z_max, n_jobs=n_jobs, **options)``,
-    tracing only a sample of its pixels; ``started``: ``time.perf_counter()`` when the command began."""
+    tracing only a sample of its pixels; ``started``: the ``time.perf_counter()`` of the command's start;
+    ``summary(sky)``: what the command does with the finished sky (timed on a stand-in)."""
     started = time.perf_counter() if started is None else started
     plan = plan_sky(series, mass_eV, nside, z_max, **options)
     setup = time.perf_counter() - started
@@ -81,9 +91,29 @@ def estimate_sky(series, mass_eV, nside, z_max, n_jobs=1, started=None, sample_s
     rate = sample_rate(plan.tracer, plan.n_pixels, n_jobs, batch, sample_seconds)
     boxes, mapped, batch_bytes = worker_bytes(plan.tracer, batch)
     process = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # kB on Linux
+    summary = 0.0 if summary is None else _timed_on_a_stand_in(summary, plan) * plan.n_pixels / (12 * STAND_IN**2)
     return SkyEstimate(plan.n_pixels, plan.tracer.rays_per_row, plan.mass_eV.size,
                        plan.n_pixels * plan.tracer.cells_per_row(), plan.result_bytes(), boxes, mapped, batch,
-                       batch_bytes, process, setup, check, rate)
+                       batch_bytes, process, setup, check, summary, rate)
+
+
+#: nside of the stand-in sky on which the summary is timed (its cost grows with the pixels).
+STAND_IN = 64
+
+
+def _timed_on_a_stand_in(summary, plan):
+    """Seconds ``summary`` takes on a sky of nside :data:`STAND_IN` with the run's masses (log-normal maps)."""
+    import numpy as np
+
+    from raytrace.sky.maps import SkyResult
+
+    n_pixels, masses = 12 * STAND_IN**2, plan.mass_eV.size
+    maps = np.random.default_rng(0).lognormal(0.0, 0.5, (n_pixels, masses))
+    sky = SkyResult(plan.mass_eV, maps, np.zeros(masses), maps, np.zeros(n_pixels), 0.0,
+                    dict(plan.run, nside=STAND_IN))
+    begun = time.perf_counter()
+    summary(sky)
+    return time.perf_counter() - begun
 
 
 def _duration(seconds):

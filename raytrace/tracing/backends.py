@@ -72,6 +72,16 @@ def _header_digest(run_json, layout_shapes):
     return hashlib.sha256(json.dumps([run_json, layout_shapes], sort_keys=True).encode()).hexdigest()
 
 
+def _open_to_fill(path):
+    """``path`` open for writing, HDF5's sieve buffer off: a batch is a piece of every mass's map, each
+    written straight to its place (the buffer reads and rewrites 64 kB around each: measured 2.5 times
+    slower for 1024 pixels of 32 masses)."""
+    access = h5py.h5p.create(h5py.h5p.FILE_ACCESS)
+    access.set_libver_bounds(h5py.h5f.LIBVER_EARLIEST, h5py.h5f.LIBVER_LATEST)
+    access.set_sieve_buf_size(0)
+    return h5py.File(h5py.h5f.open(os.fsencode(path), h5py.h5f.ACC_RDWR, fapl=access))
+
+
 def size_text(n_bytes):
     """Bytes in words people read: '3.2 GB', '740 MB'."""
     return f"{n_bytes / 1e9:.3g} GB" if n_bytes >= 1e9 else f"{n_bytes / 1e6:.3g} MB"
@@ -149,7 +159,7 @@ class HDF5Backend:
         groups = contents.made_groups(run)
         try:
             self._create(mass_eV, n_rows, run, n_batches, format_name, contents, groups)
-            self.handle = h5py.File(self.checkpoint, "r+")
+            self.handle = _open_to_fill(self.checkpoint)
         except OSError as error:
             if is_write_failure(error):
                 raise write_failure(self.checkpoint, error, "no checkpoint was made") from None
@@ -187,7 +197,7 @@ class HDF5Backend:
         differences = _differences(stored, current)
         if differences:
             raise InputError(f"{self.checkpoint}: cannot resume, the run differs: " + "; ".join(differences))
-        return h5py.File(self.checkpoint, "r+")
+        return _open_to_fill(self.checkpoint)
 
     def _rows_of(self, batch_rows):
         """The rows of each dataset in this batch's place, as stored."""

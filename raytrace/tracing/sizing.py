@@ -31,12 +31,14 @@ def spread_rows(n_rows, first, count):
 
 @dataclass(frozen=True)
 class Rate:
-    """A measured tracing rate: ``cells`` box cells in ``seconds`` on ``threads`` threads, over ``rows`` rows."""
+    """A measured tracing rate: ``cells`` box cells in ``seconds`` on ``threads`` threads, over ``rows`` rows;
+    ``first_call`` seconds more than its rows took the first call (loading or compiling the kernels)."""
 
     cells: float
     seconds: float
     threads: int
     rows: int
+    first_call: float
 
     @property
     def per_second(self):
@@ -50,7 +52,9 @@ def sample_rate(tracer, n_rows, n_jobs, batch_rows, seconds=4.0):
     with numba_threads(n_jobs):
         threads = numba.get_num_threads()
         step = step_rows(batch_rows, threads, cells)
-        tracer.trace(spread_rows(n_rows, 0, min(step, n_rows)))  # compiles, or loads the kernels: not counted
+        start = time.perf_counter()
+        tracer.trace(spread_rows(n_rows, 0, min(step, n_rows)))  # compiles, or loads the kernels
+        first_call = time.perf_counter() - start
         done, elapsed, calls = 0, 0.0, 1
         while elapsed < seconds and done < n_rows:
             count = min(calls * step, n_rows - done)
@@ -59,7 +63,7 @@ def sample_rate(tracer, n_rows, n_jobs, batch_rows, seconds=4.0):
                 tracer.trace(spread_rows(n_rows, first + step, min(step, done + count - first)))
             elapsed += time.perf_counter() - start
             done, calls = done + count, 2 * calls
-    return Rate(done * cells, elapsed, threads, done)
+    return Rate(done * cells, elapsed, threads, done, max(0.0, first_call - min(step, n_rows) * elapsed / done))
 
 
 def worker_bytes(tracer, batch_rows):
