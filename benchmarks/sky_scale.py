@@ -112,6 +112,7 @@ def main():
         print(f"series: 2 snapshots of {args.cells}^3 cells, {args.box_size:g} cMpc ({boxes_mb:.0f} MB, "
               f"memory-mapped); {args.masses} masses, z = 0 to {args.z_max:g}, {args.jobs} threads; "
               f"load average {os.getloadavg()[0]:.1f}")
+        run_child(["sky", *common, "--nside", "1"])  # compiles the kernels once (numba caches them): not measured
         peaks, walls = {}, {}
         sized = args.nsides[len(args.nsides) // 2]
         for nside in args.nsides:

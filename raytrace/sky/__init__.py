@@ -1,5 +1,7 @@
 """Sky maps: one observer's HEALPix light cone of the conversion kernel.
 
 In: a box series, a mass grid and nside. Out: :class:`~raytrace.sky.maps.SkyResult`
-with its maps, angular power spectra, dT/T and HEALPix FITS files (``maps``).
+with its maps (read one mass at a time from the result file), angular power
+spectra, dT/T (``maps``), HEALPix FITS files written a block of pixels at a time
+(``fitsmaps``), and a run sized before it runs (``estimate``).
 """
