@@ -8,8 +8,9 @@ in cells of the box, so that engines with and without a step compare:
 (c) the same half-cell calculation written the way a user would without the tool:
     scipy.ndimage.map_coordinates (order 1, grid-wrap) plus vectorised numpy
     crossing accumulation, on the half-cell engine's own sampling plan;
-(d) the exact engine on 2 threads against 1.
-Targets (issue 10): a/b >= 1 (aim 2), d >= 1.8; a/c is reported. The same rays
+(d) the exact engine on 2 threads against 1;
+(e) the exact engine with 16 redshift bins and the density classes against (a) (issue 23).
+Targets (issue 10): a/b >= 1 (aim 2), d >= 1.8; a/c is reported; (e) aim < 15 % overhead. The same rays
 (same directions and copy transforms) go through (a) and (b), and their mean
 kernels are printed side by side at a few masses with the paired standard error
 of the ratio (they should agree to a few % in the bulk of the mass range).
@@ -162,6 +163,37 @@ def compare_means(exact, half_cell, mass, n_rays, columns=7):
               f"{reached[k]:14d}")
 
 
+def bin_overhead(series, mass, plasma, rays, cells_per_ray, rounds, count=16):
+    """The exact engine on one thread with ``count`` redshift bins and the default density classes (each
+    crossing's kernel also added to its cell) against none, and each batch's reduction to the bins'
+    statistics (raytrace.binstats); by process CPU time (a loaded machine disturbs it least), best of
+    ``rounds``, the two engines alternating. The reduction is timed on an accumulator already holding a
+    batch, as in a run (its first batch also touches the histogram's pages)."""
+    from raytrace.statistics.binstats import BinAccumulator
+    from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins
+
+    bins = run_bins(count, DEFAULT_DENSITY_EDGES, mass, plasma, 1.0, 1.0, False)
+    plain = RayTracer(series, mass, 1.0, 7, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology)
+    binned = RayTracer(series, mass, 1.0, 7, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology, bins)
+    reducer = BinAccumulator.for_run(bins, mass, plasma, 1.0, np.zeros(mass.size), len(rays) * (rounds + 1))
+    best = {"plain": np.inf, "binned": np.inf, "reduce": np.inf}
+    with numba_threads(1):
+        reducer.add(0, 0, binned.trace(rays))  # compile, and the histogram's first touch
+        for number in range(1, rounds + 1):
+            best["plain"] = min(best["plain"], timed(lambda: plain.trace(rays))[1])
+            _, cpu, out = timed(lambda: binned.trace(rays))
+            best["binned"] = min(best["binned"], cpu)
+            best["reduce"] = min(best["reduce"], timed(lambda: reducer.add(number, number * len(rays), out))[1])
+    cells = len(rays) * cells_per_ray
+    print(f"(e) exact engine, 1 thread, {bins.n_bins} redshift bins and density classes {bins.density_edges.tolist()} "
+          f"({bins.n_cells} cells per mass): {cells / best['binned'] / 1e6:.3f} M cells per CPU second against "
+          f"{cells / best['plain'] / 1e6:.3f} without; each batch's reduction to the bins' statistics "
+          f"{1e3 * best['reduce'] / len(rays):.3f} ms of CPU per ray")
+    print(f"ratio: bins' overhead = {100 * (best['binned'] / best['plain'] - 1):.1f} % in the engine, "
+          f"{100 * ((best['binned'] + best['reduce']) / best['plain'] - 1):.1f} % with the reduction "
+          f"(aim < 15 %), on rays of {cells_per_ray:.0f} cells")
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cells", type=int, default=256)
@@ -218,6 +250,7 @@ def main():
     print(f"by CPU time: a/b = {cpu_exact / cpu_half:.2f}, CPU per cell 2 threads / 1 thread = "
           f"{cpu_exact / cpu_two:.2f}; load average {load_before:.2f} before the timings, "
           f"{os.getloadavg()[0]:.2f} after, on {os.cpu_count()} cores")
+    bin_overhead(series, mass, plasma, rays, cells_per_ray, args.rounds)
     if args.compare_rays:
         compare_means(exact, half_cell, mass, args.compare_rays)
 
@@ -239,11 +272,17 @@ def main():
         with warnings.catch_warnings():  # 4 rays are too few for the built-in mean check; only compiling here
             warnings.simplefilter("ignore", MeanCheckWarning)
             raytrace.cast_sightlines(series, mass, 4, z_max=6.0, n_jobs=2, plasma=plasma)  # compile, tables
-        start = time.perf_counter()
-        raytrace.cast_sightlines(series, mass, args.demo_rays, z_max=6.0, n_jobs=2, plasma=plasma,
-                                 include_background=False, batch_size=512)
-        print(f"demo series: {args.demo_rays} rays to z = 6, 128 masses, 2 threads: "
-              f"{time.perf_counter() - start:.1f} s (target of the sightline-engine issue: < 30 s)")
+        seconds = {}
+        for bins in (None, 16):
+            wall, cpu, _ = timed(lambda: raytrace.cast_sightlines(series, mass, args.demo_rays, z_max=6.0, n_jobs=2,
+                                                                  plasma=plasma, include_background=False,
+                                                                  batch_size=512, redshift_bins=bins))
+            seconds[bins] = (wall, cpu)
+        print(f"demo series: {args.demo_rays} rays to z = 6, 128 masses, 2 threads: {seconds[16][0]:.1f} s "
+              f"(target of the sightline-engine issue: < 30 s for 10^4 rays); without redshift bins "
+              f"{seconds[None][0]:.1f} s: the whole run's overhead of 16 bins "
+              f"{100 * (seconds[16][0] / seconds[None][0] - 1):.1f} % by wall time, "
+              f"{100 * (seconds[16][1] / seconds[None][1] - 1):.1f} % by CPU time (aim < 15 %)")
 
 
 if __name__ == "__main__":

@@ -62,7 +62,7 @@ def cells_per_ray(series, z_max, plasma):
 
 def per_thread_rates(series, mass, z_max, plasma, rows=1536, rounds=3):
     """Best-of-``rounds`` box cells per CPU second on one thread: (sky tracer, sightline engine), same rows."""
-    sky = SkyTracer(series, mass, 64, 1, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology, True, "RING")
+    sky = SkyTracer(series, mass, 64, 1, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology, True, ordering="RING")
     rays = RayTracer(series, mass, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology)
     cells = sky.cells_per_row()
     assert abs(cells / rays.cells_per_row() - 1) < 1e-12  # the same ray length through the same boxes

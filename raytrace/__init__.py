@@ -6,9 +6,11 @@ Data flow, one package per stage (each imports only the ones above it here)::
     core/, physics/, kernels/         errors and outputs; constants, plasma mass, conversion, cosmology; numba
     boxes/                            HDF5 box files, particles, yt -> Box / BoxSeries
       -> tracing/                     rays through stacked, transformed copies -> per-row kernels
-      -> statistics/                  SightlineResult: mean, spread; one-point-PDF mean and the built-in check
+      -> statistics/                  SightlineResult: mean, spread, per redshift bin and density class;
+                                      one-point-PDF mean and the built-in check
       -> sky/                         HEALPix light cone, C_l, dT/T, FITS
-      -> limits/                      epsilon_max(m) from the CMB spectrum and the isotropy of the CMB
+      -> limits/                      epsilon_max(m) from the CMB spectrum and the isotropy of the CMB;
+                                      dark radiation into photons (spectrum, excess, limits)
       -> report/, cli/                figures, the one-page report, the command line
 
 A notebook session::
@@ -56,6 +58,13 @@ _PUBLIC = {
     "degrade": "statistics.resolution",
     "resolution_convergence": "statistics.resolution",
     "read_spectrum": "limits.spectrum",
+    "BinnedKernels": "statistics.binstats",
+    "DecayingDarkMatter": "physics.darksources",
+    "TabulatedSource": "physics.darksources",
+    "converted_photons": "limits.darkradiation",
+    "converted_photon_map": "limits.darkradiation",
+    "added_photon_limit": "limits.darklimits",
+    "radio_limit": "limits.darklimits",
 }
 
 __all__ = sorted(_PUBLIC) + ["__version__"]

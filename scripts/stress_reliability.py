@@ -1,10 +1,16 @@
-"""Stress test of checkpoints and cluster runs (not in CI): random SIGKILLs, damaged batches, worker kills.
+"""Stress test of checkpoints, outputs and cluster runs (not in CI): random SIGKILLs, damaged batches,
+outputs over inputs, concurrent writers, worker kills.
 
 1. A sightline run (``python -m raytrace sightlines``) is SIGKILLed at ``--kills`` random
    moments, resumed after each; after ``--corrupt`` of the kills a finished batch of the
    checkpoint gets random bytes. The final result must be bit-identical to the
    uninterrupted run, and every damaged batch must have been reported and recomputed.
-2. The same run on a local dask cluster (``--scheduler local --workers 2``) with one worker
+2. Outputs over inputs: the run asked to write onto a box (by name, through a symlink, through the
+   run file's glob) must refuse in one line, exit 2, and leave the box's bytes as they were.
+3. Concurrent writers: pairs of runs with different seeds started together (``--overwrite``) on one
+   output: one writes, the other stops in one line, and the file holds the seed of the run that
+   printed it; no lock file or temporary is left.
+4. The same run on a local dask cluster (``--scheduler local --workers 2``) with one worker
    process SIGKILLed in the first second and another mid-run must equal it as well.
 
 Prints the figures (kills landed, batches done at each, damaged batches recomputed, worker
@@ -112,13 +118,13 @@ def kill_and_resume(folder, reference, args, rng, max_delay):
             continue
         if process.returncode == -signal.SIGKILL:
             landed.append((round(delay, 2), int(batches_done(checkpoint).size)))
-        elif process.returncode == 0:
-            print(f"  kill {kill}: the run finished first ({delay:.2f} s); starting afresh")
-            os.unlink(output)
-            continue
-        elif "already complete" in stderr:  # killed between the final save and the checkpoint's removal
+        elif "already complete" in stderr:  # killed during the final write: the resume completed it
             print(f"  kill {kill}: {stderr.strip().splitlines()[-1]}")
             between_save_and_cleanup.append(kill)
+            os.unlink(output)
+            continue
+        elif process.returncode == 0:
+            print(f"  kill {kill}: the run finished first ({delay:.2f} s); starting afresh")
             os.unlink(output)
             continue
         else:
@@ -133,11 +139,69 @@ def kill_and_resume(folder, reference, args, rng, max_delay):
     reported += final.stderr.count("fail their checksum")
     print(f"  kills landed mid-run: {len(landed)} in {kill + 1} starts (delay s, batches done): {landed}")
     print(f"  damaged batches: {damaged}; resumes that reported a checksum failure: {reported}; "
-          f"kills between the final save and the checkpoint's removal: {len(between_save_and_cleanup)}")
+          f"kills during the final write, completed by the resume: {len(between_save_and_cleanup)}")
     ok = final.returncode == 0 and same(output, reference) and reported >= len(damaged)
     print(f"  final resume exit {final.returncode}; bit-identical to the uninterrupted run: {ok}")
     if final.returncode != 0:
         print("  " + "\n  ".join(final.stderr.strip().splitlines()[-2:]))
+    return ok
+
+
+def sha256(path):
+    import hashlib
+
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def outputs_over_inputs(folder):
+    """Each way an output can name an input: refused in one line, exit 2, the input's bytes unchanged."""
+    os.symlink("box_z1.h5", folder / "alias.h5")
+    globbed = folder / "glob.toml"
+    globbed.write_text((folder / "run.toml").read_text().replace('["box_z0.h5", "box_z1.h5"]', '["box_z*.h5"]'))
+    cases = [("a box by name", "run.toml", "box_z0.h5"), ("a box through a symlink", "run.toml", "alias.h5"),
+             ("the run file", "run.toml", "run.toml"), ("a box the run file's glob matches", "glob.toml", "box_z1.h5")]
+    ok = True
+    for what, run_file, output in cases:
+        victim = folder / output
+        before = sha256(victim)
+        done = subprocess.run([sys.executable, "-m", "raytrace", "sightlines", str(folder / run_file), "--output",
+                               str(victim), "--overwrite"], capture_output=True, text=True)
+        errors = [line for line in done.stderr.splitlines() if ": error: " in line]
+        kept = sha256(victim) == before
+        fine = done.returncode == 2 and len(errors) == 1 and "is an input file" in errors[0] and kept
+        ok = ok and fine
+        print(f"  {what}: exit {done.returncode}, input unchanged: {kept}, one line: {len(errors) == 1}")
+    os.unlink(folder / "alias.h5")
+    return ok
+
+
+def concurrent_writers(folder, rng, rounds):
+    """Pairs of --overwrite runs with different seeds started together on one output."""
+    import json
+
+    output = folder / "shared.h5"
+    outcomes, ok = [], True
+    for round_number in range(rounds):
+        seeds = (1000 + 2 * round_number, 1001 + 2 * round_number)
+        runs = []
+        for seed in seeds:
+            runs.append(subprocess.Popen(command(folder, output, "--overwrite", "--seed", str(seed)),
+                                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
+            time.sleep(rng.uniform(0.0, 0.5))
+        finished = [(seed, run.wait(), *run.communicate()) for seed, run in zip(seeds, runs)]
+        with h5py.File(output, "r") as handle:
+            held = json.loads(handle.attrs["run"])["seed"]
+        writers = [seed for seed, status, out, _ in finished if status == 0 and "result:" in out]
+        stopped = [seed for seed, status, _, err in finished
+                   if status == 2 and sum(": error: " in line for line in err.splitlines()) == 1
+                   and "another raytrace run" in err]
+        leftover = [name for name in os.listdir(folder) if name.endswith((".lock", ".part", ".commit"))]
+        # One writer and one stopped run; where the two did not overlap both write, the later one last.
+        fine = held in writers and len(writers) + len(stopped) == 2 and not leftover
+        ok = ok and fine
+        outcomes.append((len(writers), len(stopped), held in writers))
+    print(f"  {rounds} pairs (writers, runs stopped in one line, file holds a writer's seed): {outcomes}"
+          + ("" if ok else "  FAILED"))
     return ok
 
 
@@ -195,6 +259,7 @@ def main():
     parser.add_argument("--max-delay", type=float, default=None,
                         help="latest kill, s after a start (default: 0.8 times the uninterrupted run)")
     parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--writer-pairs", type=int, default=3, help="pairs of concurrent writers on one output")
     parser.add_argument("--no-cluster", action="store_true")
     args = parser.parse_args()
     rng = np.random.default_rng(args.seed)
@@ -211,6 +276,10 @@ def main():
         print("SIGKILLs and resumes:")
         # Kills land from the start-up to most of the run's own time, so resumes get on with it.
         ok = kill_and_resume(folder, reference, args, rng, args.max_delay or 0.8 * took)
+        print("outputs over inputs:")
+        ok = outputs_over_inputs(folder) and ok
+        print("concurrent writers on one output:")
+        ok = concurrent_writers(folder, rng, args.writer_pairs) and ok
         if not args.no_cluster:
             print("local cluster with worker kills:")
             ok = cluster_with_worker_kills(folder, reference, args, rng) and ok

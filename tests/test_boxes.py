@@ -25,6 +25,10 @@ from raytrace.core.errors import InputError
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
 
+# The reading tests store values of order 1 (not cosmic densities): the plausibility warning is the
+# subject of test_box_sources.py and test_box_metadata.py, not of these.
+pytestmark = pytest.mark.filterwarnings("ignore::raytrace.boxes.meanings.PlausibilityWarning")
+
 HELIUM = 0.245
 X_E = 1.08
 H_SIM = 0.6766

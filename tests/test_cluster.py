@@ -166,7 +166,7 @@ def test_the_recipe_a_worker_gets_does_not_grow_with_the_boxes(tmp_path, plasma)
         rng = np.random.default_rng(cells)
         files = [write_lognormal_box(tmp_path / f"box{cells}_z{z:g}.h5", z, rng, cells=cells) for z in REDSHIFTS]
         series = raytrace.load_series([str(p) for p in files])
-        tracer = SkyTracer(series, MASS, 64, 4, 1.0, 2, 2.35e-4, plasma.cosmology, True, "RING")
+        tracer = SkyTracer(series, MASS, 64, 4, 1.0, 2, 2.35e-4, plasma.cosmology, True, ordering="RING")
         sizes[cells] = len(pickle.dumps(tracer_recipe(tracer)))
         assert all(isinstance(box.data, np.memmap) for box in series.boxes)
     assert sizes[64] < 5 * sizes[16] and sizes[64] < 0.2 * 2 * 64**3 * 4, sizes

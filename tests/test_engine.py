@@ -7,6 +7,8 @@ from astropy; the one-point PDF of the interpolated box from tests/reference_tra
 (scipy.ndimage.map_coordinates at random points, with its own standard error).
 """
 
+import warnings
+
 import astropy.constants as const
 import numpy as np
 import pytest
@@ -19,6 +21,7 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.core.errors import InputError, ProbedRangeWarning
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
 
 # 4 pi alpha / m_e in eV^2 per cm^-3 (PHYSICS.md section 1, whose NRL Plasma Formulary check value
 # 8.98 kHz sqrt(n_e / cm^-3) has 3 digits), from the exact CODATA constants in astropy.
@@ -122,8 +125,12 @@ def lognormal_run(constant_plasma):
     n_com = float(constant_plasma.mean_comoving_electron_density_cm3(0.0))
     box = Box.from_array(values * n_com, "100 cMpc", 0.0, quantity="n_e_comoving", plasma=constant_plasma)
     mass = np.geomspace(1.2e-14, 4.5e-14, 12)
-    result = raytrace.cast_sightlines(box, mass, 3000, z_max=1.0, include_background=False,
-                                      plasma=constant_plasma, seed=1, n_jobs=2)
+    with warnings.catch_warnings():
+        # The built-in check flags any of 12 masses past 3 standard errors (one in ~30 runs of this size);
+        # test_monte_carlo_mean_matches_one_point_pdf_integral makes the comparison with k chosen for 12.
+        warnings.simplefilter("ignore", MeanCheckWarning)
+        result = raytrace.cast_sightlines(box, mass, 3000, z_max=1.0, include_background=False,
+                                          plasma=constant_plasma, seed=1, n_jobs=2)
     return values, n_com, box, mass, result
 
 
@@ -170,6 +177,8 @@ def test_monte_carlo_mean_matches_one_point_pdf_integral(lognormal_run, lognorma
     check_spread_is_real_and_below_the_mean(result.kernel_boxes)
 
 
+# 37 rays: the built-in MC/PDF check rightly finds them few; the bits of every layout are the subject.
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_same_seed_same_result_for_any_jobs_or_batch(lognormal_run, constant_plasma):
     values, n_com, box, mass, _ = lognormal_run
     runs = [raytrace.cast_sightlines(box, mass, 37, z_max=0.5, include_background=False, plasma=constant_plasma,

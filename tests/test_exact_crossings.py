@@ -21,6 +21,8 @@ from raytrace.kernels.polynomial import ROOT_TOLERANCE, airy_ai, bracketed_root,
 from raytrace.kernels.tangent import XI_CUT, pair_kernel
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
+from raytrace.statistics.meancheck import MeanCheckWarning
+from raytrace.statistics.onepoint import FrozenBlendWarning
 from raytrace.tracing.rays import draw_rays, plan_rays
 
 X_E = 1.08  # constant ionisation: hydrogen plus singly ionised helium (PHYSICS.md section 5)
@@ -95,6 +97,9 @@ def test_every_crossing_of_every_ray_matches_an_independent_root_finder(plasma):
     assert compared > 200
 
 
+# At 1e-2 eV the Airy form moves K away from the one-point mean, which has no Airy form, and 8 rays are few:
+# the built-in check's warning is expected; the counts are the subject here.
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_airy_pairs_count_both_of_their_crossings_on_every_ray(plasma):
     # A high photon energy widens the Airy window (~omega^(2/3)), so many pairs are taken in the Airy form:
     # each claimed pair still counts its two crossings, and no claim hides any other crossing, so the
@@ -165,8 +170,11 @@ def test_blended_snapshots_follow_the_linear_blend_of_n_e(plasma):
     boxes = [Box.from_array(np.full((8,) * 3, n, np.float64), "50 cMpc", z, quantity="n_e_comoving", plasma=plasma)
              for z, n in ((0.0, n_a), (1.0, n_b))]
     mass = np.geomspace(np.sqrt(PLASMA_M2_PER_DENSITY * n_a) * 1.01, np.sqrt(PLASMA_M2_PER_DENSITY * n_b * 8) * 0.99, 6)
-    result = raytrace.cast_sightlines(BoxSeries(boxes, blend=True), mass, 3, z_max=1.0, include_background=False,
-                                      plasma=plasma)
+    # A uniform blended pair is the case the one-point mean's frozen blend gets wrong (its docstring: up to
+    # 20 % off while its error is tiny): both warnings must come, the MC/PDF check failing by far.
+    with pytest.warns(FrozenBlendWarning, match="frozen"), pytest.warns(MeanCheckWarning, match="at 6 of 6 masses"):
+        result = raytrace.cast_sightlines(BoxSeries(boxes, blend=True), mass, 3, z_max=1.0,
+                                          include_background=False, plasma=plasma)
     for k, m in enumerate(mass):
         def excess(z):
             return PLASMA_M2_PER_DENSITY * ((1 - z) * n_a + z * n_b) * (1 + z) ** 3 - m**2
@@ -361,6 +369,7 @@ def test_the_spread_between_sightlines_is_stable_on_the_demo_series(demo_series)
 
 
 # -- options ------------------------------------------------------------------------------------
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")  # 2 rays: too few for the built-in check, as it says
 def test_the_photon_energy_is_recorded_and_checked(plasma):
     box = Box.from_array(random_box(8, seed=1), "10 cMpc", 0.0, quantity="overdensity", plasma=plasma)
     mass = np.geomspace(1e-14, 2e-14, 3)

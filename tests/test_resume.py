@@ -22,6 +22,8 @@ from conftest import write_lognormal_box
 
 from raytrace.cli import main
 from raytrace.core.provenance import file_checksum
+from raytrace.statistics.binstats import BINNED_DATASETS
+from raytrace.statistics.onepoint import PdfMean
 from raytrace.statistics.results import SightlineResult
 from raytrace.tracing.sightlines import SIGHTLINE_LAYOUT
 
@@ -78,6 +80,9 @@ def datasets(path):
         arrays = {name: handle[name][...] for name in handle if isinstance(handle[name], h5py.Dataset)}
         # The built-in check's one-point-PDF mean (raytrace.statistics.meancheck) is a group of its own.
         arrays.update({f"pdf_mean/{name}": values[...] for name, values in handle["pdf_mean"].items()})
+        # So are the statistics per redshift bin, reduced batch by batch (raytrace.binstats): a resume
+        # reduces the finished batches again from the checkpoint, to the same bits.
+        arrays.update({f"redshift_bins/{name}": values[...] for name, values in handle["redshift_bins"].items()})
         return (arrays,
                 {"run": run, **{key: handle.attrs[key] for key in ("dispersion_measure_background", "complete")}})
 
@@ -85,10 +90,11 @@ def datasets(path):
 def assert_same_result(path, reference_path):
     arrays, attributes = datasets(path)
     expected_arrays, expected_attributes = datasets(reference_path)
-    # The result file is the run's checkpoint, finished: it keeps each batch's rows and checksum.
+    binned = [f"redshift_bins/{name}" for name in BINNED_DATASETS if name != "ray_bins"]
+    # The result file keeps each batch's rows and checksum (it is the run's checkpoint, finished).
     assert sorted(arrays) == sorted(expected_arrays) == sorted(
-        [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", "pdf_mean/kernel_boxes", "pdf_mean/kernel_background",
-         "pdf_mean/error", "batch_rows", "batch_sha256", "batch_done"])
+        [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", *[f"pdf_mean/{name}" for name in PdfMean.ARRAYS],
+         *binned, "batch_rows", "batch_sha256", "batch_done"])
     for name, values in expected_arrays.items():
         assert np.array_equal(arrays[name], values), name
     assert attributes == expected_attributes
@@ -205,10 +211,11 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
         output.write_bytes(b"an earlier result")
     before = set(os.listdir(folder))
 
-    def disk_full(handle):  # the last write of a run, after every batch: its completion flag
+    def disk_full(handle, path):  # the last step inside the result's temporary file, after every dataset is in
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr("raytrace.tracing.backends.mark_complete", disk_full)
+    # A sightline run's result is written apart at the end (with its statistics per redshift bin).
+    monkeypatch.setattr("raytrace.tracing.backends._check_finite", disk_full)
     # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
     assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")

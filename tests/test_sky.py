@@ -12,6 +12,7 @@ import math
 import os
 import subprocess
 import sys
+import warnings
 
 import astropy.constants as const
 import astropy.units as u
@@ -32,6 +33,7 @@ from raytrace.physics.background import MeanPlasma
 from raytrace.physics.conversion import ISOTROPY_LEVEL, photon_x
 from raytrace.physics.ionisation import IonisationHistory
 from raytrace.sky.maps import SkyResult
+from raytrace.statistics.meancheck import MeanCheckWarning, mean_check
 from raytrace.tracing.lattice import SkyTracer, observer_position
 from raytrace.tracing.rays import CUBE_SYMMETRIES
 
@@ -70,14 +72,22 @@ def structured_box(plasma, n_com):
 
 
 def structured_sky(box, plasma, nside, seed=0, **options):
-    return raytrace.cast_sky(box, STRUCTURED_MASSES, nside, STRUCTURED_Z_MAX, seed=seed, include_background=False,
-                             plasma=plasma, **options)
+    with warnings.catch_warnings():
+        # A sky is one observer's correlated light cone: its built-in MC/PDF check may flag a mass by nature
+        # (the warning says so); test_sky_mean_agrees_with_the_one_point_pdf_integral compares over seeds.
+        warnings.simplefilter("ignore", MeanCheckWarning)
+        return raytrace.cast_sky(box, STRUCTURED_MASSES, nside, STRUCTURED_Z_MAX, seed=seed,
+                                 include_background=False, plasma=plasma, **options)
 
 
 @pytest.fixture(scope="module")
 def seeded_skies(structured_box, plasma):
     """Independent skies: each seed has its own observer and its own copy transforms."""
-    return [structured_sky(structured_box, plasma, 16, seed, ordering="NESTED", n_jobs=2) for seed in SKY_SEEDS]
+    # The built-in check flags a few of these skies at 4-4.4 of its 12-face standard errors; the
+    # test of the sky mean below shows that this is that error being too small, not the sky.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", MeanCheckWarning)
+        return [structured_sky(structured_box, plasma, 16, seed, ordering="NESTED", n_jobs=2) for seed in SKY_SEEDS]
 
 
 @pytest.fixture(scope="module")
@@ -147,6 +157,20 @@ def test_sky_mean_agrees_with_the_one_point_pdf_integral(structured_box, plasma,
     # ... and the two agree within 4 combined standard errors (the skies' error itself comes
     # from 16 samples, hence 4 rather than 3).
     assert np.all(np.abs(sky_means.mean(axis=0) - expected)[resonating] < 4 * error[resonating])
+    # The built-in check (raytrace.statistics.meancheck) flags some of these skies at 4-4.4 of its standard
+    # errors, the batch means of the 12 base pixels. Measured over 64 skies (seeds 0-63, nside 16), that error is
+    # too small, not the sky: the sky-to-sky scatter of the mean is 1.3 to 2.4 times the rms 12-face
+    # error at these masses (the faces of one light cone share structures: the copy around the observer
+    # fills all of them out to half a box, 250 Mpc here, and the ratio grows with nside, 1.1-1.7 at nside
+    # 4), so the check's pulls spread with a standard deviation of 1.4-2.5 instead of t(11)'s 1.1 and pass
+    # its 3.85 in 2-16 % of skies per mass; the average of the 64 skies agrees with the reference's
+    # one-point mean within 2.1 of its standard errors (0.7-2.3 %), and measured in the real scatter no
+    # sky deviates by more than 3.1.
+    scatter = sky_means.std(axis=0, ddof=1)
+    deviation = (sky_means - expected) / np.hypot(scatter, expected_error)
+    assert np.all(np.abs(deviation[:, resonating]) < 3.5), deviation  # measured at most 2.8 (seeds 0-15)
+    face_error = np.sqrt(np.mean([mean_check(sky).mc_error ** 2 for sky in seeded_skies], axis=0))
+    assert np.mean(scatter[resonating] / face_error[resonating]) > 1.2  # measured 1.6 (seeds 0-15)
 
 
 def test_neighbouring_pixels_are_more_correlated_than_pixels_90_degrees_apart(seeded_skies):
@@ -201,10 +225,17 @@ LAYERED_MASSES = np.geomspace(1.4e-14, 2.6e-14, 5)
 
 
 def layered_sky(box, plasma, randomise, ordering="RING"):
-    return raytrace.cast_sky(box, LAYERED_MASSES, 8, 0.2, seed=3, include_background=False, plasma=plasma,
-                             randomise_copies=randomise, ordering=ordering)
+    with warnings.catch_warnings():
+        # A field varying along one axis, seen from one point: far from a fair sample of the volume, so the
+        # built-in MC/PDF check may warn; the lattice's symmetry is the subject.
+        warnings.simplefilter("ignore", MeanCheckWarning)
+        return raytrace.cast_sky(box, LAYERED_MASSES, 8, 0.2, seed=3, include_background=False, plasma=plasma,
+                                 randomise_copies=randomise, ordering=ordering)
 
 
+# The built-in check flags the untransformed lattice's sky: its copies repeat exactly, so the 12 faces
+# share even more than a random sky's (test_sky_mean_agrees_with_the_one_point_pdf_integral says why).
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 @pytest.mark.parametrize("flip", [(1, -1, 1), (1, 1, -1)], ids=["y->-y", "z->-z"])
 def test_untransformed_copies_print_the_lattice_symmetry_and_random_copies_break_it(plasma, n_com, flip):
     # A field that varies along x only: through an untransformed periodic lattice the point
@@ -472,6 +503,7 @@ def test_cl_limit_tables_are_read_and_bad_ones_refused(tmp_path):
 
 
 # -- determinism and sub-pixel rays ---------------------------------------------------------------
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")  # its 12-face error (see above)
 def test_maps_are_bit_identical_for_any_jobs_or_batch(structured_box, plasma):
     runs = [structured_sky(structured_box, plasma, 4, seed=9, n_jobs=jobs, batch_pixels=batch)
             for jobs, batch in ((1, 1024), (2, 1024), (1, 7), (2, 50))]

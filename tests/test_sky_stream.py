@@ -28,7 +28,7 @@ from raytrace.core.errors import InputError
 from raytrace.limits.anisotropy import anisotropy_limit
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
-from raytrace.sky import fitsmaps
+from raytrace.sky import fits as fitsmaps
 from raytrace.sky.maps import SkyResult
 from raytrace.tracing import backends
 from raytrace.tracing.backends import HDF5Backend
@@ -61,7 +61,7 @@ def whole(request, series, plasma):
     """(ordering, per-pixel arrays): every pixel traced in one call of the tracer, in memory."""
     ordering = request.param
     tracer = SkyTracer(series, MASS, OPTIONS["nside"], 1, OPTIONS["z_max"], OPTIONS["seed"], 2.35e-4,
-                       plasma.cosmology, True, ordering)
+                       plasma.cosmology, True, ordering=ordering)
     arrays = tracer.trace(np.arange(12 * OPTIONS["nside"] ** 2))
     assert arrays["crossings"].sum() > 1000  # resonances happen: equality below is not between zeros
     return ordering, arrays
@@ -245,3 +245,25 @@ def test_the_progress_bar_counts_cells_per_second_and_the_time_left(series, plas
     raytrace.cast_sky(series, MASS, plasma=plasma, progress=True, **OPTIONS)
     err = capsys.readouterr().err
     assert "cell/s" in err and "<" in err  # tqdm's rate, and its elapsed<remaining bracket
+
+
+def test_a_refused_completion_keeps_the_sky_for_resume(series, plasma, box_files, tmp_path, monkeypatch, capsys):
+    # The last write of a sky run is its completion flag, in place (errno 28 is ENOSPC, POSIX errno.h).
+    # Reference: the same sky traced in memory.
+    reference = raytrace.cast_sky(series, MASS, plasma=plasma, ordering="RING", batch_pixels=16, **OPTIONS)
+    settings = run_file(tmp_path, box_files)
+    output = tmp_path / "sky.h5"
+
+    def disk_full(handle):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(backends, "mark_complete", disk_full)
+    assert main(["sky", str(settings), "--output", str(output)]) == 2
+    lines = [line for line in capsys.readouterr().err.splitlines() if ": error: " in line]
+    assert len(lines) == 1 and f"{output}.partial" in lines[0] and "--resume" in lines[0]
+    assert not output.exists() and sorted(os.listdir(tmp_path)) == ["sky.h5.partial", "sky.toml"]
+    monkeypatch.undo()
+    assert main(["sky", str(settings), "--output", str(output), "--resume"]) == 0
+    with SkyResult.load(output) as resumed:
+        for k in range(MASS.size):
+            assert np.array_equal(resumed.map("kernel_boxes", k), reference.map("kernel_boxes", k)), k

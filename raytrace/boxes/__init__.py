@@ -62,6 +62,7 @@ from raytrace.boxes.meanings import (
     MAX_IONISED_FRACTION,
     MEAN_DENSITY_REFERENCES,
     QUANTITIES,
+    PlausibilityWarning,
     plausibility_warnings,
 )
 from raytrace.boxes.metadata import ALIASES, HEADER_GROUPS
@@ -70,6 +71,7 @@ from raytrace.boxes.series import BoxSeries, as_series, load_boxes, load_series
 
 __all__ = [
     "ALIASES", "HEADER_GROUPS", "MAX_IONISED_FRACTION", "MEAN_DENSITY_REFERENCES", "PERCENTILES", "QUANTITIES",
+    "PlausibilityWarning",
     "Box", "BoxSeries", "as_series", "load_box", "load_boxes", "load_series", "plausibility_warnings",
     "sample_cells",
 ]

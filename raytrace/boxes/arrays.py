@@ -51,7 +51,7 @@ def box_from_array(cls, array, box_size, redshift, quantity, plasma, hubble_h, i
     scale = _comoving_scale(quantity, z, constant, plasma, reference)
     if check:
         warn_plausibility(f"in-memory box at z = {z:g}", z, scale * stats["mean"] * (1.0 + z) ** 3, plasma,
-                          box_ionisation, h)
+                          box_ionisation, h, stored=(quantity, stats["mean"]))
     info = {
         "stored_dtype": str(array.dtype),
         "box_size_given": length.text,

@@ -1,7 +1,8 @@
 """Gas particles in an HDF5 file -> comoving electron density on a periodic N^3 grid.
 
 In: an HDF5 file of gas particles and the names of its datasets, with every unit
-stated (nothing is guessed; a missing unit is an InputError naming the option).
+stated by an option or by the file's header and code units (:mod:`raytrace.boxes.particleheader`;
+nothing is guessed: what neither states is named, all of it in one InputError).
 Out: `grid_particles` returns a `GriddedParticles` holding the comoving electron
 number density n_e in cm^-3 per cell and the electron totals before and after
 deposition; `write_gridded_box` writes it as a box file that
@@ -55,14 +56,8 @@ from pathlib import Path
 
 import numpy as np
 
-from raytrace.boxes.particlefile import (
-    ParticleInputs,
-    box_size_cMpc,
-    length_to_cMpc,
-    mass_to_g,
-    open_particle_file,
-    option_label,
-)
+from raytrace.boxes.particlefile import ParticleInputs, checked_number, open_particle_file, option_label
+from raytrace.boxes.particleheader import particle_units
 from raytrace.core.errors import InputError
 from raytrace.core.provenance import atomic_output, file_checksum, provenance_json
 from raytrace.kernels.deposit import deposit_cic, deposit_sph
@@ -108,17 +103,6 @@ class GriddedParticles:
         )
 
 
-def _number(value, option, expected, accept):
-    """``value`` as a finite float that ``accept`` approves, or InputError naming ``option``."""
-    try:
-        number = float(value)
-    except (TypeError, ValueError):
-        number = math.nan
-    if not (math.isfinite(number) and accept(number)):
-        raise InputError(f"{option_label(option)}: expected {expected}, got {value!r}")
-    return number
-
-
 def _exactly_one(first, second, what):
     given = [name for name, value in (first, second) if value is not None]
     if len(given) != 1:
@@ -132,7 +116,7 @@ def grid_particles(
     path,
     n_cells,
     *,
-    positions,
+    positions=None,
     position_unit=None,
     box_size=None,
     redshift=None,
@@ -157,14 +141,15 @@ def grid_particles(
     number for every particle. See the module docstring for what each option
     means and which are needed. Returns a `GriddedParticles`.
     """
-    n_cells, redshift, hubble_h, hydrogen_fraction = _grid_numbers(n_cells, redshift, hubble_h, hydrogen_fraction)
+    n_cells, hydrogen_fraction = _grid_numbers(n_cells, hydrogen_fraction)
     use_sph, kernel_support = _deposit_method(method, smoothing_lengths, kernel_support)
-    _check_mass_and_electron_options(masses, densities, volumes, electron_abundance, hydrogen_ionised_fraction)
+    missing = _check_mass_and_electron_options(masses, densities, volumes, electron_abundance,
+                                               hydrogen_ionised_fraction)
+    # Everything missing in one message; what the options leave out, the file's header may say.
+    units = particle_units(path, positions, redshift, hubble_h, box_size, position_unit, mass_unit, missing)
+    redshift, hubble_h, box_cMpc, to_cMpc, to_g = (units.redshift, units.hubble_h, units.box_cMpc, units.to_cMpc,
+                                                   units.to_g)
     electrons_per_hydrogen_factor = _helium_factor(hydrogen_ionised_fraction, helium_electrons, hydrogen_fraction)
-
-    to_cMpc = length_to_cMpc(position_unit, option_label("position_unit"), redshift, hubble_h)
-    box_cMpc = box_size_cMpc(box_size, redshift, hubble_h)
-    to_g = mass_to_g(mass_unit, hubble_h)
     cell_cMpc = box_cMpc / n_cells
 
     path = Path(path)
@@ -187,7 +172,8 @@ def grid_particles(
         "datasets": datasets,
         "electron_option": "electron_abundance" if electron_abundance is not None else "hydrogen_ionised_fraction",
         "helium_electrons": helium_electrons,
-        "units": {"position_unit": position_unit, "box_size": str(box_size), "mass_unit": mass_unit},
+        "units": {"position_unit": position_unit, "box_size": str(box_size), "mass_unit": mass_unit,
+                  "from_the_file": units.sources},
         "hubble_h": hubble_h,
         "hydrogen_fraction": hydrogen_fraction,
         "method": method_used,
@@ -206,15 +192,13 @@ def grid_particles(
     )
 
 
-def _grid_numbers(n_cells, redshift, hubble_h, hydrogen_fraction):
-    """The grid's size, the redshift, h (or None) and X_H, checked."""
-    if isinstance(n_cells, bool) or not isinstance(n_cells, numbers.Integral) or n_cells < 1:
-        raise InputError(f"{option_label('n_cells')}: expected a whole number of cells >= 1, got {n_cells!r}")
-    redshift = _number(redshift, "redshift", "the snapshot redshift, a number >= 0", lambda z: z >= 0)
-    if hubble_h is not None:
-        hubble_h = _number(hubble_h, "hubble_h", "H0 / (100 km/s/Mpc), a positive number", lambda h: h > 0)
-    hydrogen_fraction = _number(hydrogen_fraction, "hydrogen_fraction", "X_H in (0, 1]", lambda x: 0 < x <= 1)
-    return int(n_cells), redshift, hubble_h, hydrogen_fraction
+def _grid_numbers(n_cells, hydrogen_fraction):
+    """The grid's size and X_H, checked (the redshift and h: particleheader.py)."""
+    # Every box loader needs 2 cells a side: a grid of one would be written and then refused.
+    if isinstance(n_cells, bool) or not isinstance(n_cells, numbers.Integral) or n_cells < 2:
+        raise InputError(f"{option_label('n_cells')}: expected a whole number of cells >= 2, got {n_cells!r}")
+    hydrogen_fraction = checked_number(hydrogen_fraction, "hydrogen_fraction", "X_H in (0, 1]", lambda x: 0 < x <= 1)
+    return int(n_cells), hydrogen_fraction
 
 
 def _deposit_method(method, smoothing_lengths, kernel_support):
@@ -225,7 +209,7 @@ def _deposit_method(method, smoothing_lengths, kernel_support):
         raise InputError(f"{option_label('method')}: 'sph' needs {option_label('smoothing_lengths')}")
     use_sph = method == "sph" or (method == "auto" and smoothing_lengths is not None)
     if use_sph:
-        kernel_support = _number(
+        kernel_support = checked_number(
             kernel_support, "kernel_support",
             "with smoothing lengths, where the kernel ends in units of the stored length: 2 for Monaghan's h "
             "(support 2h), 1 if the file stores the support radius", lambda k: k > 0,
@@ -234,19 +218,24 @@ def _deposit_method(method, smoothing_lengths, kernel_support):
 
 
 def _check_mass_and_electron_options(masses, densities, volumes, electron_abundance, hydrogen_ionised_fraction):
-    """One way to the gas mass and one to the electrons per hydrogen, as the module docstring lists."""
+    """One way to the gas mass and one to the electrons per hydrogen, as the module docstring lists: two
+    ways is an InputError; none, a line of what is missing (returned, to join the rest in one message)."""
+    missing = []
     if masses is not None and (densities is not None or volumes is not None):
         raise InputError(
             f"mass: give {option_label('masses')}, or {option_label('densities')} with {option_label('volumes')}, "
             "not both"
         )
     if masses is None and (densities is None or volumes is None):
-        raise InputError(
-            f"mass: give {option_label('masses')}, or both {option_label('densities')} and {option_label('volumes')} "
-            "(mass = density * volume)"
-        )
-    _exactly_one(("electron_abundance", electron_abundance),
-                 ("hydrogen_ionised_fraction", hydrogen_ionised_fraction), "electrons")
+        missing.append(f"the gas mass: give {option_label('masses')}, or both {option_label('densities')} and "
+                       f"{option_label('volumes')} (mass = density * volume)")
+    if electron_abundance is None and hydrogen_ionised_fraction is None:
+        missing.append(f"the electrons: give {option_label('electron_abundance')} or "
+                       f"{option_label('hydrogen_ionised_fraction')}")
+    else:
+        _exactly_one(("electron_abundance", electron_abundance),
+                     ("hydrogen_ionised_fraction", hydrogen_ionised_fraction), "electrons")
+    return missing
 
 
 def _helium_factor(hydrogen_ionised_fraction, helium_electrons, hydrogen_fraction):

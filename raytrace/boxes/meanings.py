@@ -21,8 +21,12 @@ from functools import lru_cache
 import numpy as np
 
 from raytrace.boxes.values import _number
-from raytrace.core.errors import InputError
+from raytrace.core.errors import InputError, RaytraceWarning
 from raytrace.physics.constants import PROTON_MASS_G
+
+class PlausibilityWarning(RaytraceWarning):
+    """A box's mean density, ionisation or size is far from what a cosmological box has: a unit slip?"""
+
 
 #: What a box's values can mean (the ``quantity`` attribute or argument).
 QUANTITIES = {
@@ -167,7 +171,31 @@ def _slip(ratio, redshift, hubble_h):
     return best[1]
 
 
-def plausibility_warnings(label, redshift, mean_physical_cm3, plasma, box_ionisation=None, hubble_h=None):
+#: A box's stored values average to 1 within this when they are an overdensity (a box normalised to its
+#: own mean gives exactly 1; a cosmic-mean normalisation a few per cent off).
+_OVERDENSITY_MEAN = 0.1
+
+
+def _quantity_slip(quantity, stored_mean, redshift, plasma):
+    """The slip between a density and an overdensity that the stored values' mean shows, or None.
+
+    An overdensity averages 1; a density in cm^-3 averages about nbar_e (comoving or physical): either
+    declared as the other is off by a factor 1 / nbar_e ~ 1e6 to 1e7, which no unit explains.
+    """
+    if quantity in ("n_e_physical", "n_e_comoving", "gas_density") and abs(stored_mean - 1.0) < _OVERDENSITY_MEAN:
+        return (f"an overdensity declared as a density: the stored values average {stored_mean:.4g}, as an "
+                f"overdensity's do; give --quantity overdensity (or gas_overdensity), not {quantity!r}")
+    if quantity in ("overdensity", "gas_overdensity"):
+        comoving = float(plasma.mean_comoving_electron_density_cm3(redshift))
+        for frame, mean in (("comoving", comoving), ("physical", comoving * (1.0 + redshift) ** 3)):
+            if abs(math.log(stored_mean / mean)) < math.log(_SLIP_TOLERANCE):
+                return (f"a density declared as an overdensity: the stored values average {stored_mean:.4g}, "
+                        f"near the {frame} nbar_e = {mean:.4g} cm^-3; give --quantity n_e_{frame}, not {quantity!r}")
+    return None
+
+
+def plausibility_warnings(label, redshift, mean_physical_cm3, plasma, box_ionisation=None, hubble_h=None,
+                          stored=None):
     """One-line warnings about a box's mean density and ionisation (empty when both are plausible).
 
     ``mean_physical_cm3``: the box's mean n_e at its redshift. The expected mean is
@@ -175,7 +203,8 @@ def plausibility_warnings(label, redshift, mean_physical_cm3, plasma, box_ionisa
     (``box_ionisation``, mean electrons per hydrogen nucleus), that times the cosmic
     mean hydrogen density n_H(z). A factor over :data:`DENSITY_WARNING_FACTOR` is
     warned about with the unit slip it resembles; a box ionisation over
-    :data:`IONISATION_WARNING_FACTOR` from the history's x_e(z) is warned about too.
+    :data:`IONISATION_WARNING_FACTOR` from the history's x_e(z) is warned about too. ``stored``
+    (quantity, mean of the stored values) names the slip between a density and an overdensity.
     """
     plasma = _plasma_or_default(plasma)
     messages = []
@@ -194,7 +223,8 @@ def plausibility_warnings(label, redshift, mean_physical_cm3, plasma, box_ionisa
         expected, what = history * hydrogen, f"the cosmic mean nbar_e(z) of {plasma.ionisation.description}"
     ratio = mean_physical_cm3 / expected
     if not (1.0 / DENSITY_WARNING_FACTOR <= ratio <= DENSITY_WARNING_FACTOR):
-        slip = _slip(ratio, redshift, hubble_h)
+        slip = ((_quantity_slip(stored[0], stored[1], redshift, plasma) if stored and stored[1] > 0 else None)
+                or _slip(ratio, redshift, hubble_h))
         looks = f"it looks like {slip}" if slip else "no simple unit slip explains it; check the quantity and its unit"
         messages.append(
             f"{label}: mean n_e = {mean_physical_cm3:.4g} cm^-3 at z = {redshift:g} is {ratio:.4g} times "
@@ -203,7 +233,20 @@ def plausibility_warnings(label, redshift, mean_physical_cm3, plasma, box_ionisa
     return messages
 
 
+#: A box side beyond this (comoving Mpc) is larger than the distance to last scattering (about 14 Gpc
+#: comoving, Planck 2018): no simulation box is that large, so its unit is wrong.
+LARGEST_BOX_CMPC = 20000.0
+
+
+def warn_box_size(size_cMpc, where, given, source):
+    """Warn when a box side is beyond :data:`LARGEST_BOX_CMPC`, naming what was given and where from."""
+    if size_cMpc > LARGEST_BOX_CMPC:
+        warnings.warn(PlausibilityWarning(
+            f"{where}: a box of {size_cMpc:.4g} cMpc (from '{given}', {source}) is larger than the distance to last "
+            "scattering (about 14000 cMpc); its unit is probably wrong"), stacklevel=4)
+
+
 def warn_plausibility(*arguments, **keywords):
     """Issue :func:`plausibility_warnings` as Python warnings (the CLI prints each on one line)."""
     for message in plausibility_warnings(*arguments, **keywords):
-        warnings.warn(message, stacklevel=3)
+        warnings.warn(PlausibilityWarning(message), stacklevel=3)

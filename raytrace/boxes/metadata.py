@@ -23,7 +23,7 @@ ALIASES = {
 UNIT_NAMES = ("box_size_unit", "box_size_units", "BoxSizeUnit", "BoxSize_unit", "unit", "units")
 #: Root-level groups searched after the dataset's own ancestors.
 HEADER_GROUPS = ("Header", "header", "Parameters", "parameters", "Cosmology", "cosmology",
-                 "user_params", "cosmo_params", "simulation_parameters")
+                 "user_params", "cosmo_params", "simulation_parameters", "Units", "InternalCodeUnits")
 # Too generic to mean h on a dataset or an arbitrary group; accepted in header groups only.
 _HEADER_ONLY = {"h"}
 
@@ -71,32 +71,51 @@ class Metadata:
 
     def find(self, key):
         """``(value, source)`` of ``key`` (our name; aliases for ALIASES keys), or ``(None, None)``."""
+        found = self.find_all(key)
+        return found[0] if found else (None, None)
+
+    def find_all(self, key):
+        """Every ``(value, source)`` of ``key`` along the search path, the one :meth:`find` takes first."""
         names = ALIASES.get(key, (key,))
-        for owner in self._own:
-            for name in names:
-                if name in owner.attrs and name not in _HEADER_ONLY:
-                    return _plain(owner.attrs[name]), f"attribute '{name}' of {_describe(owner)}"
+        found = [(_plain(owner.attrs[name]), f"attribute '{name}' of {_describe(owner)}")
+                 for owner in self._own for name in names if name in owner.attrs and name not in _HEADER_ONLY]
         if key in ALIASES:
-            for owner in self._headers:
-                for name in names:
-                    if name in owner.attrs:
-                        return _plain(owner.attrs[name]), f"attribute '{name}' of {_describe(owner)}"
+            found += [(_plain(owner.attrs[name]), f"attribute '{name}' of {_describe(owner)}")
+                      for owner in self._headers for name in names if name in owner.attrs]
+        return found
+
+    def in_header(self, source):
+        """Whether a source found here is a header group's (a simulation's Header, Parameters ...), not one
+        of the dataset's own groups, whose attributes the nearer ones override by design."""
+        return source.split(" of ", 1)[1] in {_describe(owner) for owner in self._headers}
+
+    def find_named(self, names):
+        """``(value, source)`` of the first attribute named one of ``names`` on the search path, header
+        groups included (simulation codes' parameters such as UnitLength_in_cm), or ``(None, None)``."""
+        for owner in self._own + self._headers:
+            for name in names:
+                if name in owner.attrs:
+                    return _plain(owner.attrs[name]), f"attribute '{name}' of {_describe(owner)}"
         return None, None
 
     def find_box_size(self):
-        """``(value, unit, source, unit_source)``: the side length and its unit, the unit looked for
-        beside the length first, then along the same search path."""
-        value, source = self.find("box_size")
-        if value is None:
-            return None, None, None, None
-        owner_name = source.split(" of ", 1)[1]
-        ordered = sorted(self._own + self._headers, key=lambda owner: _describe(owner) != owner_name)
-        for owner in ordered:
-            for name in UNIT_NAMES:
-                if name in owner.attrs and (name.startswith("box") or _describe(owner) == owner_name):
-                    return value, str(_plain(owner.attrs[name])).strip(), source, (
-                        f"attribute '{name}' of {_describe(owner)}")
-        return value, None, source, None
+        """``(value, unit, source, unit_source)`` of the box size :meth:`find` takes (Nones without one)."""
+        sizes = self.box_sizes()
+        return sizes[0] if sizes else (None, None, None, None)
+
+    def box_sizes(self):
+        """Every ``(value, unit, source, unit_source)`` of a box side on the search path: the unit looked
+        for beside each length first, then along the same search path (None where there is none)."""
+        out = []
+        for value, source in self.find_all("box_size"):
+            owner_name = source.split(" of ", 1)[1]
+            ordered = sorted(self._own + self._headers, key=lambda owner: _describe(owner) != owner_name)
+            unit = next(((str(_plain(owner.attrs[name])).strip(), f"attribute '{name}' of {_describe(owner)}")
+                         for owner in ordered for name in UNIT_NAMES
+                         if name in owner.attrs and (name.startswith("box") or _describe(owner) == owner_name)),
+                        (None, None))
+            out.append((value, unit[0], source, unit[1]))
+        return out
 
 
 def carries_redshift(node):

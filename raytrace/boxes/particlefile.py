@@ -33,6 +33,17 @@ def option_label(name):
     return f"{name} ({_FLAGS.get(name, '--' + name.replace('_', '-'))})"
 
 
+def checked_number(value, option, expected, accept):
+    """``value`` as a finite float that ``accept`` approves, or InputError naming ``option``."""
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = math.nan
+    if not (math.isfinite(number) and accept(number)):
+        raise InputError(f"{option_label(option)}: expected {expected}, got {value!r}")
+    return number
+
+
 def _need_h(hubble_h, what):
     if hubble_h is None:
         raise InputError(f"{what} is per h: give {option_label('hubble_h')}, the H0 / (100 km/s/Mpc) of the simulation")

@@ -14,6 +14,8 @@ from pathlib import Path
 import numpy as np
 
 from raytrace.boxes.box import Box
+from raytrace.boxes.codeunits import code_unit
+from raytrace.boxes.conflicts import warn_conflicts
 from raytrace.boxes.fractions import add_one, apply_fraction, fraction_from
 from raytrace.boxes.meanings import _GAS as _GAS_QUANTITIES
 from raytrace.boxes.meanings import (
@@ -23,6 +25,7 @@ from raytrace.boxes.meanings import (
     _check_quantity,
     _check_reference,
     _comoving_scale,
+    warn_box_size,
     warn_plausibility,
 )
 from raytrace.boxes.metadata import Metadata
@@ -40,6 +43,7 @@ from raytrace.boxes.values import (
     scan_density,
 )
 from raytrace.core.errors import InputError, require_path
+from raytrace.physics.constants import MPC_CM
 
 _FRACTION_DATASET_KEYS = ("ionised_fraction_dataset", "neutral_fraction_dataset")
 
@@ -138,6 +142,25 @@ def _find_dataset(handle, path, dataset, fractions):
     return candidates[0][1]
 
 
+def _check_written(node, where):
+    """Refuse a dataset whose storage was never all written: a writer stopped (or is still writing).
+
+    HDF5 allocates a dataset's storage as it is written (chunk by chunk, or at the first write of a
+    contiguous one, by default); unallocated parts would read as fill values, i.e. made-up cells.
+    """
+    import h5py
+
+    if node.external is not None:
+        return
+    status = node.id.get_space_status()
+    if status != h5py.h5d.SPACE_STATUS_ALLOCATED:
+        written = ("only part of the dataset was ever written (HDF5 holds some of its chunks only)"
+                   if status == h5py.h5d.SPACE_STATUS_PART_ALLOCATED else
+                   "the dataset was never written (HDF5 holds no storage for it)")
+        raise InputError(f"{where}: {written}: a half-written box, whose writer stopped or is still writing; "
+                         "expected a complete dataset")
+
+
 def _read_values(node, path, memory_map):
     """The dataset as float32: memory-mapped read-only if contiguous uncompressed float32, else read."""
     if (
@@ -161,18 +184,22 @@ def _given(key):
 
 
 def _length_from_metadata(metadata, where):
+    """``(length, source)`` of the box side the file states, or ``(None, what is missing)``: a side
+    without a unit takes the code's unit of length where the file states one (codeunits.py)."""
     value, unit, source, unit_source = metadata.find_box_size()
     if value is None:
-        raise InputError(
-            f"{where}: the box size is unknown; give {_supply('box_size')} such as '100 Mpc/h', or store "
-            "'box_size' and 'box_size_unit' attributes"
-        )
+        return None, (f"the box size: give {_supply('box_size')} such as '100 Mpc/h', or store 'box_size' and "
+                      "'box_size_unit' attributes")
     size = _number(value, f"{where}: {source}")
     if unit is None:
-        raise InputError(
-            f"{where}: {source} = {size:g} has no unit (no 'box_size_unit' attribute); give "
-            f"{_supply('box_size')} with its unit, e.g. '{size:g} cMpc/h'"
-        )
+        code = code_unit(metadata, "length", where)
+        if code is None:
+            return None, (f"the box size's unit: {source} = {size:g} has no unit (no 'box_size_unit' attribute, no "
+                          f"code unit such as UnitLength_in_cm); give {_supply('box_size')} with the unit this "
+                          "number is in")
+        text = f"{size:g} x {code.size:g} cm{'/h' if code.per_h else ''}"
+        return (_Length(size * code.size / MPC_CM, code.per_h, not code.comoving, text),
+                f"{source}, in the code's unit of length {code.describe('length')}")
     text = f"{size:g} {unit}"
     factor, per_h, physical = _parse_length_unit(unit, text, f"{where}: {unit_source}", False)
     return _Length(size * factor, per_h, physical, text), f"{source}, unit from {unit_source}"
@@ -227,7 +254,9 @@ def _stated_fraction(handle, metadata, arguments, sources, where):
 
 def _meaning(handle, metadata, where, sources, quantity, redshift, hubble_h, box_size, mean_density, fractions):
     """What the dataset holds, from the arguments, else the file's metadata; ``sources`` gets
-    where each value came from. Returns (quantity, z, h, length, comoving size, reference, fraction)."""
+    where each value came from. Everything missing is named in one InputError. Returns
+    (quantity, z, h, length, comoving size, reference, fraction)."""
+    missing = []
 
     def stated(key, given, check_value, required=None):
         if given is not None:
@@ -236,30 +265,57 @@ def _meaning(handle, metadata, where, sources, quantity, redshift, hubble_h, box
         value, source = metadata.find(key)
         if value is None:
             if required:
-                raise InputError(f"{where}: {required}; give {_supply(key)} or store a '{key}' attribute")
+                missing.append(f"{required}: give {_supply(key)} or store a '{key}' attribute")
             return None
         sources[key] = source
         return check_value(value, f"{where}: {source}")
 
     quantity = stated("quantity", quantity, _check_quantity,
-                      f"what the values mean is not stated (one of {', '.join(QUANTITIES)})")
-    z = stated("redshift", redshift, _check_redshift, "the snapshot redshift is unknown")
+                      f"what the values mean (one of {', '.join(QUANTITIES)})")
+    z = stated("redshift", redshift, _check_redshift, "the snapshot redshift")
     h = stated("hubble_h", hubble_h, _check_hubble)
     if box_size is None:
-        length, sources["box_size"] = _length_from_metadata(metadata, where)
+        length, found = _length_from_metadata(metadata, where)
+        if length is None:
+            missing.append(found)
+        else:
+            sources["box_size"] = found
     else:
         length, sources["box_size"] = _length_from_argument(box_size, "--box-size (box_size)"), _given("box_size")
-    size = _comoving_size(length, z, h, where)
-    if mean_density is not None and quantity != "overdensity":
+    if length is not None and length.per_h and h is None:
+        missing.append(f"h, as the box size {length.text!r} is per h: give {_supply('hubble_h')} or store a "
+                       "'hubble_h' attribute")
+    if mean_density is not None and quantity is not None and quantity != "overdensity":
         raise InputError(f"--mean-density (mean_density): applies to quantity 'overdensity' only; {where} "
                          f"holds {quantity!r}")
     reference = stated("mean_density", mean_density, _check_reference) if quantity == "overdensity" else None
     if quantity == "overdensity" and reference is None:
         reference, sources["mean_density"] = "history", "default"
-    # Fraction attributes are read only where the quantity takes one; arguments are always checked.
+    # Fraction attributes are read only where the quantity takes one (and checked where it does not).
     needs_fraction = quantity in _GAS_QUANTITIES or reference == "box"
+    if not needs_fraction:
+        _check_unused_fractions(metadata, where)
     fraction = _stated_fraction(handle, metadata if needs_fraction else _NO_METADATA, fractions, sources, where)
+    if needs_fraction and fraction is None:
+        missing.append(f"the ionised fraction that quantity {quantity!r} needs: give --ionised-fraction or "
+                       "--neutral-fraction (a number or a dataset path), or store an 'ionised_fraction' attribute")
+    if missing:
+        listed = missing[0] if len(missing) == 1 else "; ".join(f"({i}) {m}" for i, m in enumerate(missing, 1))
+        raise InputError(f"{where}: {len(missing)} piece{'s' if len(missing) > 1 else ''} of metadata missing: "
+                         f"{listed}")
+    size = _comoving_size(length, z, h, where)
+    warn_conflicts(metadata, where, sources, z, h, size)
+    warn_box_size(size, where, length.text, sources["box_size"])
     return quantity, z, h, length, size, reference, fraction
+
+
+def _check_unused_fractions(metadata, where):
+    """A fraction attribute the quantity does not use must still be one: a bad value is a damaged file."""
+    for key, neutral in (("ionised_fraction", False), ("neutral_fraction", True)):
+        value, source = metadata.find(key)
+        if value is not None:
+            _check_fraction_constant(value, f"{where}: {source} (unused by this quantity, but not a fraction)",
+                                     neutral=neutral)
 
 
 def load_box(
@@ -278,6 +334,7 @@ def load_box(
     comoving_scale=None,
     memory_map=True,
     check=True,
+    **unknown,
 ):
     """Read one electron-density box from an HDF5 file.
 
@@ -298,6 +355,7 @@ def load_box(
     """
     from raytrace.core.provenance import file_checksum
 
+    _refuse_unknown(unknown)
     path = require_path(path, "path (--boxes)")
     sources = {}
     with _open(path) as handle:
@@ -305,6 +363,7 @@ def load_box(
         where = f"{path}, dataset {node.name}"
         _check_grid(node.shape, where)
         _check_dtype(node.dtype, where)
+        _check_written(node, where)
         metadata = Metadata(handle, node)
         quantity, z, h, length, size, reference, fraction = _meaning(
             handle, metadata, where, sources, quantity, redshift, hubble_h, box_size, mean_density,
@@ -319,7 +378,7 @@ def load_box(
     stats = scan_density(values, where)
     if check and comoving_scale is None:
         warn_plausibility(f"{path}:{dataset_name}", z, scale * stats["mean"] * (1.0 + z) ** 3, plasma,
-                          box_ionisation, h)
+                          box_ionisation, h, stored=(quantity, stats["mean"]))
     info = {
         "stored_dtype": stored_dtype,
         "box_size_given": length.text,
@@ -335,6 +394,23 @@ def load_box(
     return Box(
         values, scale, z, size, quantity, path.resolve(), dataset_name, file_checksum(path), _load=reopen, _info=info
     )
+
+
+#: load_box's keywords, for the message naming one that is not.
+_KEYWORDS = ("dataset", "quantity", "box_size", "redshift", "hubble_h", "ionised_fraction", "plasma", "neutral_fraction",
+             "helium_electrons", "mean_density", "comoving_scale", "memory_map", "check")
+
+
+def _refuse_unknown(unknown):
+    """An InputError naming keywords load_box does not take, with the nearest it does."""
+    import difflib
+
+    if unknown:
+        named = []
+        for name in sorted(unknown):
+            close = difflib.get_close_matches(name, _KEYWORDS, n=1)
+            named.append(f"{name!r}" + (f" (did you mean {close[0]!r}?)" if close else ""))
+        raise InputError(f"load_box: unknown option {', '.join(named)}; it takes {', '.join(_KEYWORDS)}")
 
 
 def _box_values(node, path, where, quantity, fraction, memory_map):

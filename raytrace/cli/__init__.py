@@ -17,7 +17,7 @@ from raytrace.core.errors import InputError
 
 # Subcommand modules, in the order of the data flow.
 _SUBCOMMANDS = ("background", "inspect", "grid", "onepoint_mean", "sightlines", "sky", "spread_check",
-                "resolution_check", "limits", "report")
+                "resolution_check", "limits", "report", "dark_radiation")
 _NEGATIVE_NUMBER = re.compile(r"^-(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?$")
 
 

@@ -23,7 +23,7 @@ def add_mass_arguments(parser, title="masses: a list, or a log-spaced grid"):
     """The mass grid in the run files' vocabulary: --mass-values, or --mass-min/--mass-max/--mass-count
     (the schema's defaults fill in, see :func:`masses_from_args`)."""
     group = parser.add_argument_group(title)
-    add_option(group, "masses.list_eV", type=float)
+    add_option(group, "masses.values_eV", type=float)
     for key in ("masses.min_eV", "masses.max_eV", "masses.count"):
         add_option(group, key, shown=f"{VOCABULARY[key].default:g}")
 
@@ -111,7 +111,7 @@ def masses_from_args(args, required=True):
 def run(args):
     from raytrace.core.errors import InputError
     from raytrace.physics.background import MeanPlasma
-    from raytrace.physics.conversion import probability_from_kernel
+    from raytrace.physics.conversion import needs_saturation, probability_from_kernel
     from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     masses = masses_from_args(args)
@@ -128,7 +128,8 @@ def run(args):
         )
     found = plasma.crossings(masses, args.z_min, args.z_max)
     kernel = np.bincount(found.mass_index, weights=found.kernel_eV, minlength=masses.size)
-    probability = probability_from_kernel(kernel, args.epsilon, omega0)
+    probability = probability_from_kernel(kernel, args.epsilon, omega0,
+                                          saturate=needs_saturation(kernel, args.epsilon, omega0))
     print(f"# homogeneous universe, {plasma.ionisation.description}")
     print(f"# z from {args.z_min:g} to {args.z_max:g}; epsilon = {args.epsilon:g}; omega_0 = {omega0:.4e} eV")
     print(f"# {'mass_eV':>12} {'K_eV':>12} {'P':>12}  resonance redshifts")

@@ -131,23 +131,30 @@ def _warn_empty(density, written, cells):
 
 
 def run(args):
+    from raytrace.core.errors import InputError
+    from raytrace.core.outputguard import output_lock, refuse_outputs_over_inputs
+    from raytrace.core.provenance import check_writable
+
+    refuse_outputs_over_inputs([(args.output, "--output")], [(args.particles, "PARTICLES.h5"), (args.yt, "--yt")])
+    check_writable(args.output, args.overwrite)  # before the work, not after it
+    if args.cells < 2:  # every loader needs 2 cells a side: a grid of one would be written and never read
+        raise InputError(f"--cells: expected a whole number >= 2 (cells along each side), got {args.cells}")
+    if (args.yt is None) == (args.particles is None):
+        raise InputError("grid: give a particle file PARTICLES.h5 or --yt SNAPSHOT, one of the two")
+    with output_lock([args.output]):  # one run per output at a time
+        return _run_yt(args) if args.yt is not None else _run_particles(args)
+
+
+def _run_particles(args):
     import sys
     import time
 
     from raytrace.boxes.gridding import grid_particles
     from raytrace.core.errors import InputError
-    from raytrace.core.provenance import check_writable
 
-    check_writable(args.output, args.overwrite)  # before the work, not after it
-    if (args.yt is None) == (args.particles is None):
-        raise InputError("grid: give a particle file PARTICLES.h5 or --yt SNAPSHOT, one of the two")
-    if args.yt is not None:
-        return _run_yt(args)
     for name in ("yt_field", "yt_particle_type"):
         if getattr(args, name) is not None:
             raise InputError(f"--{name.replace('_', '-')}: applies with --yt SNAPSHOT only")
-    if args.positions is None:
-        raise InputError("--positions: required for a particle file: the dataset of positions, shape (N, 3)")
     large = args.cells >= LARGE_CELLS
     _check_memory(args.cells)
     start = time.perf_counter()

@@ -52,6 +52,10 @@ def run(args):
     if args.z_max is not None and not (np.isfinite(args.z_max) and 0 < args.z_max <= Z_TABLE_MAX):
         raise InputError(f"--z-max: expected a redshift in (0, {Z_TABLE_MAX:g}], got {args.z_max!r}")
     if args.plot:
+        from raytrace.core.outputguard import refuse_outputs_over_inputs
+
+        refuse_outputs_over_inputs([(args.plot, "--plot")], [(args.files, "FILE"),
+                                                              (args.ionisation_table, "--ionisation-table")])
         check_writable(args.plot, args.overwrite)
         _image_format(args.plot)
     values = settings(args, BOX_SETTINGS)
@@ -87,7 +91,10 @@ def run(args):
         if len(boxes) > 1 and series is not None:
             print(_series_text(series, coverage))
     if args.plot:
-        _plot(boxes, statistics, args.plot, args.overwrite)
+        from raytrace.core.outputguard import output_lock
+
+        with output_lock([args.plot]):  # one run per output at a time
+            _plot(boxes, statistics, args.plot, args.overwrite)
         print(f"# figure written to {args.plot}")
     if series_error is not None:
         raise series_error

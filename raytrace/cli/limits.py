@@ -148,6 +148,23 @@ def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, backgroun
 
 
 def run(args):
+    from raytrace.core.outputguard import output_lock
+
+    check_confidence(args)
+    refuse_unused_sky_options(args)
+    _check_outputs(args)
+    with output_lock([*args.output, args.plot]):  # one run per output at a time
+        return _limits(args)
+
+
+def input_files(args):
+    """The input files of ``limits`` and ``report``: (path, flag) pairs of those given."""
+    flags = {"result": "--result", "sky": "--sky", "spectrum": "--spectrum", "ionisation_table": "--ionisation-table",
+             "cl_limits": "--cl-limits"}
+    return [(getattr(args, name, None), flag) for name, flag in flags.items()]
+
+
+def _limits(args):
     from raytrace.core.errors import InputError
     from raytrace.limits.limitset import same_mass_grid
     from raytrace.limits.spectral import result_kernels
@@ -156,9 +173,6 @@ def run(args):
     from raytrace.sky.maps import SkyResult
     from raytrace.statistics.results import load_mean_result
 
-    check_confidence(args)
-    refuse_unused_sky_options(args)
-    _check_outputs(args)
     masses = masses_from_args(args, required=False)
     if args.result is not None and masses is not None:
         raise InputError("--result: its masses are the grid; leave out --mass-values and --mass-min/--mass-max/--mass-count")
@@ -192,12 +206,15 @@ def run(args):
 
 
 def _check_outputs(args):
-    """Refuse, before any work is done, outputs that exist, are folders, or cannot be made."""
+    """Refuse, before any work is done, outputs that are inputs, exist, are folders, or cannot be made."""
+    from raytrace.core.outputguard import refuse_outputs_over_inputs
     from raytrace.core.provenance import check_outputs
 
     args.output = [path for path in args.output if path]  # '' switches the table off
     flags = ["--output"] * len(args.output) + (["--plot"] if args.plot else [])
-    check_outputs([*args.output, *([args.plot] if args.plot else [])], args.overwrite, flags)
+    paths = [*args.output, *([args.plot] if args.plot else [])]
+    refuse_outputs_over_inputs(list(zip(paths, flags)), input_files(args))
+    check_outputs(paths, args.overwrite, flags)
 
 
 # Rows printed without --all: a handful of masses spread over the grid, plus the tightest limit.

@@ -12,14 +12,23 @@ def add_arguments(parser):
 
 
 def run(args):
-    from raytrace.cli.sightlines import load_boxes, masses, output_paths
-    from raytrace.core.provenance import output_set
-    from raytrace.statistics.onepoint import pdf_mean
+    from raytrace.cli.sightlines import prepare_outputs
+    from raytrace.core.outputguard import output_lock
 
     values = settings(args, ONEPOINT_OPTIONS)
+    prepare_outputs(args, values, ("output.path", "output.plot"))  # before the work
+    with output_lock([values["output.path"], values["output.plot"]]):  # one run per output at a time
+        return _run(values)
+
+
+def _run(values):
+    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.core.provenance import output_set
+    from raytrace.core.textcells import NO_RESONANCE
+    from raytrace.statistics.onepoint import pdf_mean
+
     overwrite = values["output.overwrite"]
     output, plot = values["output.path"], values["output.plot"]
-    output_paths(values, ("output.path", "output.plot"))  # before the work
     series = load_boxes(values)
     result = pdf_mean(series, masses(values), values["rays.z_max"],
                       include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
@@ -31,7 +40,10 @@ def run(args):
           f"per box in {run['groups']} groups, seed {run['seed']}")
     print(f"# {'mass_eV':>11} {'mean_K_eV':>11} {'error_eV':>10} {'boxes':>6}")
     for k in range(result.mass_eV.size):
-        share = result.kernel_boxes[k] / result.kernel[k] if result.kernel[k] > 0 else float("nan")
+        if not result.kernel[k] > 0:
+            print(f"  {result.mass_eV[k]:11.4e} {NO_RESONANCE} at any point of the boxes nor in the background)")
+            continue
+        share = result.kernel_boxes[k] / result.kernel[k]
         print(f"  {result.mass_eV[k]:11.4e} {result.kernel[k]:11.4e} {result.error[k]:10.3e} {share:6.2f}")
     with output_set():  # the result and the plot, or neither
         if output:

@@ -11,6 +11,7 @@ from raytrace.cli.limits import (
     add_spectrum_arguments,
     check_confidence,
     flags_named,
+    input_files,
     photon_energy_from_args,
     refuse_unused_sky_options,
 )
@@ -38,6 +39,7 @@ def add_arguments(parser):
 
 
 def run(args):
+    from raytrace.core.outputguard import output_lock, refuse_outputs_over_inputs
     from raytrace.core.provenance import check_writable
     from raytrace.limits.spectrum import read_spectrum
     from raytrace.physics.background import MeanPlasma
@@ -48,10 +50,11 @@ def run(args):
     refuse_unused_sky_options(args, ("--isotropy-threshold", "--cl-limits", "--mass") if args.epsilon is not None else
                               ("--frequency", "--isotropy-threshold", "--cl-limits", "--mass"))
     kinds = tuple(kind.strip() for kind in args.formats.split(",") if kind.strip())
-    for kind in kinds:  # refuse before any work
-        if kind in KINDS:
-            check_writable(f"{args.output}.{kind}", args.overwrite)
-    with flags_named():
+    paths = [f"{args.output}.{kind}" for kind in kinds if kind in KINDS]
+    refuse_outputs_over_inputs([(path, "--output") for path in paths], input_files(args))  # before any work
+    for path in paths:
+        check_writable(path, args.overwrite)
+    with flags_named(), output_lock(paths):  # one run per output at a time
         paths = make_report(
             args.result, args.output, sky=args.sky, epsilon=args.epsilon, omega0_eV=photon_energy_from_args(args),
             spectrum=read_spectrum(args.spectrum), confidence=args.confidence, overwrite=args.overwrite,

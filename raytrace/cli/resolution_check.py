@@ -12,19 +12,27 @@ def add_arguments(parser):
 
 
 def run(args):
-    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.cli.sightlines import run_inputs
     from raytrace.core.errors import InputError
-    from raytrace.core.provenance import check_writable
-    from raytrace.statistics.resolution import resolution_convergence, write_convergence_page
+    from raytrace.core.outputguard import output_lock, refuse_outputs_over_inputs
+    from raytrace.core.provenance import check_outputs
 
     values = settings(args, RESOLUTION_OPTIONS)
     stem = require(values, "output.report", RESOLUTION_OPTIONS)
-    for kind in ("png", "pdf", "txt"):
-        check_writable(f"{stem}.{kind}", values["output.overwrite"])
+    paths = [f"{stem}.{kind}" for kind in ("png", "pdf", "txt")]
+    refuse_outputs_over_inputs([(path, "--report") for path in paths], run_inputs(args, values))
+    check_outputs(paths, values["output.overwrite"], ["--report"] * len(paths))
     coarsest = values["resolution.coarsest"]
     if coarsest & (coarsest - 1):
         raise InputError(f"--coarsest (TOML resolution.coarsest): expected a power of 2 (2, 4, 8 ...), got {coarsest}")
-    factors = tuple(2**k for k in range(coarsest.bit_length()))
+    with output_lock(paths):  # one run per output at a time
+        return _run(values, stem, tuple(2**k for k in range(coarsest.bit_length())))
+
+
+def _run(values, stem, factors):
+    from raytrace.cli.sightlines import load_boxes, masses
+    from raytrace.statistics.resolution import resolution_convergence, write_convergence_page
+
     series = load_boxes(values)
     convergence = resolution_convergence(
         series, masses(values), values["rays.z_max"], factors=factors, order=values["resolution.order"],

@@ -13,7 +13,6 @@ file or without, spells a concept with the flag, metavar, default and help of it
 """
 
 import argparse
-import math
 import os
 import sys
 from dataclasses import dataclass, replace
@@ -24,6 +23,7 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
+from raytrace.cli.runvalues import NumberOrText, check_range, convert
 from raytrace.core.errors import InputError
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 
@@ -35,10 +35,6 @@ REMOVED_OPTIONS = {"step": "the engine now solves the interpolated field's cross
 
 #: The run-file keys (and their flags) of those options: refused with the same reason, in one line.
 REMOVED_KEYS = {"rays.step_cells": ("--step-cells", REMOVED_OPTIONS["step"])}
-
-
-class NumberOrText:
-    """Option kind: a number, or text (a dataset path) when it does not read as one."""
 
 
 @dataclass(frozen=True)
@@ -58,6 +54,7 @@ class Option:
     metavar: str = None      # default: by kind (N, X, TEXT, FILE)
     aliases: tuple = ()      # deprecated flags, still accepted for one release
     old_keys: tuple = ()     # deprecated TOML keys, still accepted for one release
+    numbers: bool = False    # kind list: a list of numbers (a TOML list, or flag values, comma-separated too)
 
     @property
     def flag(self):
@@ -94,13 +91,18 @@ BOX_OPTIONS = (
     Option("boxes.blend", bool, False, "blend the two snapshots bracketing each redshift (linear in n_e, weights linear in z)"),
 )
 
-MASS_OPTIONS = (
+#: A list of masses instead of the log-spaced grid; the old flag --mass still works where it means no other
+#: option (not in sky and report, whose --mass is the shown mass).
+MASS_VALUES = Option("masses.values_eV", list, None, "dark-photon masses in eV, increasing (instead of "
+                     "--mass-min/--mass-max/--mass-count)", flag_name="mass-values", metavar="EV", numbers=True)
+MASS_GRID = (
     Option("masses.min_eV", float, 1e-15, "lowest dark-photon mass in eV", above=0.0, flag_name="mass-min",
            metavar="EV"),
     Option("masses.max_eV", float, 1e-12, "highest dark-photon mass in eV", above=0.0, flag_name="mass-max",
            metavar="EV"),
     Option("masses.count", int, 64, "number of log-spaced masses", at_least=1, flag_name="mass-count"),
 )
+MASS_OPTIONS = MASS_GRID + (replace(MASS_VALUES, aliases=("--mass",)),)
 
 TRACE_OPTIONS = (
     Option("rays.z_max", float, 6.0, "redshift the rays reach (1100 reaches last scattering)", above=0.0,
@@ -133,9 +135,18 @@ OUTPUT_OPTIONS = (
     Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
 )
 
+#: When and where conversion happens (raytrace.redshiftbins): the kernel per redshift bin and density class.
+BIN_OPTIONS = (
+    Option("rays.redshift_bins", float, 16.0, "redshift bins of the kernel: a count (equal steps in ln(1+z) over the "
+           "boxes' redshifts, the background beyond in a bin of its own; 0: none) or edges in z", at_least=0.0,
+           listable=True, metavar="N|Z"),
+    Option("rays.density_classes", float, None, "edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density "
+           "classes (default: 1,100: voids, sheets and filaments, halos)", above=0.0, listable=True, metavar="D"),
+    Option("rays.keep_ray_bins", bool, False, "keep every ray's redshift bins in the result (rays x bins x masses)"),
+)
 SIGHTLINE_OPTIONS = (BOX_OPTIONS + MASS_OPTIONS
                      + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),)
-                     + TRACE_OPTIONS + OUTPUT_OPTIONS)
+                     + TRACE_OPTIONS + BIN_OPTIONS + OUTPUT_OPTIONS)
 
 _SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.photon_energy_eV", "rays.seed", "rays.jobs",
                    "rays.scheduler", "rays.workers")
@@ -150,7 +161,7 @@ CL_LIMITS = Option("anisotropy.cl_limits", str, None, "two-column text table of 
                    "the C_l test instead of the rms", path=True)
 
 SKY_OPTIONS = (
-    BOX_OPTIONS + MASS_OPTIONS
+    BOX_OPTIONS + MASS_GRID + (MASS_VALUES,)
     + tuple(option for option in TRACE_OPTIONS if option.key in _SKY_TRACE_KEYS)
     + (
         replace(TRACE_OPTIONS[6], default=1024, help="pixels per batch, the checkpoint's granularity "
@@ -159,6 +170,8 @@ SKY_OPTIONS = (
         Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
+        Option("sky.shells", float, None, "redshift shells with a map each: edges in z (or a count, as "
+               "--redshift-bins)", at_least=0.0, listable=True, metavar="Z"),
         Option("sky.map_precision", str, "float64", "stored precision of the maps per mass: float32 halves the result "
                "and rounds to 6e-8 of a value, far below a pixel's sampling noise", choices=("float64", "float32")),
         Option("sky.estimate", bool, False, "trace nothing: print the cells to trace, the result's size on disk, the "
@@ -179,8 +192,7 @@ SKY_OPTIONS = (
 #: Options of subcommands without a run file, spelled as in the schema above.
 VOCABULARY = {option.key: option for option in (
     *SIGHTLINE_OPTIONS, *SKY_OPTIONS,
-    Option("masses.list_eV", list, None, "dark-photon masses in eV (instead of --mass-min/--mass-max/--mass-count)",
-           flag_name="mass-values", metavar="EV", aliases=("--mass",)),
+    MASS_OPTIONS[-1],
     Option("inputs.result", str, None, "sightline result (raytrace sightlines --output)", flag_name="result",
            metavar="RESULT.h5", path=True),
     Option("inputs.sky", str, None, "sky result (raytrace sky --output): adds the limit from the isotropy of its "
@@ -290,7 +302,8 @@ def add_option_flags(parser, options):
         else:
             group.add_argument(option.flag, type=str, **kwargs)
         for alias in option.aliases:
-            add_deprecated(group, alias, option.flag, dest=option.dest, type=str)
+            add_deprecated(group, alias, option.flag, dest=option.dest, type=str,
+                           **({"nargs": "+"} if option.kind is list else {}))
     for key, (flag, _) in REMOVED_KEYS.items():
         parser.add_argument(flag, dest="removed__" + key.replace(".", "__"), default=None, help=argparse.SUPPRESS)
 
@@ -301,16 +314,34 @@ def settings(args, options):
         if getattr(args, "removed__" + key.replace(".", "__"), None) is not None:
             raise InputError(f"{flag}: no longer an option: {reason}")
     values = {option.key: option.default for option in options}
-    if getattr(args, "run_file", None):
-        values.update(read_run_file(args.run_file, options))
+    from_file = read_run_file(args.run_file, options) if getattr(args, "run_file", None) else {}
     by_key = {option.key: option for option in options}
-    for option in options:
-        given = getattr(args, option.dest, None)
-        if given is not None:
-            values[option.key] = _convert(option, given, f"flag {option.flag}", from_flag=True)
+    from_flags = {option.key: convert(option, getattr(args, option.dest), f"flag {option.flag}", from_flag=True)
+                  for option in options if getattr(args, option.dest, None) is not None}
+    values.update(_one_mass_grid(from_file, from_flags))
+    values.update(from_flags)
     for key, value in values.items():
-        _check_range(by_key[key], value)
+        check_range(by_key[key], value)
     return values
+
+
+_GRID_KEYS = tuple(option.key for option in MASS_GRID)
+
+
+def _one_mass_grid(from_file, from_flags):
+    """The run file's settings, less the mass grid that flags replace: a list of masses (values_eV) or
+    min_eV/max_eV/count, never both from one place; a flag's grid replaces the run file's other one."""
+    given = {"file": from_file, "flags": from_flags}
+    for where, found in given.items():
+        if MASS_VALUES.key in found and any(key in found for key in _GRID_KEYS):
+            place = "flags" if where == "flags" else "keys of the run file"
+            raise InputError(f"--mass-values (TOML masses.values_eV): give either the masses or "
+                             f"--mass-min/--mass-max/--mass-count (min_eV, max_eV, count), not both ({place})")
+    if MASS_VALUES.key in from_flags:
+        return {key: value for key, value in from_file.items() if key not in _GRID_KEYS}
+    if any(key in from_flags for key in _GRID_KEYS):
+        return {key: value for key, value in from_file.items() if key != MASS_VALUES.key}
+    return from_file
 
 
 def read_run_file(path, options):
@@ -327,8 +358,11 @@ def read_run_file(path, options):
         raise InputError(f"{path}: cannot read the run file ({error})") from None
     known = {option.key: option for option in options}
     old = {old_key: option for option in options for old_key in option.old_keys}
-    sections = sorted({key.split(".")[0] for key in (*known, *old)})
-    found = {}
+    # One run file drives every subcommand: a key another subcommand takes is noted here, not refused.
+    elsewhere = {key for schema in _RUN_FILE_SCHEMAS() for option in schema
+                 for key in (option.key, *option.old_keys)} - set(known) - set(old)
+    sections = sorted({key.split(".")[0] for key in (*known, *old, *elsewhere)})
+    found, unused = {}, []
     for section, table in document.items():
         if section not in sections:
             raise InputError(f"{path}: unknown section [{section}]; known sections: {', '.join(sections)}")
@@ -342,10 +376,16 @@ def read_run_file(path, options):
                 print(f"raytrace: note: {path}: key {key} is deprecated and will be removed in the next release; "
                       f"use {old[key].key}", file=sys.stderr)
                 key = old[key].key
+            if key in elsewhere:
+                unused.append(key)
+                continue
             if key not in known:
                 names = ", ".join(k.split(".", 1)[1] for k in known if k.startswith(section + "."))
                 raise InputError(f"{path}: unknown key '{name}' in [{section}]; known keys: {names}")
-            found[key] = _convert(known[key], value, f"{path}: key {key}")
+            found[key] = convert(known[key], value, f"{path}: key {key}")
+    if unused:
+        print(f"raytrace: note: {path}: {', '.join(unused)} not used by this subcommand (another one's); ignored",
+              file=sys.stderr)
     # Relative paths in a run file are relative to the run file, so it runs from anywhere.
     for key, value in found.items():
         if known[key].path and value is not None:
@@ -355,100 +395,9 @@ def read_run_file(path, options):
     return found
 
 
-def _convert(option, value, where, from_flag=False):
-    """The value of an option, checked: one value of its kind, or for a listable option a
-    list of them (a TOML list, or a flag's comma-separated text)."""
-    if option.listable:
-        if isinstance(value, list):
-            items = value
-        elif from_flag and isinstance(value, str) and "," in value:
-            items = [item.strip() for item in value.split(",")]
-        else:
-            return _convert_one(option, value, where, from_flag)
-        if not items:
-            raise InputError(f"{where}: expected one value or a non-empty list, got {value!r}")
-        converted = [_convert_one(option, item, where, from_flag) for item in items]
-        return converted[0] if len(converted) == 1 else converted
-    return _convert_one(option, value, where, from_flag)
-
-
-def _convert_one(option, value, where, from_flag):
-    value = _checked_kind(option, value, where, from_flag)
-    if option.choices and value not in option.choices:
-        raise InputError(f"{where}: {value!r} is not one of {', '.join(str(c) for c in option.choices)}")
-    return value
-
-
-def _checked_kind(option, value, where, from_flag):
-    """``value`` as ``option``'s kind. A flag's text is parsed; a run file's value must already be of
-    the kind (TOML has numbers: "1e-14" or 7.0 for a count is a mistake, not a number to guess)."""
-    kind = option.kind
-    if option.path and kind is str and value == "":
-        return None  # an output switched off (a run file's, from the command line)
-    try:
-        if not from_flag and kind in (int, float) and (isinstance(value, str) or (kind is int and isinstance(value, float))):
-            raise TypeError
-        if kind is bool:
-            if isinstance(value, bool):
-                return value
-            raise TypeError
-        if kind is list:
-            if isinstance(value, str):
-                return [value]
-            if isinstance(value, list) and all(isinstance(v, str) for v in value) and value:
-                return list(value)
-            raise TypeError
-        if kind is int:
-            if isinstance(value, bool) or (isinstance(value, float) and not value.is_integer()):
-                raise TypeError
-            return int(value)
-        if kind is float:
-            if isinstance(value, bool):
-                raise TypeError
-            number = float(value)
-            if not math.isfinite(number):
-                raise TypeError
-            return number
-        if kind is str:
-            if not isinstance(value, str) or not value:
-                raise TypeError
-            return value
-        if kind is NumberOrText:
-            if isinstance(value, bool) or not isinstance(value, (int, float, str)) or value == "":
-                raise TypeError
-            if isinstance(value, str):
-                try:
-                    value = float(value)
-                except ValueError:
-                    return value
-            if not math.isfinite(value):
-                raise TypeError
-            return float(value)
-    except (TypeError, ValueError):
-        pass
-    expected = {bool: "true or false", list: "a list of strings", int: "a whole number",
-                float: "a finite number", str: "a non-empty string",
-                NumberOrText: "a number or the path of a dataset"}[kind]
-    if option.listable:
-        expected += " (or a list of them, one per file)"
-    raise InputError(f"{where}: expected {expected}, got {value!r}")
-
-
-def _check_range(option, value):
-    if isinstance(value, list):
-        for item in value:
-            _check_range(option, item)
-        return
-    if value is None or option.kind not in (int, float):
-        return
-    if value in option.forbidden:
-        raise InputError(f"{option.key} ({option.flag}): {value!r} is not allowed ({option.help})")
-    if option.at_least is not None and value < option.at_least:
-        raise InputError(f"{option.key} ({option.flag}): expected a value >= {option.at_least:g}, got {value!r}")
-    if option.at_most is not None and value > option.at_most:
-        raise InputError(f"{option.key} ({option.flag}): expected a value <= {option.at_most:g}, got {value!r}")
-    if option.above is not None and value <= option.above:
-        raise InputError(f"{option.key} ({option.flag}): expected a value > {option.above:g}, got {value!r}")
+def _RUN_FILE_SCHEMAS():
+    """The option lists of every subcommand that reads a run file."""
+    return (SIGHTLINE_OPTIONS, SKY_OPTIONS, ONEPOINT_OPTIONS, RESOLUTION_OPTIONS)
 
 
 def require(values, key, options):

@@ -12,12 +12,14 @@ import numpy as np
 from raytrace.cli.runfile import SKY_OPTIONS, add_flags, settings
 from raytrace.cli.sightlines import (
     _warn_spread,
+    bins_value,
     cluster_executor,
     load_boxes,
     masses,
     note_without_outputs,
     observed_energy,
-    output_paths,
+    prepare_outputs,
+    report_outputs,
 )
 
 FITS_SUFFIXES = (".fits", ".fits.gz", ".fit", ".fts")
@@ -32,6 +34,7 @@ def add_arguments(parser):
 
 
 def run(args):
+    from raytrace.core.outputguard import output_lock
     from raytrace.core.provenance import output_set
 
     started = time.perf_counter() - process_age()
@@ -41,13 +44,15 @@ def run(args):
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
-    output_paths(values, keys)  # every output, and another run's files, checked once before any work
-    with output_set():  # the result, the maps and the plot appear together or not at all
-        shown_eV = run_outputs(values)
-    for key, what in zip(keys, ("result", "maps", "plot")):
-        if values[key]:
-            first = f" (first map: m = {shown_eV:.4g} eV)" if key == "output.fits" else ""
-            print(f"{what}: {values[key]}{first}")
+    done = prepare_outputs(args, values, keys)  # every output, and another run's files, once before any work
+    if done is None:
+        # One run per output at a time; the result, the maps and the plot appear together or not at all.
+        with output_lock([values[key] for key in keys]), output_set():
+            shown_eV = run_outputs(values)
+        if values["output.fits"]:
+            print(f"# {values['output.fits']}: HDU 1 the shown mass m = {shown_eV:.4g} eV (healpy.read_map's "
+                  "default), HDU 2 every grid mass in the grid's order")
+    report_outputs("sky", values, keys, done)
     note_without_outputs("sky", values, keys)
     return 0
 
@@ -94,7 +99,8 @@ def sky_options(values):
                 include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
                 ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
                 randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
-                map_precision=values["sky.map_precision"])
+                map_precision=values["sky.map_precision"],
+                shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"))
 
 
 def check_fits_path(path):
@@ -129,10 +135,9 @@ def run_outputs(values):
     print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
     owner = owner_name(output)
     if values["output.fits"]:
-        # The shown mass first: healpy.read_map gives it by default.
-        order = [shown] + [k for k in range(sky.mass_eV.size) if k != shown]
-        sky.write_fits(values["output.fits"], sky.mass_eV[order], epsilon=values["output.epsilon"],
-                       omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        # HDU 1 the shown mass (healpy.read_map's default), HDU 2 the grid in its own order.
+        sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"], omega0_eV=omega0,
+                       overwrite=overwrite, owner=owner, shown_eV=float(sky.mass_eV[shown]))
     if values["output.plot"]:
         sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
                            omega0_eV=omega0, overwrite=overwrite, owner=owner)
@@ -141,6 +146,7 @@ def run_outputs(values):
 
 def print_summary(sky, limit, threshold, omega0, shown):
     """The run's table at up to 16 masses; every statistic reads one map at a time."""
+    from raytrace.core.textcells import cell, no_resonance
     from raytrace.statistics.spread import robust_spread, sky_rms_interval
 
     rows = list(range(0, sky.mass_eV.size, max(1, sky.mass_eV.size // 16)))
@@ -158,17 +164,24 @@ def print_summary(sky, limit, threshold, omega0, shown):
     print(header)
     for j, k in enumerate(rows):
         kernel = sky.map("kernel", k)
+        empty = no_resonance(kernel, "pixel")
+        if empty:
+            print(f"  {sky.mass_eV[k]:11.4e} {empty}")
+            continue
         mean, rms = kernel.mean(), kernel.std()
         (half_width,), (mad,) = robust_spread(kernel)
         relative = rms / mean if mean > 0 else 0.0
+        band = (f"{interval['epsilon_low'][j]:.3e}-{interval['epsilon_high'][j]:.3e}"
+                if np.isfinite(interval['epsilon_high'][j]) else "-")
         line = (f"  {sky.mass_eV[k]:11.4e} {mean:11.4e} {relative:9.3f} {half_width:9.3e} {mad:9.3e} "
-                f"{ratio[k]:7.4f} {relative_sem[k]:7.4f} {limit['epsilon_max_rms'][k]:12.3e} "
-                f"{interval['epsilon_low'][j]:10.3e}-{interval['epsilon_high'][j]:<10.3e}")
+                f"{cell(ratio[k], '.4f', 7)} {cell(relative_sem[k], '.4f', 7)} "
+                f"{cell(limit['epsilon_max_rms'][k], '.3e', 12)} {band:>21}")
         if "epsilon_max_cl" in limit:
-            line += f" {limit['epsilon_max_cl'][k]:11.3e}"
+            line += f" {cell(limit['epsilon_max_cl'][k], '.3e', 11)}"
         print(line)
     print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
-          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width)")
+          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width); "
+          "'-': no number there (a flat map sets no limit)")
     _warn_spread(sky)
     resonating = np.count_nonzero(sky.map("crossings", shown)) / sky.npix
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "

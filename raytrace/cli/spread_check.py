@@ -23,6 +23,7 @@ def run(args):
 
     from raytrace.cli.limits import photon_energy_from_args
     from raytrace.core.errors import InputError
+    from raytrace.core.textcells import no_resonance
     from raytrace.statistics.spread import sky_rms_interval, spread
 
     result = load_rows(args.result)
@@ -34,7 +35,7 @@ def run(args):
         found = spread(kernel, result.mass_eV, args.resamples, args.seed, args.level)
     rows = range(result.mass_eV.size)
     print(f"# {args.result}: {kernel.n_rows} {'pixels' if is_sky else 'rays'}")
-    for line in found.table(rows):
+    for line in found.table(rows, kernel, "pixel" if is_sky else "ray"):
         print(line)
     message = found.warning()
     if message:
@@ -47,6 +48,10 @@ def run(args):
               f"{100 * args.level:.0f} % bootstrap intervals over pixels (correlated: a lower bound on the width)")
         print(f"  {'m [eV]':>11} {'rms dT/T':>10} {'interval':>21} {'eps_max':>10} {'interval':>21}")
         for k in rows:
+            empty = no_resonance(result.kernel[:, k], "pixel")
+            if empty or not sky["rms"][k] > 0:
+                print(f"  {result.mass_eV[k]:11.4g} {empty or 'a flat map (no anisotropy): no limit at this mass'}")
+                continue
             print(f"  {result.mass_eV[k]:11.4g} {sky['rms'][k]:10.3g} {sky['rms_low'][k]:10.3g}-{sky['rms_high'][k]:<10.3g} "
                   f"{sky['epsilon_max'][k]:10.3g} {sky['epsilon_low'][k]:10.3g}-{sky['epsilon_high'][k]:<10.3g}")
     return 0

@@ -41,3 +41,15 @@ def save_figure(figure, path, overwrite=False, owner=None):
         figure.savefig(temporary, format=path.suffix.lstrip(".") or "png", dpi=150, bbox_inches="tight",
                        metadata=figure_metadata(path, owner))
     return path
+
+
+def mollview(*arguments, **keywords):
+    """healpy.mollview, without the PendingDeprecationWarning healpy's own colour-map calls raise in
+    matplotlib (healpy's to change, not the user's: a warning nobody can act on)."""
+    import warnings
+
+    import healpy
+
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=PendingDeprecationWarning, module=r"healpy\.")
+        return healpy.mollview(*arguments, **keywords)

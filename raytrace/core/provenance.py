@@ -69,6 +69,24 @@ def check_writable(path, overwrite):
         raise InputError(f"{path}: cannot be written, {folder} is a file, not a folder")
     if not os.access(folder, os.W_OK | os.X_OK):
         raise InputError(f"{path}: cannot be written, the folder {folder} is not writable")
+    _check_name_length(path, folder)
+
+
+#: The longest name a run derives from an output's: its checkpoint's temporary file, '.<name>.partial.XXXXXXXX.part'.
+_DERIVED_NAME_EXTRA = len("..partial.xxxxxxxx.part")
+
+
+def _check_name_length(path, folder):
+    """Refuse, before any work, a name whose temporary or checkpoint names the file system cannot hold."""
+    try:
+        limit = os.pathconf(folder, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        limit = 255  # POSIX's usual NAME_MAX where the system does not say (common practice, no source)
+    length = len(os.fsencode(path.name))
+    if length + _DERIVED_NAME_EXTRA > limit:
+        raise InputError(f"{path.name[:40]}...: the output's name is too long ({length} bytes; this file system "
+                         f"takes names up to {limit} bytes and the run's temporary and checkpoint names add "
+                         f"{_DERIVED_NAME_EXTRA}): choose a name of at most {limit - _DERIVED_NAME_EXTRA} bytes")
 
 
 def check_outputs(paths, overwrite, flags=None):
@@ -133,24 +151,56 @@ class OutputSet:
     def __init__(self):
         self.pending = []      # (temporary, final path)
         self.kept = set()      # temporaries a failure leaves where they are (a finished run's result)
+        self.afterwards = []   # callables run once every output is in place
 
     def commit(self):
+        """Rename every output into place, first recording them in a journal (several outputs), so that
+        a kill between two renames leaves a write that ``--resume`` completes (:mod:`raytrace.core.journal`)."""
+        from raytrace.core.journal import write_journal
+
+        journal = write_journal(self.pending) if len(self.pending) > 1 else None
+        placed = []
         for index, (temporary, path) in enumerate(self.pending):
             try:
+                inode = os.stat(temporary).st_ino
                 os.replace(temporary, path)
             except OSError as error:
                 self.pending = self.pending[index:]
                 self.discard()
+                if journal is not None:
+                    journal.unlink()
                 raise write_failure(path, error, "outputs before it in the run are in place, those after are not") \
                     from None
+            placed.append((path, inode))
             remove_stale_temporaries(path)
+        if journal is not None:
+            journal.unlink()
         self.pending = []
+        claim_written(placed)
+        for action in self.afterwards:
+            action()
 
     def discard(self):
         for temporary, _ in self.pending:
             if os.path.exists(temporary) and temporary not in self.kept:
                 os.unlink(temporary)
         self.pending = []
+
+
+def claim_written(placed):
+    """Refuse to claim an output another process replaced since this run renamed it into place.
+
+    ``placed``: (path, inode of the file this run wrote) pairs. Raytrace runs lock
+    their outputs (:mod:`raytrace.core.outputguard`); this catches any other writer.
+    """
+    for path, inode in placed:
+        try:
+            now = os.stat(path).st_ino
+        except OSError:
+            now = None
+        if now != inode:
+            raise WriteError(f"{path}: another process replaced or removed this output just after this run wrote "
+                             "it; the file there is not this run's result")
 
 
 _OUTPUT_SET = contextvars.ContextVar("raytrace_output_set", default=None)
@@ -162,7 +212,8 @@ def output_set(paths=(), overwrite=False):
 
     ``paths`` are checked first (:func:`check_outputs`). Each output goes to a
     temporary file beside its final name; when the block ends normally all are
-    renamed into place; on any exception every temporary file is removed (but
+    renamed into place, then the actions given to :func:`after_outputs` run (e.g.
+    removing a checkpoint); on any exception every temporary file is removed (but
     those of :func:`move_into_place`, which stay) and nothing at a final name changes.
     """
     check_outputs(paths, overwrite)
@@ -178,12 +229,23 @@ def output_set(paths=(), overwrite=False):
     pending.commit()
 
 
+def after_outputs(action):
+    """Run ``action`` once the current output set is in place (now, outside one)."""
+    pending = _OUTPUT_SET.get()
+    if pending is None:
+        action()
+    else:
+        pending.afterwards.append(action)
+
+
 def move_into_place(source, path):
     """Rename ``source`` onto ``path``: now, or inside an output set with the set's other outputs. A set
     that fails leaves ``source`` where it is (a finished run's result file, which a resume puts in place)."""
     pending = _OUTPUT_SET.get()
     if pending is None:
+        inode = os.stat(source).st_ino
         os.replace(source, path)
+        claim_written([(path, inode)])
         return
     pending.pending.append((source, Path(path)))
     pending.kept.add(source)
@@ -243,13 +305,17 @@ def atomic_output(path, overwrite=False, at_once=False):
         if pending is not None:
             pending.pending.append((temporary, path))
             return
+        inode = os.stat(temporary).st_ino
         os.replace(temporary, path)
         remove_stale_temporaries(path)
+        claim_written([(path, inode)])
     except BaseException as error:
         if os.path.exists(temporary):
             os.unlink(temporary)
         if is_write_failure(error):
-            raise write_failure(path, error) from None
+            in_set = not at_once and _OUTPUT_SET.get() is not None
+            raise write_failure(path, error, "none of the run's outputs was written" if in_set else
+                                "nothing was written at that name") from None
         raise
 
 

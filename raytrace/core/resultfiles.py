@@ -24,6 +24,15 @@ import numpy as np
 
 from raytrace.core.errors import InputError, require_path
 from raytrace.core.provenance import atomic_output, provenance_json
+from raytrace.core.resultchecks import (
+    check_values,
+    format_version,
+    mass_grid,
+    read_arrays,
+    run_record,
+    scalar_attribute,
+    sky_rows,
+)
 
 #: Version of the layout inside a format (attribute 'format_version'): 2 adds a unit and a description to
 #: every dataset and stores crossings as float64 in sightline and sky files alike; 3 fills the files in
@@ -43,6 +52,9 @@ DATASETS = {
     "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
     "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
     "direction": ("1", "unit vector of each {row} in the boxes' axes"),
+    "kernel_shells_boxes": ("eV", "kernel from the boxes per {row}, redshift shell (group redshift_shells) and mass"),
+    "kernel_cells": ("eV", "kernel from the boxes per {row}, redshift cell and mass, which the run reduces to its "
+                     "bins (in a checkpoint only, for a resume)"),
     "batch_rows": ("1", "first and end row of each batch the run traced"),
     "batch_sha256": ("1", "SHA-256 of each batch's rows as stored (layout order), with its index and first row"),
     "batch_done": ("1", "whether each batch is written with its checksum"),
@@ -53,11 +65,14 @@ BATCH_DATASETS = {"batch_rows": ((2,), np.int64), "batch_sha256": ((32,), np.uin
 
 
 class RowArray(NamedTuple):
-    """One per-row dataset of a result: its shape from (rows, masses), its stored dtype and the axis of its rows."""
+    """One per-row dataset of a result: its shape from (rows, masses), its stored dtype, the axis of its rows,
+    and whether it is ``streamed``: a run's input to a reduction (:mod:`raytrace.statistics.binstats`) that
+    its checkpoint keeps for a resume to reduce again, but its result does not."""
 
     shape: object
     dtype: object
     rows_axis: int = 0
+    streamed: bool = False
 
 
 def rows_index(entry, start, stop):
@@ -101,12 +116,25 @@ def write_group(handle, name, datasets, attributes):
     return group
 
 
-def read_group(handle, name):
-    """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group."""
+def read_group(handle, name, n_masses, per_mass=()):
+    """({dataset: array}, {attribute: value}) of group ``name``, or None when the file has no such group.
+
+    The datasets ``per_mass`` must be there, one value per mass, finite and >= 0; every other dataset
+    finite. A JSON run record, where the group has one, is parsed (:mod:`raytrace.core.resultchecks`).
+    A damaged group is an InputError naming it.
+    """
     if name not in handle:
         return None
-    group = handle[name]
-    return {key: group[key][...] for key in group}, dict(group.attrs)
+    group, path = handle[name], handle.file.filename
+    datasets = read_arrays(group, path, tuple(per_mass), n_masses, prefix=f"{name}/", per_mass=True)
+    for key in group:
+        if key not in datasets:
+            datasets[key] = group[key][...]
+            check_values(datasets[key], path, f"dataset {name}/{key}", non_negative=False)
+    attributes = dict(group.attrs)
+    if "run" in attributes or name == "pdf_mean":
+        attributes["run"] = run_record(group, path, where=f"attribute run of group {name}")
+    return datasets, attributes
 
 
 def allocate(handle, format_name, mass_eV, run, layout, n_rows, per_mass, attributes, groups, n_batches=0,
@@ -209,7 +237,7 @@ def open_complete(path, format_name, what):
     try:
         if handle.attrs.get("format") != format_name:
             raise InputError(f"{path}: not a raytrace {what} result (attribute 'format' is not {format_name!r})")
-        version = int(handle.attrs.get("format_version", 1))
+        version = format_version(handle, path, FORMAT_VERSION)
         if version > FORMAT_VERSION:
             raise InputError(f"{path}: written by a newer raytrace (format version {version}; this one reads "
                              f"up to {FORMAT_VERSION}); update raytrace to read it")
@@ -235,9 +263,21 @@ class open_result:
         self.handle.close()
 
 
-def rows_first(dataset):
-    """A per-row dataset with its rows on the first axis, read whole (files of version <= 2 have no 'rows_axis')."""
-    return np.moveaxis(dataset[...], int(dataset.attrs.get("rows_axis", 0)), 0)
+#: The datasets of a result with a row per ray or pixel, as its loader reads them.
+ROW_DATASETS = ("kernel_boxes", "kernel_background", "crossings", "dispersion_measure_boxes", "tangent_events",
+                "kernel_tangent")
+
+
+def read_rows(handle, path, names=ROW_DATASETS, required=("z_max",), sky=False):
+    """``(run record, mass grid, arrays, background DM)`` of an open result, every piece checked
+    (:mod:`raytrace.core.resultchecks`): a sky's pixel count against its nside. Files of format version 1
+    may lack the near-tangent arrays (None: zeros)."""
+    record = run_record(handle, path, required)
+    n_rows = sky_rows(record, path) if sky else None
+    mass = mass_grid(handle, path)
+    optional = ("tangent_events", "kernel_tangent") if format_version(handle, path, FORMAT_VERSION) == 1 else ()
+    arrays = read_arrays(handle, path, names, mass.size, n_rows, optional=optional)
+    return record, mass, arrays, scalar_attribute(handle, path, "dispersion_measure_background")
 
 
 def _write_header(handle, format_name, mass_eV, run):
@@ -250,9 +290,11 @@ def _write_header(handle, format_name, mass_eV, run):
 
 
 def _check_finite(handle, path):
-    for name, item in handle.items():
+    def visit(name, item):
         if isinstance(item, h5py.Dataset):
             check_finite(item[...], f"dataset {name}", path)
+
+    handle.visititems(visit)
     # Numbers stored as attributes (the background's dispersion measure) are results too.
     for name, value in handle.attrs.items():
         check_finite(value, f"attribute {name}", path)

@@ -49,6 +49,7 @@ from raytrace.kernels.polynomial import (
 )
 from raytrace.kernels.prefetch import prefetch
 from raytrace.kernels.tangent import count_below_near, tangent_events
+from raytrace.kernels.zcells import add_to_cell
 
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
 _MAX_BREAKPOINTS = 6
@@ -304,13 +305,14 @@ def _crossing_kernel(root, slope, target, mass2, cell_mpc, kernel_unit, opz_a, s
 def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                  cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
                  rate_unit, m2_per_density, omega0, cells, corners, points, marks, kernel, count, tangent_count,
-                 tangent_kernel):
+                 tangent_kernel, cell_edges, cell_kernel):
     """Walk one segment; add its resonances into one ray's rows; return its DM in pc cm^-3.
 
     ``start``/``direction``: cells of the cube (direction a unit vector); ``length``:
     cells; ``chi0``: Mpc at the start; ``rate_unit``: hbar c in eV Mpc; ``omega0``:
     the observed photon energy of near-tangent events (eV; 0 turns them off);
-    ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`.
+    ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`;
+    ``cell_edges``/``cell_kernel``: each kernel also goes to its redshift cell (:mod:`.zcells`).
 
     Polynomials travel as scalars (registers) through inlined helpers: small arrays
     passed between kernels cost more than the arithmetic.
@@ -370,7 +372,7 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
         if n_ext > 0:
             tangent_events(bp, bv, k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
                             rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
-                            tangent_count, tangent_kernel)
+                            tangent_count, tangent_kernel, cell_edges, cell_kernel)
         weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
         for j in range(n_bp - 1):
             # Each target between the piece's end values is one crossing, met in the order of its
@@ -396,9 +398,10 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
                     continue
                 target = targets[crossed]
                 root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
-                kernel[crossed] += _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a,
-                                                    slope_opz, h_a, slope_h, d_a, d_1, blended,
-                                                    weight_term)
+                value = _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a, slope_opz,
+                                         h_a, slope_h, d_a, d_1, blended, weight_term)
+                kernel[crossed] += value
+                add_to_cell(cell_kernel, cell_edges, crossed, opz_a + slope_opz * root, value)
                 count[crossed] += 1
         opz_a, h_a = opz_b, h_b
     return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3

@@ -23,7 +23,7 @@ from raytrace.kernels.geometry import copy_transform
 def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi_a, chi_b, directions, observer,
                   box_size, seed, copy_key, symmetries, randomise, opz_table, hubble_table, chi_step_inverse,
                   targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                  kernel, count, tangent_count, tangent_kernel, dispersion):
+                  kernel, count, tangent_count, tangent_kernel, dispersion, cell_edges, cell_kernel):
     n = cube_lo.shape[0]
     cells_per_mpc = n / box_size
     cell_mpc = box_size / n
@@ -76,7 +76,7 @@ def trace_lattice(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, chi
                     cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, heading,
                     (chi_end - chi) * cells_per_mpc, chi, cell_mpc, opz_table, hubble_table, chi_step_inverse,
                     targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells, corners, points, marks,
-                    kernel[r], count[r], tangent_count[r], tangent_kernel[r])
+                    kernel[r], count[r], tangent_count[r], tangent_kernel[r], cell_edges, cell_kernel[r])
             if next_face[axis_next] >= chi_b:
                 break
             chi = chi_end

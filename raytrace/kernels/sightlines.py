@@ -4,7 +4,8 @@ In: one box's cube (two when blending), the pieces of the ray plan that this box
 (pair) serves (segment index and chi range of each), every ray's per-segment start
 point and direction (cells), and the tables and targets of
 :func:`~raytrace.kernels.crossings.walk_segment`. Out: added into per-ray rows of
-kernel, crossing counts, near-tangent counts and kernel, and dispersion measure.
+kernel, crossing counts, near-tangent counts and kernel, and dispersion measure; and per ray, the
+kernel of each redshift cell (:mod:`.zcells`).
 """
 
 import numba
@@ -17,7 +18,7 @@ from raytrace.kernels.crossings import scratch, walk_segment
 def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piece_segment, piece_chi_a,
                  piece_chi_b, segment_chi0, cell_mpc, starts, directions, opz_table, hubble_table,
                  chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0,
-                 kernel, count, tangent_count, tangent_kernel, dispersion):
+                 kernel, count, tangent_count, tangent_kernel, dispersion, cell_edges, cell_kernel):
     """Piece p of ray r starts at starts[r, g] + directions[r, g] * (chi_a - segment_chi0[g]) / cell, g = piece_segment[p]."""
     n_pieces = piece_segment.shape[0]
     longest = 0.0
@@ -35,4 +36,5 @@ def trace_pieces(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, piec
                 cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, point, directions[r, g],
                 (piece_chi_b[p] - piece_chi_a[p]) / cell_mpc, piece_chi_a[p], cell_mpc, opz_table, hubble_table,
                 chi_step_inverse, targets, ln_targets, mass2, uniform, rate_unit, m2_per_density, omega0, cells,
-                corners, points, marks, kernel[r], count[r], tangent_count[r], tangent_kernel[r])
+                corners, points, marks, kernel[r], count[r], tangent_count[r], tangent_kernel[r], cell_edges,
+                cell_kernel[r])

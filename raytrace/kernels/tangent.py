@@ -14,6 +14,7 @@ import numba
 import numpy as np
 
 from raytrace.kernels.polynomial import airy_ai, evaluate
+from raytrace.kernels.zcells import add_to_cell
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
 #: X Ai(-X)^2 + Ai'(-X)^2 - int_X^inf Ai^2 = sqrt(X)/pi the Airy kernel integrated
@@ -53,7 +54,8 @@ def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
 
 @numba.njit(cache=True)
 def tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets,
-                    mass2, m2_per_density, marks, kernel, count, tangent_count, tangent_kernel):
+                    mass2, m2_per_density, marks, kernel, count, tangent_count, tangent_kernel, cell_edges,
+                    cell_kernel):
     """Airy events at the interior extrema bp[1..n_bp-2] of a cell (e0..e3: the density's second
     derivative; ``below_start``: the number of targets below bv[0]). Fills marks[0] with the
     number of targets below each breakpoint, and marks[1:3] with the targets each event claims
@@ -110,6 +112,7 @@ def tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, leng
                 continue
             value = pair_kernel(mass2[k], opz, omega, a, m2_per_density * (pe - targets[k]))
             kernel[k] += value
+            add_to_cell(cell_kernel, cell_edges, k, opz, value)
             tangent_kernel[k] += value
             tangent_count[k] += 1
             if claimed:

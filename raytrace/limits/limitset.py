@@ -177,13 +177,36 @@ def _write_csv(temporary, mass, curves, bands):
 FILL_VALUE = 9.969209968386869e36
 
 
+#: The HDF5 table's format (attributes 'format', 'format_version'), as every other output carries one.
+TABLE_FORMAT = "raytrace-limits-1"
+TABLE_FORMAT_VERSION = 1
+#: (unit, description) of each dataset of an HDF5 limit table.
+TABLE_DATASETS = {
+    "mass_eV": ("eV", "dark-photon masses of the grid"),
+    "kernel_eV": ("eV", "conversion kernel K the limit is drawn from; P = epsilon^2 K / omega_0"),
+    "epsilon_max": ("1", "upper limit on the kinetic mixing epsilon at the curve's confidence level"),
+    "s_hat": ("1", "best-fit s = epsilon^2 of the spectral fit (may be negative)"),
+    "s_sigma": ("1", "1-sigma error of s = epsilon^2"),
+    "unconstrained": ("", "why epsilon is not constrained at this mass; empty where it is"),
+}
+
+
+def _describe(dataset, key):
+    unit, description = TABLE_DATASETS[key]
+    dataset.attrs["unit"] = unit
+    dataset.attrs["description"] = description + (f"; {FILL_VALUE:g} where not constrained"
+                                                   if key not in ("mass_eV", "unconstrained") else "")
+
+
 def _write_hdf5(temporary, mass, curves, bands):
     import h5py
 
     columns = dict((name, (values, reasons)) for name, values, reasons in _table_columns(curves))
     with hdf5_image(temporary) as handle:
+        handle.attrs["format"] = TABLE_FORMAT
+        handle.attrs["format_version"] = TABLE_FORMAT_VERSION
         handle.attrs["provenance"] = provenance_json(bands=bands)
-        handle.create_dataset("mass_eV", data=mass)
+        _describe(handle.create_dataset("mass_eV", data=mass), "mass_eV")
         for curve in curves:
             group = handle.create_group(curve.name)
             reasons = columns[f"{curve.name}_unconstrained"][1]
@@ -191,7 +214,9 @@ def _write_hdf5(temporary, mass, curves, bands):
                 values = np.where(reasons == "", columns[f"{curve.name}_{key}"][0], FILL_VALUE)
                 dataset = group.create_dataset(key, data=values, fillvalue=FILL_VALUE)
                 dataset.attrs["_FillValue"] = FILL_VALUE
-            group.create_dataset("unconstrained", data=reasons.astype(object), dtype=h5py.string_dtype())
+                _describe(dataset, key)
+            _describe(group.create_dataset("unconstrained", data=reasons.astype(object), dtype=h5py.string_dtype()),
+                      "unconstrained")
             for key, value in curve.metadata().items():
                 if value is not None:
                     group.attrs[key] = value

@@ -172,8 +172,7 @@ def spectral_limit(mass_eV, kernel_eV, spectrum=None, confidence=0.95, fit_galax
     with np.errstate(divide="ignore", invalid="ignore"):
         s_hat = np.where(constrained, fit["q_hat"] / kernel, np.nan)
         s_sigma = np.where(constrained, fit["q_sigma"] / kernel, np.inf)
-        from_boundary = s_hat + np.sqrt(s_hat**2 + threshold * s_sigma**2)
-        s_max = np.where(s_hat >= 0, s_hat + np.sqrt(threshold) * s_sigma, from_boundary)
+        s_max = upper_limit(s_hat, s_sigma, threshold)
     s_max = np.where(constrained, s_max, np.inf)
     if not constrained.all():
         warnings.warn(
@@ -279,8 +278,12 @@ def _weighted_fit(columns, data, sigma):
     return beta / scale, covariance
 
 
-def _distortion_fit(spectrum, fit_galaxy):
-    """Blackbody (+ Galaxy) fit without distortion, then q = s K in the model linearised around it."""
+def _distortion_fit(spectrum, fit_galaxy, shapes=None):
+    """Blackbody (+ Galaxy) fit without distortion, then q = s K in the model linearised around it.
+
+    ``shapes`` (n, frequencies): distortion templates fitted one at a time instead of the
+    conversion's -B/(h nu); then q_hat and q_sigma are arrays, one per template.
+    """
     nu, data, sigma = spectrum.frequency_hz, spectrum.intensity_MJy_sr, spectrum.sigma_MJy_sr
     templates = []
     if fit_galaxy:
@@ -308,9 +311,13 @@ def _distortion_fit(spectrum, fit_galaxy):
     galaxy = beta[1] if fit_galaxy else 0.0
     residual = data - blackbody - (galaxy * templates[0] if fit_galaxy else 0.0)
     null_chi2 = float(np.sum((residual / sigma) ** 2))
-    shape = -blackbody / spectrum.photon_energy_eV
-    linear, linear_covariance = _weighted_fit([planck_dT_MJy_sr(nu, temperature)] + templates + [shape],
-                                              residual, sigma)
+    one = shapes is None
+    amplitudes = []
+    for shape in [-blackbody / spectrum.photon_energy_eV] if one else shapes:
+        linear, linear_covariance = _weighted_fit([planck_dT_MJy_sr(nu, temperature)] + templates + [shape],
+                                                  residual, sigma)
+        amplitudes.append((linear[-1], np.sqrt(linear_covariance[-1, -1])))
+    q_hat, q_sigma = (float(v) for v in amplitudes[0]) if one else np.array(amplitudes).reshape(-1, 2).T
     return {
         "temperature_K": float(temperature),
         "temperature_sigma_K": float(np.sqrt(covariance[0, 0])),
@@ -318,9 +325,16 @@ def _distortion_fit(spectrum, fit_galaxy):
         "galaxy_sigma": float(np.sqrt(covariance[1, 1])) if fit_galaxy else None,
         "chi2": null_chi2,
         "dof": len(spectrum) - 1 - len(templates),
-        "q_hat": float(linear[-1]),
-        "q_sigma": float(np.sqrt(linear_covariance[-1, -1])),
+        "q_hat": q_hat,
+        "q_sigma": q_sigma,
     }
+
+
+def upper_limit(s_hat, s_sigma, threshold):
+    """s_max of the one-sided profile-chi^2 limit with the boundary s >= 0 (:func:`spectral_limit`)."""
+    with np.errstate(invalid="ignore"):
+        from_boundary = s_hat + np.sqrt(s_hat**2 + threshold * s_sigma**2)
+        return np.where(s_hat >= 0, s_hat + np.sqrt(threshold) * s_sigma, from_boundary)
 
 
 def _ranges(mass, mask):

@@ -9,14 +9,24 @@ kernel K = pi m^2 / ((1 + z_c) |d ln m_gamma^2/dt|) (eV), so one ray trace
 serves every epsilon and every observed photon energy omega_0.
 """
 
+import warnings
+
 import numpy as np
 
-from raytrace.core.errors import InputError, float_array
+from raytrace.core.errors import InputError, RaytraceWarning, float_array
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 
 #: The CMB is isotropic to about 1e-5 in dT/T (a fact of the trade, no source): the default
 #: level of the quick-look isotropy test.
 ISOTROPY_LEVEL = 1e-5
+#: Above this linear P = epsilon^2 K / omega_0 the sum over crossings is no longer small (PHYSICS.md
+#: section 2: P = sum p_i holds while P << 1); the saturating form is then shown. At 0.1 the two
+#: differ by 9 %: (1 - exp(-0.2)) / 2 = 0.0906.
+SATURATION_LEVEL = 0.1
+
+
+class SaturationWarning(RaytraceWarning):
+    """epsilon^2 K / omega_0 is not small somewhere: P is shown in the saturating form."""
 
 
 def crossing_kernel(mass_eV, z_crossing, dln_m2_dt_eV):
@@ -71,6 +81,21 @@ def probability_from_kernel(kernel_eV, epsilon, omega0_eV, saturate=False):
     if saturate:
         return -0.5 * np.expm1(-2.0 * linear)
     return linear
+
+
+def needs_saturation(kernel_eV, epsilon, omega0_eV):
+    """Whether the linear P = epsilon^2 K / omega_0 exceeds :data:`SATURATION_LEVEL` for some kernel;
+    if so, a :class:`SaturationWarning` says that P is shown in the saturating form instead."""
+    linear = probability_from_kernel(kernel_eV, epsilon, omega0_eV)
+    top = float(np.max(linear)) if np.size(linear) else 0.0
+    if not top > SATURATION_LEVEL:
+        return False
+    warnings.warn(SaturationWarning(
+        f"epsilon = {float(epsilon):g}: epsilon^2 K / omega_0 reaches {top:.3g}, above {SATURATION_LEVEL:g}, where "
+        "the sum over crossings is no longer a small probability; P is given in the saturating form of "
+        "incoherent crossings, (1 - exp(-2 epsilon^2 K / omega_0)) / 2 (PHYSICS.md section 2), at most 1/2"),
+        stacklevel=3)
+    return True
 
 
 def photon_x(omega0_eV):

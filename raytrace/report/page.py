@@ -24,6 +24,7 @@ from raytrace.limits.spectral import UnconstrainedMassWarning, result_kernels, s
 from raytrace.limits.spectrum import Spectrum, read_spectrum
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 from raytrace.report.crosscheck import warn_differences
+from raytrace.report.environments import environment_lines, environment_page
 from raytrace.report.plots import kernel_bands, shown_mass_index
 from raytrace.report.trust import trust_lines
 from raytrace.sky.maps import SkyResult
@@ -60,7 +61,9 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     ``mass_eV``: the sky map's mass (default: :func:`raytrace.report.plots.shown_mass_index`,
     the rule the sky figure follows). A sky from another set-up (boxes, masses,
     history, seed) is warned about, one line per difference. ``kinds``: which of
-    png, pdf and txt to write. Returns a dict kind -> path.
+    png, pdf and txt to write. A run with redshift bins gets a second page,
+    ``<path_stem>_where.png`` / ``.pdf`` / ``.txt`` (:mod:`raytrace.report.environments`: where
+    and when conversion happens). Returns a dict kind -> path.
     """
     unknown = set(kinds) - set(KINDS)
     if unknown or not kinds:
@@ -68,6 +71,10 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in KINDS if kind in kinds}
     check_outputs(paths.values(), overwrite)  # refuse before any work
     result = _load(sightlines, SightlineResult)
+    if result.redshift_bins is not None:
+        where = {f"where_{kind}": Path(f"{path_stem}_where.{kind}") for kind in KINDS if kind in kinds}
+        check_outputs(where.values(), overwrite)
+        paths.update(where)
     sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
     if sky is not None:
@@ -92,6 +99,12 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
                     figure.savefig(temporary, format=kind, dpi=DPI)
         finally:
             plt.close(figure)
+        for kind in ("png", "pdf"):
+            if f"where_{kind}" in paths:
+                environment_page(result, paths[f"where_{kind}"], overwrite)
+        if "where_txt" in paths:
+            with atomic_output(paths["where_txt"], overwrite) as temporary:
+                temporary.write_text("".join(line + "\n" for line in environment_lines(result)))
         if "txt" in paths:
             with atomic_output(paths["txt"], overwrite) as temporary:
                 temporary.write_text(text)
@@ -182,7 +195,8 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
 def _run_lines(result):
     """The report's lines on the run: rays, redshifts, boxes and background, ionisation, cosmology, each box."""
     run = result.run
-    z_max, z_boxes = float(run["z_max"]), float(run["z_boxes"])
+    z_max = float(run["z_max"])
+    z_boxes = float(run.get("z_boxes", z_max))  # a result made by hand may not say: then the boxes served all
     with_background = bool(run.get("include_background")) and z_max > z_boxes
     lines = [
         f"raytrace {run.get('raytrace', '?')} sightline run: {result.n_rays} rays, seed {run.get('seed')}, "
@@ -376,15 +390,15 @@ def _sky_map(sky, index, epsilon, omega0):
 
 
 def _draw_sky(plt, figure, where, sky, index, epsilon, omega0):
-    import healpy
+    from raytrace.core.figures import mollview
 
     values, _, unit, _ = _sky_map(sky, index, epsilon, omega0)
     left, bottom, width, height = where
     plt.figure(figure.number)  # mollview draws on pyplot's current figure
     # sub=(1, 1, 1) spans the page; the margins cut it down to this panel's place.
-    healpy.mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
-                    margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
-                    title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
+    mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
+             margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
+             title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
     plt.gca().title.set_fontsize(10)  # mollview leaves its map axes current, the colour bar last
     figure.axes[-1].tick_params(labelsize=8)
 

@@ -17,9 +17,14 @@ def kernel_bands(result, ax=None, epsilon=None, omega0_eV=None):
     plt = pyplot()
     if ax is None:
         _, ax = plt.subplots(figsize=(6.4, 4.4))
-    to_plotted = (lambda k: k) if epsilon is None else (lambda k: result_probability(k, epsilon, omega0_eV))
-    q = to_plotted(result.percentiles((2.5, 16.0, 50.0, 84.0, 97.5)))
-    mean = to_plotted(result.mean())
+    if epsilon is None:
+        to_plotted, rows = (lambda k: k), result.kernel
+    else:  # P per ray (saturating where it must be: result.saturates), its percentiles and mean
+        saturate = result.saturates(epsilon, omega0_eV)
+        to_plotted = (lambda k: result_probability(k, epsilon, omega0_eV, saturate))
+        rows = result.probability(epsilon, omega0_eV, saturate)
+    q = np.percentile(rows, (2.5, 16.0, 50.0, 84.0, 97.5), axis=0)
+    mean = rows.mean(axis=0)
     m = result.mass_eV
     ax.fill_between(m, q[0], q[4], color="C0", alpha=0.18, lw=0, label="95 % of sightlines")
     ax.fill_between(m, q[1], q[3], color="C0", alpha=0.35, lw=0, label="68 % of sightlines")
@@ -34,7 +39,8 @@ def kernel_bands(result, ax=None, epsilon=None, omega0_eV=None):
     if epsilon is None:
         ax.set_ylabel(r"conversion kernel $K$ [eV]  ($P = \epsilon^2 K/\omega_0$)")
     else:
-        ax.set_ylabel(rf"conversion probability $P$ ($\epsilon$ = {epsilon:g}, $\omega_0$ = {omega0_eV:.3g} eV)")
+        form = ", saturating form" if result.saturates(epsilon, omega0_eV) else ""
+        ax.set_ylabel(rf"conversion probability $P$ ($\epsilon$ = {epsilon:g}, $\omega_0$ = {omega0_eV:.3g} eV{form})")
     ax.set_title(f"z = 0 to {result.run.get('z_max'):g}, boxes to z = {result.run.get('z_boxes'):g}", fontsize=10)
     ax.legend(fontsize=8, loc="best")
     return ax
@@ -68,7 +74,7 @@ def shown_mass_index(sky, mass_eV=None):
     return int(candidates[candidates.size // 2])
 
 
-def result_probability(kernel, epsilon, omega0_eV):
+def result_probability(kernel, epsilon, omega0_eV, saturate=False):
     from raytrace.physics.conversion import probability_from_kernel
 
-    return probability_from_kernel(kernel, epsilon, omega0_eV)
+    return probability_from_kernel(kernel, epsilon, omega0_eV, saturate=saturate)

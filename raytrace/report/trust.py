@@ -33,7 +33,7 @@ def trust_lines(result, rows, sky=None, sky_index=None, omega0_eV=None, threshol
                       f"top 1 % {100 * found.top_share[k]:.0f} %",
                       f"tail {_number(found.tail_index[k], '.2f')}+-{_number(found.tail_error[k], '.2f')}",
                       f"hw {found.half_width[k]:.3g}", f"MAD {found.mad[k]:.3g}"]
-        lines.append(", ".join(cells[:2]) + ", " + ", ".join(cells[2:]) if len(cells) > 2 else cells[0])
+        lines.append(cells[0] + " " + ", ".join(cells[1:]))
     if check is None:
         lines.append("  this result carries no one-point-PDF mean (made before the check existed)")
     for message in ([check.message()] if check is not None else []) + ([found.warning()] if found else []):
@@ -44,11 +44,15 @@ def trust_lines(result, rows, sky=None, sky_index=None, omega0_eV=None, threshol
         interval = sky_rms_interval(sky, omega0_eV, n_resamples, int(sky.run.get("seed", 0)), threshold=threshold,
                                     masses=[sky_index])
         interval = {key: value[0] if isinstance(value, np.ndarray) else value for key, value in interval.items()}
-        lines.append(f"sky at m = {sky.mass_eV[sky_index]:.3g} eV: rms dT/T at epsilon = 1 {interval['rms']:.3g} "
-                     f"(68 % bootstrap over pixels {interval['rms_low']:.3g} to {interval['rms_high']:.3g}); "
-                     f"rms anisotropy limit epsilon_max = {interval['epsilon_max']:.3g} "
-                     f"({interval['epsilon_low']:.3g} to {interval['epsilon_high']:.3g}); correlated pixels: "
-                     "a lower bound on the interval's width")
+        k = sky_index
+        if interval["rms"] > 0:
+            lines.append(f"sky at m = {sky.mass_eV[k]:.3g} eV: rms dT/T {interval['rms']:.3g} at epsilon = 1 "
+                         f"(68 % bootstrap over pixels {interval['rms_low']:.3g} to {interval['rms_high']:.3g}); "
+                         f"rms anisotropy limit epsilon_max = {interval['epsilon_max']:.3g} "
+                         f"({interval['epsilon_low']:.3g} to {interval['epsilon_high']:.3g}); correlated "
+                         "pixels: a lower bound on the interval's width")
+        else:
+            lines.append(f"sky at m = {sky.mass_eV[k]:.3g} eV: a flat map (no resonance or no anisotropy), no limit")
         sky_check = sky.mean_check()
         if sky_check is not None and sky_check.message():
             warned.append("sky: " + sky_check.message())

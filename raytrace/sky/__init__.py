@@ -3,5 +3,5 @@
 In: a box series, a mass grid and nside. Out: :class:`~raytrace.sky.maps.SkyResult`
 with its maps (read one mass at a time from the result file), angular power
 spectra, dT/T (``maps``), HEALPix FITS files written a block of pixels at a time
-(``fitsmaps``), and a run sized before it runs (``estimate``).
+(``fits``), and a run sized before it runs (``estimate``).
 """

@@ -3,8 +3,8 @@
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
 its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
-angular power spectra (healpy.anafast), FITS maps (:mod:`raytrace.sky.fitsmaps`),
-Mollweide plots, and the anisotropy limit on epsilon.
+angular power spectra (healpy.anafast), FITS maps (:mod:`raytrace.sky.fits`),
+Mollweide plots, maps per redshift shell, and the anisotropy limit on epsilon.
 
 A sky's maps stay where its run wrote them: in its result file, or for a run
 without one in the same file in memory. Everything downstream reads them one
@@ -20,14 +20,14 @@ angle at each distance (about box size / chi), so beyond chi ~ box size / theta
 the map of one copy is no longer a fair sample of larger structures.
 """
 
-import json
-
 import numpy as np
 
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import RowArray, open_complete, read_group, save_rows
+from raytrace.core.resultchecks import check_values, mass_grid, read_arrays, run_record, scalar_attribute, sky_rows
+from raytrace.core.resultfiles import RowArray, open_complete, read_group, read_rows, save_rows
 from raytrace.physics.conversion import anisotropy_per_probability
 from raytrace.statistics.meancheck import SKY_CHECK_POINTS, check_groups, read_pdf_check, warn_on_mismatch
+from raytrace.statistics.onepoint import PER_MASS
 from raytrace.statistics.results import KernelRows, tangent_arrays
 from raytrace.statistics.spread import Columns
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
@@ -35,6 +35,9 @@ from raytrace.tracing.lattice import FORMAT, trace_sky
 
 #: Pixels per piece when the face of each pixel is worked out (RING order): 8 MB of indices at a time.
 _FACE_PIECE = 1 << 20
+#: What a sky's readers need of its run record.
+_REQUIRED = ("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel")
+_MAPS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent")
 
 
 def _healpy():
@@ -72,23 +75,62 @@ class SkyResult(KernelRows):
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
         self.handle = handle
+        self.shell_edges_z = self.kernel_shells_boxes = self.shells_background = None
 
     @classmethod
     def from_file(cls, handle):
-        """The sky an open, complete result file holds; its maps are read from the file when asked."""
+        """The sky an open, complete result file holds; its maps are read from the file when asked, each
+        checked as it is read, the rest checked now (:mod:`raytrace.core.resultchecks`)."""
+        path = handle.filename
         sky = object.__new__(cls)
         maps = {name: item for name, item in handle.items() if int(item.attrs.get("rows_axis", 0)) >= 1}
-        if not maps:  # files before format version 3 hold (npix, n_masses), rows first, and fit in memory
-            kernel = handle["kernel_boxes"][...]
-            events, tangent = tangent_arrays(kernel, *(handle[name][...] if name in handle else None
-                                                       for name in ("tangent_events", "kernel_tangent")))
-            maps = {"kernel_boxes": kernel.T, "crossings": handle["crossings"][...].astype(float).T,
+        if maps:
+            run, mass = run_record(handle, path, _REQUIRED), mass_grid(handle, path)
+            npix = sky_rows(run, path)
+            arrays = read_arrays(handle, path, ("kernel_background", "dispersion_measure_boxes"), mass.size, npix)
+            for name, item in maps.items():
+                if item.shape != (mass.size, npix):
+                    raise InputError(f"{path}: dataset {name} has shape {item.shape}; expected {(mass.size, npix)} "
+                                     "(masses, pixels): the file is damaged or cut short")
+            dm_background = scalar_attribute(handle, path, "dispersion_measure_background")
+        else:  # files before format version 3 hold (npix, n_masses), rows first, and fit in memory
+            run, mass, arrays, dm_background = read_rows(handle, path, required=_REQUIRED, sky=True)
+            events, tangent = tangent_arrays(arrays["kernel_boxes"], arrays["tangent_events"], arrays["kernel_tangent"])
+            maps = {"kernel_boxes": arrays["kernel_boxes"].T, "crossings": arrays["crossings"].astype(float).T,
                     "tangent_events": events.astype(float).T, "kernel_tangent": tangent.T}
-        sky._set_up(handle["mass_eV"][...], maps, handle["kernel_background"][...],
-                    handle["dispersion_measure_boxes"][...], handle.attrs["dispersion_measure_background"],
-                    json.loads(handle.attrs["run"]), handle)
-        sky.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), sky.mass_eV)
+        sky._set_up(mass, maps, arrays["kernel_background"], arrays["dispersion_measure_boxes"], dm_background, run,
+                    handle)
+        shells = read_group(handle, "redshift_shells", mass.size)
+        if shells is not None:
+            sky.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
+        sky.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), sky.mass_eV)
         return sky
+
+    def set_shells(self, edges_z, kernel_shells_boxes, shells_background):
+        """Give the result its maps per redshift shell: edges (S+1), the boxes' maps (npix, S, n_masses)
+        and the background's part of each shell (S, n_masses), the same in every pixel."""
+        self.shell_edges_z = np.asarray(edges_z, dtype=float)
+        self.kernel_shells_boxes = np.asarray(kernel_shells_boxes, dtype=float)
+        self.shells_background = np.asarray(shells_background, dtype=float)
+        if self.kernel_shells_boxes.shape != (self.npix, self.shell_edges_z.size - 1, self.mass_eV.size):
+            raise InputError(f"kernel_shells_boxes: expected shape {(self.npix, self.shell_edges_z.size - 1)} + "
+                             f"(masses,), got {self.kernel_shells_boxes.shape}")
+
+    @property
+    def kernel_shells(self):
+        """K in eV per pixel, redshift shell and mass (boxes plus background); None without shells."""
+        if self.kernel_shells_boxes is None:
+            return None
+        return self.kernel_shells_boxes + self.shells_background[None]
+
+    def shell_map(self, mass_eV, shell):
+        """The map of K (eV) of shell ``shell`` (index) at the grid mass nearest ``mass_eV``."""
+        if self.kernel_shells_boxes is None:
+            raise InputError("shell_map: this sky was cast without redshift shells (shells_z, --shells)")
+        count = self.shell_edges_z.size - 1
+        if not (isinstance(shell, (int, np.integer)) and 0 <= shell < count):
+            raise InputError(f"shell: expected a shell index from 0 to {count - 1}, got {shell!r}")
+        return self.kernel_shells[:, shell, self.mass_index(mass_eV)]
 
     def __repr__(self):
         return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
@@ -118,10 +160,14 @@ class SkyResult(KernelRows):
 
     # -- one mass at a time ---------------------------------------------------------------
     def pixels(self, name, k, start=0, stop=None):
-        """Pixels start..stop-1 of mass ``k``'s map of ``name`` (one read); "kernel" is boxes plus background."""
+        """Pixels start..stop-1 of mass ``k``'s map of ``name`` (one read, checked when it comes from a file);
+        "kernel" is boxes plus background."""
         if name == "kernel":
             return self.pixels("kernel_boxes", k, start, stop) + self.kernel_background[k]
-        return np.asarray(self.maps[name][k, start:self.npix if stop is None else stop], dtype=float)
+        values = np.asarray(self.maps[name][k, start:self.npix if stop is None else stop], dtype=float)
+        if self.handle is not None:
+            check_values(values, self.handle.filename, f"dataset {name} (mass {k})")
+        return values
 
     def map(self, name, k):
         """Mass ``k``'s whole map of ``name`` (float64, one contiguous read of the file)."""
@@ -142,6 +188,17 @@ class SkyResult(KernelRows):
     def resonating_fraction(self):
         """Share of pixels with a crossing inside the boxes, per mass."""
         return self.columns("crossings").each(lambda crossings: np.count_nonzero(crossings) / crossings.size)
+
+    def saturates(self, epsilon, omega0_eV):
+        """Whether P = epsilon^2 K / omega_0 leaves the linear regime in some pixel at some mass (then P is
+        given in the saturating form): the largest K of each map, one map at a time."""
+        from raytrace.physics.conversion import needs_saturation
+
+        cache = self.__dict__.setdefault("_saturation", {})
+        key = (float(epsilon), float(omega0_eV))
+        if key not in cache:
+            cache[key] = needs_saturation(self.columns().each(np.max), epsilon, omega0_eV)
+        return cache[key]
 
     def faces(self):
         """The base HEALPix pixel (0 to 11) of every pixel, in this sky's order (int8: npix bytes)."""
@@ -169,9 +226,12 @@ class SkyResult(KernelRows):
     def kernel_map(self, mass_eV):
         return self.map("kernel", self.mass_index(mass_eV))
 
-    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=False):
+    def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=None):
+        """P per pixel at one mass: linear, or (``saturate`` None) saturating where the sky leaves the
+        linear regime (:meth:`saturates`)."""
         from raytrace.physics.conversion import probability_from_kernel
 
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel_map(mass_eV), epsilon, omega0_eV, saturate=saturate)
 
     def temperature_anisotropy(self, mass_eV, epsilon, omega0_eV):
@@ -191,16 +251,31 @@ class SkyResult(KernelRows):
         return healpy.anafast(ring - ring.mean(), lmax=lmax)
 
     # -- files ------------------------------------------------------------------------
+    def stored_groups(self):
+        """The groups beside the per-pixel arrays: the built-in check's and the shells', where there are."""
+        groups = super().stored_groups()
+        if self.kernel_shells_boxes is not None:
+            groups["redshift_shells"] = ({
+                "edges_z": (self.shell_edges_z, "1", "edges in z of the redshift shells of kernel_shells_boxes"),
+                "background": (self.shells_background, "eV", "the homogeneous background's kernel per shell and "
+                               "mass, the same in every pixel")}, {})
+        return groups
+
     def save(self, path, overwrite=False):
         """Write the sky to HDF5 atomically, one map at a time (maps in their stored precision)."""
         layout = {name: RowArray(lambda r, m: (m, r), maps.dtype, 1) for name, maps in self.maps.items()}
         layout["dispersion_measure_boxes"] = RowArray(lambda r, m: (r,), np.float64)
+        if self.kernel_shells_boxes is not None:
+            shells = self.kernel_shells_boxes.shape[1]
+            layout["kernel_shells_boxes"] = RowArray(lambda r, m: (r, shells, m), np.float64)
 
         def fill(handle):
             for name in self.maps:
                 for k in range(self.mass_eV.size):
                     handle[name][k] = self.maps[name][k]
             handle["dispersion_measure_boxes"][...] = self.dispersion_measure_boxes
+            if self.kernel_shells_boxes is not None:
+                handle["kernel_shells_boxes"][...] = self.kernel_shells_boxes
 
         return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, layout, self.npix,
                          {"kernel_background": self.kernel_background},
@@ -212,16 +287,23 @@ class SkyResult(KernelRows):
         """The sky of a result file, its maps read from the file when asked (close it, or use ``with``)."""
         return cls.from_file(open_complete(path, FORMAT, "sky"))
 
-    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
-        """HEALPix FITS maps of K at ``masses_eV``, and of P when ``epsilon`` is given, streamed
-        (:func:`raytrace.sky.fitsmaps.write_fits`).
+    def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None, shown_eV=None):
+        """HEALPix FITS maps of K at ``masses_eV``, and of P when ``epsilon`` is given, streamed a block of
+        pixels at a time (:func:`raytrace.sky.fits.write_sky_fits`).
 
-        The maps come in the order of ``masses_eV``, so the first is the one
-        ``healpy.read_map`` returns by default: put the shown mass first.
+        The maps come in the order of ``masses_eV``; with ``shown_eV`` (the mass a
+        run shows) that mass's maps come first in their own extension (HDU 1, what
+        ``healpy.read_map`` returns by default) and those of ``masses_eV`` in HDU 2.
+        Each header carries nside, ordering, units, the frame (SKYFRAME: the box
+        axes, no celestial COORDSYS), each map's mass (MASS1 ...), SHOWMASS, the
+        run's seed, z range, the input checksums, EPSILON and OMEGA0 only with
+        probability maps, and ``owner`` (the run's result file, keyword RTRESULT;
+        see :mod:`raytrace.core.companions`).
         """
-        from raytrace.sky.fitsmaps import write_fits
+        from raytrace.sky.fits import write_sky_fits
 
-        return write_fits(self, path, masses_eV, epsilon, omega0_eV, overwrite, owner)
+        return write_sky_fits(self, path, masses_eV, epsilon=epsilon, omega0_eV=omega0_eV, overwrite=overwrite,
+                              owner=owner, shown_eV=shown_eV)
 
     def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
         """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
@@ -229,16 +311,15 @@ class SkyResult(KernelRows):
         Colour-bar ticks in three significant digits (scientific notation where the
         values need it); ``owner`` marks the file as in :func:`raytrace.core.figures.save_figure`.
         """
-        from raytrace.core.figures import pyplot, save_figure
+        from raytrace.core.figures import mollview, pyplot, save_figure
 
-        healpy = _healpy()
         plt = pyplot()
         if epsilon is None:
             values, label = self.kernel_map(mass_eV), "K [eV]"
         else:
             values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        healpy.mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
-                        title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
+                 title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
         figure = plt.gcf()
         if path is not None:
             save_figure(figure, path, overwrite=overwrite, owner=owner)
@@ -249,7 +330,7 @@ class SkyResult(KernelRows):
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV,
-             map_precision="float64", **removed):
+             map_precision="float64", shells_z=None, **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
@@ -263,6 +344,9 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
     are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster. With an
     :class:`~raytrace.tracing.backends.HDF5Backend` the maps go batch by batch
     to the result file and the returned sky reads them from there.
+    ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
+    :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
+    (``kernel_shells``), each crossing in the shell of its redshift.
     """
     from raytrace.boxes import as_series
 
@@ -273,5 +357,6 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
                        rays_per_pixel=rays_per_pixel, include_background=include_background, z_boxes=z_boxes,
                        ordering=ordering, plasma=plasma, randomise_copies=randomise_copies,
                        batch_pixels=batch_pixels, photon_energy_eV=photon_energy_eV, map_precision=map_precision,
-                       **removed)
-    return warn_on_mismatch(SkyResult.from_file(traced.stored))  # the built-in check (raytrace.statistics.meancheck)
+                       shells_z=shells_z, **removed)
+    # The built-in check (raytrace.statistics.meancheck), per mass and per shell.
+    return warn_on_mismatch(SkyResult.from_file(traced.backend.finish()))

@@ -62,7 +62,13 @@ PDF_MEAN_DATASETS = {
     "kernel_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per mass, over the run's redshifts"),
     "kernel_background": ("eV", "the homogeneous background's kernel per mass in the one-point-PDF mean"),
     "error": ("eV", "error estimate of the one-point-PDF mean of the boxes' kernel per mass"),
+    "bin_edges_z": ("1", "edges in z of the redshift bins of the one-point-PDF mean"),
+    "bins_boxes": ("eV", "one-point-PDF mean of the boxes' kernel per redshift bin and mass"),
+    "bins_background": ("eV", "the homogeneous background's kernel per redshift bin and mass"),
+    "bins_error": ("eV", "error estimate of bins_boxes per redshift bin and mass"),
 }
+#: The datasets that are one value per mass (the rest are per redshift bin and mass, or bin edges).
+PER_MASS = ("kernel_boxes", "kernel_background", "error")
 _TABLE = 4097  # nodes of the tabulated F(s) per interval: relative error ~1e-7
 
 
@@ -78,6 +84,8 @@ class PdfMean:
     error : (n_masses,) error estimate of ``kernel`` in eV (the boxes' part; the
         background is exact to its own tables).
     run : dict of what was computed from what (z range, points, groups, seed, boxes).
+    bin_edges_z, bins_boxes, bins_background, bins_error : with redshift bins, their
+        edges (B+1) and per bin and mass (B, n_masses) the same three (else None).
     """
 
     mass_eV: np.ndarray
@@ -85,13 +93,27 @@ class PdfMean:
     kernel_background: np.ndarray
     error: np.ndarray
     run: dict = field(default_factory=dict)
+    bin_edges_z: np.ndarray = None
+    bins_boxes: np.ndarray = None
+    bins_background: np.ndarray = None
+    bins_error: np.ndarray = None
+
+    #: The arrays a PdfMean holds (and its file stores), the per-bin ones where there are bins.
+    ARRAYS = tuple(PDF_MEAN_DATASETS)
 
     def __post_init__(self):
-        for name in ("mass_eV", "kernel_boxes", "kernel_background", "error"):
+        for name in ("mass_eV",) + self.ARRAYS:
+            if getattr(self, name) is None:
+                continue
             array = np.array(getattr(self, name), dtype=float)
             array.flags.writeable = False
             object.__setattr__(self, name, array)
         object.__setattr__(self, "run", dict(self.run))
+
+    @property
+    def bins(self):
+        """<K> per redshift bin and mass (B, n_masses), boxes plus background; None without bins."""
+        return None if self.bins_boxes is None else self.bins_boxes + self.bins_background
 
     def __repr__(self):
         return (f"PdfMean({self.mass_eV.size} masses {self.mass_eV[0]:.3g}-{self.mass_eV[-1]:.3g} eV, "
@@ -121,33 +143,41 @@ class PdfMean:
             with h5py.File(temporary, "w") as handle:
                 _write_header(handle, FORMAT, self.mass_eV, self.run)
                 for name, (unit, description) in PDF_MEAN_DATASETS.items():
-                    handle[name] = getattr(self, name)
-                    describe(handle[name], unit, description)
+                    if getattr(self, name) is not None:  # the per-bin ones where there are bins
+                        handle[name] = getattr(self, name)
+                        describe(handle[name], unit, description)
                 handle.attrs["complete"] = True
                 _check_finite(handle, path)
         return path
 
     @classmethod
     def load(cls, path):
-        import json
-
+        from raytrace.core.resultchecks import check_values, mass_grid, read_arrays, run_record
         from raytrace.core.resultfiles import open_result
 
         with open_result(path, FORMAT, "one-point-PDF mean") as handle:
-            return cls(handle["mass_eV"][...], handle["kernel_boxes"][...], handle["kernel_background"][...],
-                       handle["error"][...], json.loads(handle.attrs["run"]))
+            run = run_record(handle, path, ("z_max",))
+            mass = mass_grid(handle, path)
+            arrays = read_arrays(handle, path, PER_MASS, mass.size, per_mass=True)
+            bins = {name: handle[name][...] for name in cls.ARRAYS if name not in PER_MASS and name in handle}
+            for name, values in bins.items():
+                check_values(values, path, f"dataset {name}", non_negative=True)
+            return cls(mass, run=run, **arrays, **bins)
 
 
 def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plasma=None, points=POINTS,
-             groups=16, blend_steps=16, seed=0, n_jobs=1):
+             groups=16, blend_steps=16, seed=0, n_jobs=1, redshift_bins=None):
     """<K>(m) of ``series`` from its one-point PDF (module docstring), as a :class:`PdfMean`.
 
-    ``series``, ``mass_eV``, ``z_max``, ``include_background``, ``z_boxes`` and
-    ``plasma`` as in :func:`raytrace.cast_sightlines`. ``points``: random points
-    per box (per blended pair), split into ``groups`` >= 2 groups for the error;
-    ``seed`` fixes them; ``n_jobs`` numba threads.
+    ``series``, ``mass_eV``, ``z_max``, ``include_background``, ``z_boxes``,
+    ``plasma`` and ``redshift_bins`` (a count or edges; default none here) as in
+    :func:`raytrace.cast_sightlines`. ``points``: random points per box (per blended
+    pair), split into ``groups`` >= 2 groups for the error; ``seed`` fixes them;
+    ``n_jobs`` numba threads. With bins, <K> of each bin comes from the same points:
+    the integral over z is cut at the bin edges (PHYSICS.md section 11).
     """
     from raytrace.tracing.checks import background_part, boxes_redshift_range, check_masses, check_seed, numba_threads
+    from raytrace.tracing.redshiftbins import background_by_bin, bin_edges
 
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -159,24 +189,33 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
         raise InputError(f"z_max: expected a positive redshift, got {z_max!r}")
     plasma = plasma if plasma is not None else MeanPlasma()
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    edges = bin_edges(redshift_bins, z_boxes, z_max, include_background)
     pieces = serving_pieces(series, z_boxes, blend_steps)
     warn_frozen_blend(series, z_boxes, blend_steps)
     per_group = int(points) / int(groups)
-    estimates = np.zeros((groups, mass.size))
-    binning = np.zeros(mass.size)
+    n_bins = 0 if edges is None else edges.size - 1
+    # Row 0: the whole range; rows 1..B: the bins.
+    estimates = np.zeros((1 + n_bins, groups, mass.size))
+    binning = np.zeros((1 + n_bins, mass.size))
     target = np.log(mass**2 / PLASMA_MASS2_PER_DENSITY)
     with numba_threads(n_jobs):
         for key, (z_a, z_b, low, high, weight, share) in enumerate(pieces):
-            piece, bound = _piece_kernel(series, plasma.cosmology, target, z_a, z_b, low, high, weight, seed, key,
-                                         groups, per_group * share)
-            estimates += piece
-            binning += bound
+            parts = _piece_kernel(series, plasma.cosmology, target, z_a, z_b, low, high, weight, seed, key,
+                                  groups, per_group * share, edges)
+            for row, (piece, bound) in parts.items():
+                estimates[row] += piece
+                binning[row] += bound
     estimates *= np.pi * mass**2
-    kernel_boxes = estimates.mean(axis=0)
-    error = (estimates.std(axis=0, ddof=1) / math.sqrt(groups) + np.pi * mass**2 * binning
-             + NUMERICAL * kernel_boxes)
+    kernel = estimates.mean(axis=1)
+    error = (estimates.std(axis=1, ddof=1) / math.sqrt(groups) + np.pi * mass**2 * binning + NUMERICAL * kernel)
+    kernel_boxes = kernel[0]
     kernel_background, _ = background_part(plasma, mass, z_boxes, z_max, include_background)
-    error += NUMERICAL * kernel_background  # the background's quadrature, as it would differ from the rays' own
+    error[0] += NUMERICAL * kernel_background  # the background's quadrature, as it would differ from the rays' own
+    binned = {}
+    if edges is not None:
+        by_bin, _ = background_by_bin(plasma, mass, z_boxes, z_max if include_background else z_boxes, edges)
+        binned = {"bin_edges_z": edges, "bins_boxes": kernel[1:], "bins_background": by_bin,
+                  "bins_error": error[1:] + NUMERICAL * by_bin}
     run = {
         "raytrace": __version__, "method": "one-point PDF of the trilinear interpolant at stratified uniform random points",
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
@@ -185,7 +224,7 @@ def pdf_mean(series, mass_eV, z_max, include_background=True, z_boxes=None, plas
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
-    return PdfMean(mass, kernel_boxes, kernel_background, error, run)
+    return PdfMean(mass, kernel_boxes, kernel_background, error[0], run, **binned)
 
 
 class FrozenBlendWarning(RaytraceWarning):
@@ -213,6 +252,8 @@ def warn_frozen_blend(series, z_boxes, blend_steps):
     if not pairs:
         return
     ratio = max(blend_rate(series.boxes[a], series.boxes[b]) * (1.0 + series.redshifts[b]) / 3.0 for a, b in pairs)
+    if ratio < 1e-3:  # a blend of (nearly) one field: nothing the frozen blend leaves out could show
+        return
     warnings.warn(FrozenBlendWarning(
         f"one-point-PDF mean of blended snapshots: the blend is frozen over 1/{blend_steps} of each pair, which "
         f"leaves out its own rate d ln n_e/dz, up to {100 * ratio:.2g} % of the expansion's here; where the field "
@@ -247,9 +288,9 @@ def serving_pieces(series, z_boxes, blend_steps):
     return pieces
 
 
-def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, key, groups, points):
-    """Per group of about ``points`` points, the mean over them of F(L_m - ln n) on one piece, and the
-    binning bound (both / pi m^2).
+def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, key, groups, points, edges=None):
+    """{row: (per group of about ``points`` points, the mean over them of F(L_m - ln n), the binning
+    bound)} (both / pi m^2) on one piece (row 0) and on its part in each bin b of ``edges`` (row b + 1).
 
     F(s) = 1 / (3 (1+z) H(z)) with 3 ln(1+z) = s, for s in [3 ln(1+z_a), 3 ln(1+z_b)).
     """
@@ -265,6 +306,17 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
     interpolant_histograms(box_a.data, box_a.comoving_scale, box_b.data, box_b.comoving_scale, float(weight),
                            int(seed), int(key), float(points / box_a.n_cells**3), ln_low, 1.0 / width, counts, sums,
                            drawn)
+    parts = {0: _interval_kernel(cosmology, target, counts, sums, drawn, ln_low, width, s_a, s_b)}
+    for b in range(0 if edges is None else edges.size - 1):
+        z_low, z_high = max(z_a, edges[b]), min(z_b, edges[b + 1])
+        if z_high > z_low:
+            parts[b + 1] = _interval_kernel(cosmology, target, counts, sums, drawn, ln_low, width,
+                                            3.0 * math.log1p(z_low), 3.0 * math.log1p(z_high))
+    return parts
+
+
+def _interval_kernel(cosmology, target, counts, sums, drawn, ln_low, width, s_a, s_b):
+    """(per group, the mean of F(L_m - ln n) over its points; the binning bound) for s in [s_a, s_b)."""
     n_points = drawn[:, None]
     s_table = np.linspace(s_a, s_b, _TABLE)
     one_plus_z = np.exp(s_table / 3.0)
@@ -274,11 +326,13 @@ def _piece_kernel(series, cosmology, target, z_a, z_b, low, high, weight, seed, 
     filled = np.flatnonzero(pooled)
     ln_n = sums[:, filled].sum(axis=0) / pooled[filled]
     # Masses in chunks: a (masses x bins) array at once would be 64 MB per copy for 128 masses.
-    out = np.empty((groups, target.size))
+    out = np.empty((counts.shape[0], target.size))
     filled_counts = counts[:, filled]
     for first in range(0, target.size, _MASS_CHUNK):
         s = target[first:first + _MASS_CHUNK, None] - ln_n[None, :]
-        values = np.where((s >= s_a) & (s < s_b), np.interp(s, s_table, f_table), 0.0)
+        inside = (s >= s_a) & (s < s_b)
+        values = np.zeros(s.shape)
+        values[inside] = np.interp(s[inside], s_table, f_table)  # only there: a bin's range is narrow
         out[:, first:first + _MASS_CHUNK] = filled_counts @ values.T / n_points
     # A bin cut by an edge of the piece may hold points on either side: bound their share.
     total = pooled / drawn.sum()

@@ -201,21 +201,22 @@ def write_convergence_page(convergence, path_stem, overwrite=False, rows=None):
     from pathlib import Path
 
     from raytrace.core.figures import pyplot
-    from raytrace.core.provenance import atomic_output, check_writable
+    from raytrace.core.provenance import atomic_output, check_outputs, output_set
 
     paths = {kind: Path(f"{path_stem}.{kind}") for kind in ("png", "pdf", "txt")}
-    for path in paths.values():
-        check_writable(path, overwrite)
+    check_outputs(paths.values(), overwrite)
     rows = range(convergence.mass_eV.size) if rows is None else rows
     text = "\n".join(convergence.lines(rows)) + "\n"
     plt = pyplot()
     figure = plot_convergence(convergence)
-    try:
-        for kind in ("png", "pdf"):
-            with atomic_output(paths[kind], overwrite) as temporary:
-                figure.savefig(temporary, format=kind, dpi=150, bbox_inches="tight")
-    finally:
-        plt.close(figure)
-    with atomic_output(paths["txt"], overwrite) as temporary:
-        temporary.write_text(text)
+    # The figure and the table appear together or not at all (a full disk leaves none of them).
+    with output_set():
+        try:
+            for kind in ("png", "pdf"):
+                with atomic_output(paths[kind], overwrite) as temporary:
+                    figure.savefig(temporary, format=kind, dpi=150, bbox_inches="tight")
+        finally:
+            plt.close(figure)
+        with atomic_output(paths["txt"], overwrite) as temporary:
+            temporary.write_text(text)
     return paths

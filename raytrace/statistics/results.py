@@ -9,18 +9,20 @@ and loaded from HDF5 with provenance (the file format is
 :mod:`raytrace.statistics.meancheck` attached by :func:`cast_sightlines`.
 """
 
-import json
+from functools import partial
 
 import numpy as np
 
-from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import open_result, read_group, rows_first, save_rows, write_rows
+from raytrace.core.errors import InputError, float_array
+from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_rows, write_rows
 from raytrace.physics.conversion import probability_from_kernel
+from raytrace.statistics.binstats import BinAccumulator, binned_group, read_binned
 from raytrace.statistics.meancheck import check_groups, mean_check, pdf_check_group, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
-from raytrace.statistics.onepoint import PdfMean
+from raytrace.statistics.onepoint import PER_MASS, PdfMean
 from raytrace.statistics.spread import Columns
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
+from raytrace.tracing.redshiftbins import DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES
 from raytrace.tracing.sightlines import FORMAT, SIGHTLINE_LAYOUT, trace_sightlines
 
 PERCENTILES = (2.5, 16.0, 50.0, 84.0, 97.5)
@@ -32,6 +34,8 @@ class KernelRows:
 
     #: The one-point-PDF mean over the same redshifts (:mod:`raytrace.statistics.meancheck`), when computed.
     pdf_check = None
+    #: The kernel per redshift bin and density class (:class:`raytrace.binstats.BinnedKernels`), when asked.
+    redshift_bins = None
 
     def mean_check(self):
         """The Monte Carlo mean against :attr:`pdf_check` per mass (a MeanCheck), or None without one."""
@@ -56,6 +60,17 @@ class KernelRows:
     def dispersion_measure(self):
         """DM to z_max in pc cm^-3 per row, boxes plus background."""
         return self.dispersion_measure_boxes + self.dispersion_measure_background
+
+    def saturates(self, epsilon, omega0_eV):
+        """Whether P = epsilon^2 K / omega_0 leaves the linear regime on some row and mass (then P is
+        given in the saturating form; :func:`raytrace.physics.conversion.needs_saturation` warns once)."""
+        from raytrace.physics.conversion import needs_saturation
+
+        cache = self.__dict__.setdefault("_saturation", {})
+        key = (float(epsilon), float(omega0_eV))
+        if key not in cache:
+            cache[key] = needs_saturation(self.kernel, epsilon, omega0_eV)
+        return cache[key]
 
     def tangent_events_per_row(self):
         """Mean number of near-tangent (Airy) events per row, per mass."""
@@ -104,6 +119,13 @@ class SightlineResult(KernelRows):
                       self.dispersion_measure_boxes, self.direction, self.tangent_events, self.kernel_tangent):
             array.flags.writeable = False
 
+    def stored_groups(self):
+        """The groups beside the per-ray arrays: the built-in check's and the redshift bins', where there are."""
+        groups = super().stored_groups()
+        if self.redshift_bins is not None:
+            groups["redshift_bins"] = binned_group(self.redshift_bins)
+        return groups
+
     def __repr__(self):
         return f"SightlineResult({self.n_rays} rays, {self._mass_range()})"
 
@@ -125,8 +147,11 @@ class SightlineResult(KernelRows):
         return np.sqrt(self.variance() / self.n_rays)
 
     def percentiles(self, q=PERCENTILES):
-        """Kernel percentiles between rays, shape (len(q), n_masses)."""
-        return np.percentile(self.kernel, q, axis=0)
+        """Kernel percentiles between rays, shape (len(q), n_masses) (``q`` one number: (n_masses,))."""
+        levels = float_array(q, "q (percentiles)")
+        if levels.size == 0 or not np.all(np.isfinite(levels) & (levels >= 0) & (levels <= 100)):
+            raise InputError(f"q (percentiles): expected percentiles from 0 to 100, got {q!r}")
+        return np.percentile(self.kernel, levels, axis=0)
 
     def variance_error(self, n_resamples=200, seed=0):
         """Bootstrap standard error of :meth:`variance`, per mass."""
@@ -140,8 +165,10 @@ class SightlineResult(KernelRows):
             samples[b] = kernel[pick].var(axis=0, ddof=1)
         return samples.std(axis=0, ddof=1)
 
-    def probability(self, epsilon, omega0_eV, saturate=False):
-        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``."""
+    def probability(self, epsilon, omega0_eV, saturate=None):
+        """P per ray and mass for mixing ``epsilon`` and observed photon energy ``omega0_eV``: linear,
+        or (``saturate`` None) in the saturating form where the linear one is not small (:meth:`saturates`)."""
+        saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
         return probability_from_kernel(self.kernel, epsilon, omega0_eV, saturate=saturate)
 
     def boxes_fraction(self):
@@ -166,13 +193,14 @@ class SightlineResult(KernelRows):
 
     @classmethod
     def from_file(cls, handle):
-        """The result an open, complete result file holds (read whole: a sightline run's rows fit in memory)."""
-        rows = {name: rows_first(handle[name]) for name in SIGHTLINE_LAYOUT if name in handle}
-        result = cls(handle["mass_eV"][...], rows["kernel_boxes"], handle["kernel_background"][...], rows["crossings"],
-                     rows["dispersion_measure_boxes"], handle.attrs["dispersion_measure_background"],
-                     rows["direction"], json.loads(handle.attrs["run"]), tangent_events=rows.get("tangent_events"),
-                     kernel_tangent=rows.get("kernel_tangent"))
-        result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean"), result.mass_eV)
+        """The result an open, complete result file holds, every piece checked (read whole: a sightline
+        run's rows fit in memory)."""
+        run, mass, arrays, dm_background = read_rows(handle, handle.filename, ROW_DATASETS + ("direction",))
+        result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
+                     arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
+                     tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+        result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
+        result.redshift_bins = read_binned(read_group(handle, "redshift_bins", mass.size))
         return result
 
 
@@ -200,7 +228,8 @@ def load_mean_result(path):
 
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                     batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, **removed):
+                    photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=DEFAULT_BIN_COUNT,
+                    density_classes=DEFAULT_DENSITY_EDGES, keep_ray_bins=False, **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Returns a :class:`SightlineResult` carrying its built-in check (the
@@ -229,12 +258,23 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     photon_energy_eV : observed photon energy (eV) at which near-tangent pairs take
         their Airy form (PHYSICS.md section 9); every other crossing's kernel is
         frequency-free. Default: k T_0.
+    redshift_bins : the kernel per redshift bin as well (:mod:`raytrace.tracing.redshiftbins`): a count
+        (equal steps in ln(1+z) over the boxes' redshifts, the background beyond in one bin;
+        default 16), edges in z, or None; the result's ``redshift_bins`` holds the mean,
+        variance and percentiles over rays per bin, per density class and per cumulative edge
+        (:class:`raytrace.statistics.binstats.BinnedKernels`)
+    density_classes : edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density classes
+        (default 1 and 100: voids, sheets and filaments, halos)
+    keep_ray_bins : also keep every ray's bins (rays x bins x masses) in the result
     """
     plasma = check_background(plasma)
     traced = trace_sightlines(series, mass_eV, n_rays, z_max, seed=seed, n_jobs=n_jobs,
                               include_background=include_background, z_boxes=z_boxes, batch_size=batch_size,
                               plasma=plasma, backend=backend, progress=progress, executor=executor,
-                              photon_energy_eV=photon_energy_eV, groups=check_groups(series, plasma, n_jobs),
-                              **removed)
-    with traced.stored as handle:
-        return warn_on_mismatch(SightlineResult.from_file(handle))
+                              photon_energy_eV=photon_energy_eV, redshift_bins=redshift_bins,
+                              density_classes=density_classes, groups=check_groups(series, plasma, n_jobs),
+                              reducer=partial(BinAccumulator.for_run, keep_rays=bool(keep_ray_bins)), **removed)
+    bins = None if traced.reducer is None else traced.reducer.finish()
+    with traced.backend.finish({} if bins is None else {"redshift_bins": binned_group(bins)}) as handle:
+        result = SightlineResult.from_file(handle)
+    return warn_on_mismatch(result)

@@ -131,7 +131,10 @@ def percentile_interval(samples, level=LEVEL):
     if not 0 < level < 1:
         raise InputError(f"level: expected a confidence level between 0 and 1, got {level!r}")
     tail = 50.0 * (1.0 - level)
-    low, high = np.nanpercentile(samples, [tail, 100.0 - tail], axis=0)
+    samples = np.asarray(samples, dtype=float)
+    low, high = np.full((2,) + samples.shape[1:], np.nan)
+    some = ~np.all(np.isnan(samples), axis=0)  # columns without one number (K = 0) have no interval
+    low[some], high[some] = np.nanpercentile(samples[:, some], [tail, 100.0 - tail], axis=0)
     return low, high
 
 
@@ -230,15 +233,24 @@ class Spread:
                 f"{self.mass_eV.size} masses: {shown}{more}; the variance there is set by a few rows, quote the "
                 "robust spreads")
 
-    def table(self, rows):
-        """Text lines for the masses ``rows``."""
+    def table(self, rows, kernel=None, row="row"):
+        """Text lines for the masses ``rows`` ('-' where a number does not exist; with the per-row ``kernel``
+        (:class:`Columns`), a mass that resonates on no row says so)."""
+        from raytrace.core.textcells import cell, no_resonance
+
         level = f"{100 * self.level:.0f}%"
         lines = [f"  {'m [eV]':>11} {'std/mean':>9} {level + ' interval':>19} {'top 1%':>7} "
                  f"{'tail index':>12} {'16-84 hw':>10} {'MAD':>10}"]
         for k in rows:
-            lines.append(f"  {self.mass_eV[k]:11.4g} {self.relative[k]:9.3g} "
-                         f"{self.relative_low[k]:9.3g}-{self.relative_high[k]:<9.3g} "
-                         f"{100 * self.top_share[k]:6.1f}% {self.tail_index[k]:6.2f}+-{self.tail_error[k]:<4.2f} "
+            empty = None if kernel is None else no_resonance(kernel.column(k), row)
+            if empty:
+                lines.append(f"  {self.mass_eV[k]:11.4g} {empty}")
+                continue
+            interval = (f"{self.relative_low[k]:.3g}-{self.relative_high[k]:.3g}"
+                        if np.isfinite(self.relative_low[k]) else "-")
+            tail = (f"{self.tail_index[k]:.2f}+-{self.tail_error[k]:.2f}" if np.isfinite(self.tail_index[k]) else "-")
+            lines.append(f"  {self.mass_eV[k]:11.4g} {cell(self.relative[k], '.3g', 9)} {interval:>19} "
+                         f"{cell(100 * self.top_share[k], '.1f', 6)}% {tail:>12} "
                          f"{self.half_width[k]:10.3g} {self.mad[k]:10.3g}")
         lines.append(f"  bootstrap: {self.n_resamples} resamples, seed {self.seed}; tail index: Hill estimator on the "
                      f"k = {int(np.max(self.tail_k))} largest values (k = floor(sqrt(rows)))")

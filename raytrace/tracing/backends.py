@@ -23,16 +23,26 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from raytrace.core.errors import InputError, RaytraceWarning, require_path
+from raytrace.core.errors import InputError, RaytraceWarning, WriteError, require_path
 from raytrace.core.provenance import (
+    after_outputs,
     atomic_output,
     check_writable,
+    hdf5_image,
     is_write_failure,
     move_into_place,
     output_folder,
     write_failure,
 )
-from raytrace.core.resultfiles import allocate, mark_complete, reserve_blocks, rows_index, write_rows
+from raytrace.core.resultfiles import (
+    _check_finite,
+    allocate,
+    mark_complete,
+    reserve_blocks,
+    rows_index,
+    write_group,
+    write_rows,
+)
 
 
 @dataclass(frozen=True)
@@ -107,18 +117,24 @@ class HDF5Backend:
         self.resume = resume
         self.overwrite = overwrite
 
-    def refuse_if_finished(self):
-        """With --resume, a result already in place beside its checkpoint means a kill came between the
-        final save and the checkpoint's removal: the run is done. Remove the leftover and say so."""
+    def finished(self):
+        """With --resume: whether the result is already in place beside its checkpoint, complete and of the
+        checkpoint's run (a kill came between the final save and the checkpoint's removal). If so the
+        leftover checkpoint is removed."""
         if not (self.resume and self.path.is_file() and self.checkpoint.is_file()):
-            return
+            return False
         try:
             with h5py.File(self.path, "r") as result, h5py.File(self.checkpoint, "r") as checkpoint:
                 finished = bool(result.attrs.get("complete", False)) and result.attrs["run"] == checkpoint.attrs["run"]
         except (OSError, KeyError):
-            return
+            return False
         if finished:
             os.unlink(self.checkpoint)
+        return finished
+
+    def refuse_if_finished(self):
+        """An InputError when :meth:`finished`: there is nothing left to resume."""
+        if self.finished():
             raise InputError(f"{self.path}: this run is already complete (a kill after its final save left "
                              f"{self.checkpoint.name}, now removed); nothing to resume")
 
@@ -243,8 +259,22 @@ class HDF5Backend:
             raise write_failure(self.checkpoint, error, "the checkpoint keeps the batches finished before; "
                                 "free space and continue with --resume") from None
 
-    def finish(self):
-        """Mark the file complete, put it in place and return it open for reading."""
+    def read_rows(self, start, stop, names):
+        """Rows start..stop of the arrays ``names`` (rows first), streamed ones included (a resume reduces
+        them again)."""
+        return {name: np.moveaxis(self.handle[name][rows_index(self.layout[name], start, stop)],
+                                  self.layout[name].rows_axis, 0) for name in names}
+
+    def finish(self, groups=None):
+        """Mark the file complete, put it in place and return it open for reading.
+
+        ``groups`` made after the run (``{name: (datasets, attributes)}``: a reduction of its batches), or
+        streamed arrays in its layout, need a result file apart: the checkpoint is copied into it without
+        the streamed arrays, with the groups; the checkpoint goes once the result is in place. Otherwise
+        the checkpoint itself is the result: its flag is set in place (one small write) and it is renamed.
+        """
+        if groups or any(entry.streamed for entry in self.layout.values()):
+            return self._finish_apart(groups or {})
         try:
             mark_complete(self.handle)
         except OSError as error:
@@ -256,6 +286,33 @@ class HDF5Backend:
             self.handle.close()
         finished = h5py.File(self.checkpoint, "r")
         move_into_place(self.checkpoint, self.path)
+        return finished
+
+    def _finish_apart(self, groups):
+        """The result as a copy of the checkpoint (its kept arrays, dataset by dataset) with ``groups``."""
+        try:
+            with atomic_output(self.path, overwrite=True) as temporary:
+                # Built in memory and written in one go (a sightline run's rows fit in memory): a full
+                # disk is a clean error, never HDF5 failing mid-file.
+                with hdf5_image(temporary) as result:
+                    for name, value in self.handle.attrs.items():
+                        if name != "header_sha256":
+                            result.attrs[name] = value
+                    for name in self.handle:
+                        if name not in self.layout or not self.layout[name].streamed:
+                            self.handle.copy(self.handle[name], result, name)
+                    for name, (datasets, attributes) in groups.items():
+                        write_group(result, name, datasets, attributes)
+                    _check_finite(result, self.path)
+                    result.attrs["complete"] = np.True_
+                finished = h5py.File(temporary, "r")
+        except WriteError as error:
+            raise WriteError(f"{error}; the checkpoint {self.checkpoint} keeps every batch: free space and "
+                             "finish with --resume") from None
+        finally:
+            self.handle.close()
+        # Inside an output set the checkpoint stays until every output of the run is in place.
+        after_outputs(lambda: os.unlink(self.checkpoint))
         return finished
 
 
@@ -279,13 +336,16 @@ class MemoryBackend(HDF5Backend):
                              "keeps them on disk")
 
     def open(self, mass_eV, n_rows, run, n_batches, layout, format_name, contents):
-        self.layout = layout
+        # Streamed arrays go only to a reducer: memory holds none of them (nothing resumes here).
+        self.layout = layout = {name: entry for name, entry in layout.items() if not entry.streamed}
         groups = contents.made_groups(run)
         self.path = self.checkpoint = Path(f"raytrace-run-{os.getpid()}-{next(self._files)}.h5 (in memory)")
         self.handle = h5py.File(self.checkpoint.name, "w", driver="core", backing_store=False)
         allocate(self.handle, format_name, mass_eV, run, layout, n_rows, contents.per_mass, contents.attributes,
                  groups, n_batches, self.path)
 
-    def finish(self):
+    def finish(self, groups=None):
+        for name, (datasets, attributes) in (groups or {}).items():
+            write_group(self.handle, name, datasets, attributes)
         mark_complete(self.handle)
         return self.handle

@@ -19,7 +19,10 @@ so the result is bit-identical to the serial run.
 
 A worker may leave at any time: the recipe is a task's result (recomputed when
 its holder leaves), a batch lost with its worker is submitted again, and a run
-left with no worker waits for one, saying so every 30 s.
+left with no worker waits for one, saying so every 30 s; a local cluster's
+workers are started again meanwhile, and after ``worker_timeout`` without any
+worker the run stops with one line (the finished batches stay in the
+checkpoint, for --resume). A scheduler that goes away stops the run the same way.
 
 dask and distributed are optional (``pip install 'raytrace[dist]'``); this
 module imports them only when an executor is made.
@@ -35,6 +38,11 @@ from raytrace.core.errors import InputError, RaytraceWarning, require_number
 _WHAT = "scheduler (--scheduler, TOML rays.scheduler)"
 _WAIT_S = 30.0     # seconds without a worker (or any finished batch) before saying so
 _MAX_LOSSES = 5    # times one batch may be lost with its worker before the run stops
+#: Seconds without any worker after which a run stops: a local cluster's workers are started again
+#: meanwhile, so this long means they cannot start; a remote cluster may be waiting for its batch jobs.
+LOCAL_WORKER_TIMEOUT_S = 300.0
+REMOTE_WORKER_TIMEOUT_S = 3600.0
+_RESTART_S = 60.0  # seconds without a worker before a local cluster's workers are started again (and between restarts)
 
 # Per worker process: the tracer of the latest run, keyed by the token of its recipe.
 # One run at a time is kept so that a long-lived worker does not hold old boxes.
@@ -112,12 +120,16 @@ class DaskExecutor:
     max_in_flight : tasks submitted but not yet collected (default: twice the
         cluster's threads, at least 4), which bounds the results held in memory.
     connect_timeout : seconds to wait for the scheduler at an address.
+    worker_timeout : seconds a run waits without any worker before it stops, the finished
+        batches kept (default: :data:`LOCAL_WORKER_TIMEOUT_S` for 'local',
+        :data:`REMOTE_WORKER_TIMEOUT_S` otherwise).
 
     Use as a context manager around the run (the connection, or the local
     cluster, lasts for the block); called outside one, it connects for the run.
     """
 
-    def __init__(self, scheduler, workers=None, numba_threads=1, max_in_flight=None, connect_timeout=30):
+    def __init__(self, scheduler, workers=None, numba_threads=1, max_in_flight=None, connect_timeout=30,
+                 worker_timeout=None):
         distributed = _distributed()
         if not isinstance(scheduler, (str, distributed.Client)) or scheduler == "":
             raise InputError(f"{_WHAT}: expected a scheduler address or 'local', got {scheduler!r}")
@@ -128,6 +140,9 @@ class DaskExecutor:
         if numba_threads == 0:
             raise InputError("numba_threads: expected a whole number >= 1 or -1 (all cores), got 0")
         connect_timeout = require_number(connect_timeout, "connect_timeout", above=0)
+        default = LOCAL_WORKER_TIMEOUT_S if scheduler == "local" else REMOTE_WORKER_TIMEOUT_S
+        self.worker_timeout = default if worker_timeout is None else require_number(worker_timeout, "worker_timeout",
+                                                                                     above=0)
         if workers is not None and scheduler != "local":
             raise InputError(f"workers (--workers, TOML rays.workers): sizes a local cluster only (--scheduler local), "
                              f"not the cluster at {scheduler!r}")
@@ -138,6 +153,8 @@ class DaskExecutor:
         self.connect_timeout = connect_timeout
         self.client = None
         self._owned = []
+        self._cluster = None  # the local cluster this executor started, whose workers it may start again
+        self._restarted = 0.0  # when its workers were last started again (time.monotonic)
 
     def __enter__(self):
         distributed = _distributed()
@@ -149,6 +166,7 @@ class DaskExecutor:
             cluster = distributed.LocalCluster(n_workers=0, threads_per_worker=1, processes=True)
             cluster.scale(self.workers or os.cpu_count())
             self._owned.append(cluster)
+            self._cluster = cluster
             self.client = distributed.Client(cluster)
             self._owned.insert(0, self.client)
         else:
@@ -164,6 +182,7 @@ class DaskExecutor:
             thing.close()
         self._owned = []
         self.client = None
+        self._cluster = None
 
     def prepare(self, tracer):
         """Refuse, before the run writes anything, a tracer the workers could not rebuild."""
@@ -211,9 +230,14 @@ class DaskExecutor:
                     done, _ = distributed.wait(list(where), timeout=_WAIT_S, return_when="FIRST_COMPLETED")
                 except TimeoutError:
                     done = ()
+                except distributed.client.FuturesCancelledError as error:
+                    self._refuse_if_scheduler_lost(client, error)
+                    done = [future for future in where if future.cancelled()]  # lost: submitted again below
                 if not done:
                     if not client.nthreads():
-                        self._say_waiting(quiet_since)
+                        self._no_workers(quiet_since)
+                    else:
+                        quiet_since = time.monotonic()
                     continue
                 quiet_since = time.monotonic()
                 for future in done:
@@ -226,11 +250,15 @@ class DaskExecutor:
                         continue
                     yield batch, start, arrays
                 top_up()
+        except (OSError, distributed.client.FuturesCancelledError) as error:  # the connection to the scheduler
+            self._refuse_if_scheduler_lost(client, error)
+            raise
         finally:
             # A failed batch or an abandoned run must not leave the cluster busy.
-            if where:
-                client.cancel(list(where))
-            client.cancel([shared])
+            if client.status == "running":
+                if where:
+                    client.cancel(list(where))
+                client.cancel([shared])
 
     @staticmethod
     def _submit_recipe(client, recipe, token):
@@ -260,12 +288,35 @@ class DaskExecutor:
                 client.wait_for_workers(1, timeout=_WAIT_S)
                 return
             except (TimeoutError, OSError):
-                self._say_waiting(started)
+                self._no_workers(started)
+
+    def _no_workers(self, since):
+        """No worker since ``since``: say so, start a local cluster's workers again, stop after worker_timeout."""
+        waited = time.monotonic() - since
+        if waited >= self.worker_timeout:
+            raise InputError(f"{_WHAT}: no dask worker at {self._address()} for {waited:.0f} s (worker_timeout "
+                             f"{self.worker_timeout:g} s); stopped: the finished batches are kept, rerun with "
+                             "--resume once workers can start")
+        self._say_waiting(since)
+        if self._cluster is not None and time.monotonic() - max(since, self._restarted) >= _RESTART_S:
+            # Workers killed while starting may never be replaced by their nannies: start fresh ones.
+            self._restarted = time.monotonic()
+            self._cluster.scale(0)
+            self._cluster.scale(self.workers or os.cpu_count())
 
     def _say_waiting(self, since):
+        restart = (f"; the local cluster's workers are started again every {_RESTART_S:g} s" if self._cluster is not None
+                   else "")
         warnings.warn(RaytraceWarning(
-            f"{_WHAT}: no dask worker at {self._address()} for {time.monotonic() - since:.0f} s; waiting for "
-            "one to join (the run goes on when one does; interrupt to stop, the finished batches are kept)"))
+            f"{_WHAT}: no dask worker at {self._address()} for {time.monotonic() - since:.0f} s{restart}; waiting "
+            f"up to {self.worker_timeout:g} s for one (interrupt to stop; the finished batches are kept)"))
+
+    def _refuse_if_scheduler_lost(self, client, error):
+        """One line (InputError) when the connection to the scheduler is gone; otherwise return."""
+        if client.status == "running" and client.scheduler_info().get("address"):
+            return
+        raise InputError(f"{_WHAT}: the dask scheduler at {self._address()} went away ({type(error).__name__}); "
+                         "the finished batches are kept: rerun with --resume") from None
 
     def _address(self):
         return self.scheduler if isinstance(self.scheduler, str) else "the given client's scheduler"

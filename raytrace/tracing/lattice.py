@@ -27,7 +27,7 @@ from raytrace.core.errors import InputError, require_number
 from raytrace.core.resultfiles import RowArray, result_bytes
 from raytrace.kernels.lattice import trace_lattice
 from raytrace.tracing.backends import MemoryBackend
-from raytrace.tracing.batches import Traced, run_batches
+from raytrace.tracing.batches import Traced, check_backend_and_executor, run_batches
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
     background_contents,
@@ -40,6 +40,7 @@ from raytrace.tracing.checks import (
     warn_outside_probed_range,
 )
 from raytrace.tracing.rays import CUBE_SYMMETRIES
+from raytrace.tracing.redshiftbins import background_by_bin, bin_edges, bin_setup
 from raytrace.tracing.sightlines import Tracer
 
 FORMAT = "raytrace-sky-2"
@@ -63,13 +64,18 @@ SKY_LAYOUT = {
 }
 
 
-def sky_layout(precision):
-    """:data:`SKY_LAYOUT` with its maps per mass stored in ``precision`` (one of :data:`PRECISIONS`)."""
+def sky_layout(precision, shells=None):
+    """The per-pixel arrays of a sky run: :data:`SKY_LAYOUT` with its maps per mass stored in ``precision``
+    (one of :data:`PRECISIONS`), and the maps of each redshift shell where there are shells."""
     if precision not in PRECISIONS:
         raise InputError(f"map_precision (--map-precision): expected one of {', '.join(PRECISIONS)}, got "
                          f"{precision!r}")
-    return {name: entry._replace(dtype=np.dtype(precision)) if entry.rows_axis else entry
-            for name, entry in SKY_LAYOUT.items()}
+    layout = {name: entry._replace(dtype=np.dtype(precision)) if entry.rows_axis else entry
+              for name, entry in SKY_LAYOUT.items()}
+    if shells is not None:
+        count = shells.n_bins
+        layout["kernel_shells_boxes"] = RowArray(lambda r, m: (r, count, m), np.float64)
+    return layout
 
 
 def _check_nside(nside):
@@ -102,8 +108,9 @@ class SkyTracer(Tracer):
     """What one batch of pixels needs; :meth:`trace` is a pure function of the pixel indices (in ``ordering``)."""
 
     def __init__(self, series, mass_eV, nside, rays_per_pixel, z_boxes, seed, photon_energy_eV, cosmology,
-                 randomise_copies=True, ordering="NESTED"):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+                 randomise_copies=True, shells=None, ordering="NESTED"):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, shells)
+        self.shells = shells
         self.nside = nside
         self.ordering = ordering
         self.level = _sub_pixel_level(rays_per_pixel)
@@ -137,10 +144,13 @@ class SkyTracer(Tracer):
                           directions, self.observer, float(geometry.box_size_cMpc), self.seed, self.copy_keys[box],
                           CUBE_SYMMETRIES, self.randomise, *self._physics_arguments(), out["kernel_boxes"],
                           out["crossings"], out["tangent_events"], out["kernel_tangent"],
-                          out["dispersion_measure_boxes"])
+                          out["dispersion_measure_boxes"], *self._cell_arguments(out))
         per_pixel = 4**self.level
-        return {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
-                for name, values in out.items()}
+        pixel = {name: values.reshape((len(pixels), per_pixel) + values.shape[1:]).mean(axis=1)
+                 for name, values in out.items()}
+        if self.shells is not None:
+            pixel["kernel_shells_boxes"] = self.shells.cells_to_bins(pixel["kernel_cells"])
+        return pixel
 
 
 @dataclass(frozen=True, eq=False)
@@ -170,8 +180,10 @@ class SkyPlan:
 
 def plan_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, include_background=True, z_boxes=None,
              ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, map_precision="float64", **removed):
-    """Check a sky run's arguments (those of :func:`raytrace.cast_sky`) and plan it: a :class:`SkyPlan`."""
+             photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, map_precision="float64", shells_z=None, **removed):
+    """Check a sky run's arguments (those of :func:`raytrace.cast_sky`) and plan it: a :class:`SkyPlan`.
+    With ``shells_z``, its layout holds each pixel's kernel per shell (``kernel_shells_boxes``), its run
+    record the shells' edges (``shell_edges_z``) and its file the group ``redshift_shells``."""
     check_no_other_options("cast_sky", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -180,10 +192,12 @@ def plan_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, include_ba
     level = _sub_pixel_level(rays_per_pixel)
     if not isinstance(ordering, str) or ordering not in ORDERINGS:
         raise InputError(f"ordering: expected 'RING' or 'NESTED', got {ordering!r}")
-    layout = sky_layout(map_precision)
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_pixels, "batch_pixels")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
+    shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
+    layout = sky_layout(map_precision, shells)
     run = {
         "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": 4**level,
         "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
@@ -191,15 +205,28 @@ def plan_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, include_ba
         "randomise_copies": bool(randomise_copies), "map_precision": map_precision,
         "blend": series.blend, "mass_eV": mass.tolist(),
         "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name,
+        "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
     }
     warn_outside_probed_range(series, mass, z_boxes)
     # Pixels are traced and stored in the result's own order: each is traced on its own,
     # so the maps are the same bits in RING or NESTED order, with no reordering pass.
     tracer = SkyTracer(series, mass, nside, 4**level, z_boxes, seed, photon_energy_eV, plasma.cosmology,
-                       randomise_copies, ordering)
+                       randomise_copies, shells, ordering)
     contents = background_contents(plasma, mass, z_boxes, z_max, include_background, None)
     return SkyPlan(tracer, mass, run, layout, contents, series, plasma)
+
+
+def shell_group(plan):
+    """The group ``redshift_shells`` of a sky with shells (their edges, the background's part of each), or {}."""
+    edges, run = plan.run["shell_edges_z"], plan.run
+    if edges is None:
+        return {}
+    by_shell, _ = background_by_bin(plan.plasma, plan.mass_eV, run["z_boxes"],
+                                    run["z_max"] if run["include_background"] else run["z_boxes"], np.array(edges))
+    return {"redshift_shells": ({
+        "edges_z": (np.array(edges), "1", "edges in z of the redshift shells of kernel_shells_boxes"),
+        "background": (by_shell, "eV", "the homogeneous background's kernel per shell and mass, the same in "
+                       "every pixel")}, {})}
 
 
 def trace_sky(series, mass_eV, nside, z_max, n_jobs=1, backend=None, progress=False, executor=None, groups=None,
@@ -208,9 +235,14 @@ def trace_sky(series, mass_eV, nside, z_max, n_jobs=1, backend=None, progress=Fa
     :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced` run."""
     plan = plan_sky(series, mass_eV, nside, z_max, **options)
     backend = backend if backend is not None else MemoryBackend()
+    check_backend_and_executor(backend, executor)
     backend.check_room(plan.result_bytes(), "pixels or masses (--nside, --mass-count; --map-precision float32 "
                                             "halves the maps)")
-    stored = run_batches(plan.tracer, backend, plan.mass_eV, plan.run, plan.layout, FORMAT,
-                         plan.n_pixels, plan.run["batch_pixels"], n_jobs, executor, progress,
-                         f"sky of {plan.n_pixels} pixels", replace(plan.contents, groups=groups))
-    return Traced(stored, plan.run, plan.series, plan.plasma, n_jobs)
+
+    def all_groups(run):  # the shells' group beside the caller's (the built-in check)
+        return {**shell_group(plan), **({} if groups is None else groups(run))}
+
+    run_batches(plan.tracer, backend, plan.mass_eV, plan.run, plan.layout, FORMAT, plan.n_pixels,
+                plan.run["batch_pixels"], n_jobs, executor, progress, f"sky of {plan.n_pixels} pixels",
+                replace(plan.contents, groups=all_groups))
+    return Traced(backend, plan.run, plan.series, plan.plasma, n_jobs)

@@ -21,7 +21,7 @@ from raytrace.core.resultfiles import RowArray, result_bytes
 from raytrace.kernels.sightlines import trace_pieces
 from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from raytrace.tracing.backends import MemoryBackend
-from raytrace.tracing.batches import Traced, run_batches
+from raytrace.tracing.batches import Traced, check_backend_and_executor, run_batches
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
     background_contents,
@@ -34,6 +34,7 @@ from raytrace.tracing.checks import (
     warn_outside_probed_range,
 )
 from raytrace.tracing.rays import draw_rays, plan_rays
+from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins, run_layout
 
 FORMAT = "raytrace-sightlines-2"
 
@@ -52,7 +53,7 @@ class Tracer:
     """What sightline and sky tracers share: the ray plan, the mass targets, the
     kernel's constants, and (for a cluster) their state without the boxes."""
 
-    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
+    def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
         self.boxes = series.boxes
         self.blend = bool(series.blend)
         self.redshifts = np.array([box.redshift for box in self.boxes])
@@ -64,6 +65,9 @@ class Tracer:
         spacing = np.diff(self.ln_targets)
         self.uniform = bool(spacing.size > 0 and np.allclose(spacing, spacing.mean(), rtol=1e-9, atol=0))
         self.photon_energy_eV = float(photon_energy_eV)
+        # Each crossing's kernel also goes to its redshift cell (raytrace.tracing.redshiftbins); none without bins.
+        self.cell_edges = np.zeros((mass_eV.size, 0)) if bins is None else bins.inner_opz
+        self.cell_count = 0 if bins is None else bins.n_cells
 
     #: Rays traced per row (a sky's pixel averages several).
     rays_per_row = 1
@@ -95,7 +99,12 @@ class Tracer:
                 "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "tangent_events": np.zeros((n_rows, n_masses), dtype=np.int32),
                 "kernel_tangent": np.zeros((n_rows, n_masses)),
-                "dispersion_measure_boxes": np.zeros(n_rows)}
+                "dispersion_measure_boxes": np.zeros(n_rows),
+                "kernel_cells": np.zeros((n_rows, self.cell_count, n_masses))}
+
+    def _cell_arguments(self, out):
+        """The last arguments of a kernel call: the cells' edges and the rows they fill."""
+        return self.cell_edges, out["kernel_cells"]
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -121,13 +130,13 @@ class RayTracer(Tracer):
     boxes' files); :meth:`trace` is a pure function of the ray indices.
     """
 
-    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology):
-        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology)
+    def __init__(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
+        self._set_up(series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins)
         self.n_cells = np.array([box.n_cells for box in self.boxes])
 
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
-        dispersion_measure_boxes, direction) for the given rays."""
+        dispersion_measure_boxes, kernel_cells, direction) for the given rays."""
         plan = self.plan
         ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
         out = self._outputs(len(ray_indices))
@@ -137,16 +146,23 @@ class RayTracer(Tracer):
             trace_pieces(*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
                          plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts,
                          directions, *self._physics_arguments(), out["kernel_boxes"], out["crossings"],
-                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"])
+                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"],
+                         *self._cell_arguments(out))
         out["direction"] = ray_direction
         return out
 
 
 def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                      batch_size=256, plasma=None, backend=None, progress=False, executor=None,
-                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, groups=None, **removed):
+                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=None,
+                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, groups=None, **removed):
     """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s, and
-    ``groups`` that of :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced`."""
+    ``groups`` that of :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced`.
+
+    With ``redshift_bins`` each ray's kernel also goes to its redshift cells, which the object
+    ``reducer(bins, mass_eV, plasma, z_end, kernel_background, n_rays)`` makes takes batch by batch
+    (``add(batch, start, arrays)``, :func:`raytrace.tracing.batches.run_batches`): the Traced run's ``reducer``.
+    """
     check_no_other_options("cast_sightlines", removed)
     series = as_series(series)
     mass = check_masses(mass_eV)
@@ -170,13 +186,22 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
     }
+    bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
+    run.update(bins.run_record() if bins is not None else {})
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology)
-    backend = backend if backend is not None else MemoryBackend()
-    n_batches = -(-n_rays // int(batch_size))
-    backend.check_room(result_bytes(SIGHTLINE_LAYOUT, n_rays, mass.size, n_batches),
-                       "rays or masses (--rays, --mass-count)")
+    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins)
     contents = background_contents(plasma, mass, z_boxes, z_max, include_background, groups)
-    stored = run_batches(tracer, backend, mass, run, SIGHTLINE_LAYOUT, FORMAT, n_rays, batch_size, n_jobs,
-                         executor, progress, f"{n_rays} sightlines", contents)
-    return Traced(stored, run, series, plasma, n_jobs)
+    reduce = None if bins is None or reducer is None else reducer(
+        bins, mass, plasma, z_max if include_background else z_boxes, contents.per_mass["kernel_background"], n_rays)
+    backend = backend if backend is not None else MemoryBackend()
+    check_backend_and_executor(backend, executor)
+    layout = run_layout(SIGHTLINE_LAYOUT, bins)
+    # With bins the checkpoint keeps each ray's cells and the result is written apart at the end: room for both.
+    kept = {name: entry for name, entry in layout.items() if not entry.streamed}
+    n_batches = -(-n_rays // int(batch_size))
+    backend.check_room(result_bytes(layout, n_rays, mass.size, n_batches)
+                       + (result_bytes(kept, n_rays, mass.size, n_batches) if len(kept) < len(layout) else 0),
+                       "rays or masses (--rays, --mass-count)")
+    run_batches(tracer, backend, mass, run, layout, FORMAT, n_rays, batch_size, n_jobs, executor, progress,
+                f"{n_rays} sightlines", contents, reduce)
+    return Traced(backend, run, series, plasma, n_jobs, reduce)
