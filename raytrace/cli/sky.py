@@ -79,6 +79,16 @@ def print_estimate(values, started):
           "(nothing traced or written)")
     for line in estimate.lines():
         print(line)
+    if values["output.path"]:  # the check the run makes before any work
+        from raytrace.core.errors import InputError
+        from raytrace.tracing.backends import HDF5Backend
+
+        try:
+            HDF5Backend(values["output.path"], resume=values["output.resume"]).check_room(
+                estimate.result_bytes, "pixels or masses")
+            print(f"disk: room for the result at {values['output.path']}")
+        except InputError as error:
+            print(f"disk: the run would be refused: {error}")
     return 0
 
 
