@@ -8,8 +8,8 @@ Data flow, one package per stage (each imports only the ones above it here)::
       -> tracing/                     rays through stacked, transformed copies -> per-row kernels
       -> statistics/                  SightlineResult: mean, spread, per redshift bin and density class;
                                       one-point-PDF mean and the built-in check
-      -> sky/                         HEALPix light cone, C_l, dT/T, FITS
-      -> limits/                      epsilon_max(m) from the CMB spectrum and the isotropy of the CMB;
+      -> sky/                         HEALPix light cone, dT/T, FITS; signal and noise from two splits per pixel
+      -> limits/                      epsilon_max(m) from the CMB spectrum and from the sky against the TT spectrum;
                                       dark radiation into photons (spectrum, excess, limits)
       -> report/, cli/                figures, the one-page report, the command line
 
@@ -53,6 +53,10 @@ _PUBLIC = {
     "cast_sky": "sky.maps",
     "SkyResult": "sky.maps",
     "spectral_limit": "limits.spectral",
+    "sky_spectra": "sky.spectra",
+    "anisotropy_limits": "limits.anisotropy",
+    "pixel_window": "sky.pixelwindow",
+    "planck_tt": "limits.cmbpower",
     "pdf_mean": "statistics.onepoint",
     "PdfMean": "statistics.onepoint",
     "degrade": "statistics.resolution",

@@ -52,7 +52,6 @@ def test_spread_check_of_a_sightline_result(tmp_path, demo_dir, capsys):
 @pytest.mark.parametrize("arguments, flag", [
     (["--resamples", "3"], "--resamples"),
     (["--level", "1.5"], "--level"),
-    (["--frequency", "160 GHz"], "--frequency"),
 ])
 def test_spread_check_refuses_bad_flags(tmp_path, demo_dir, capsys, arguments, flag):
     output = rays_file(tmp_path / "rays.h5", demo_dir, 8, np.array([1e-14, 2e-14]))

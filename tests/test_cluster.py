@@ -62,6 +62,9 @@ def cluster():
         yield local
 
 
+# A few hundred rays checked bin by bin against the one-point mean: a 4-sigma bin among 81 is expected now and
+# then, and bit-identity, not the mean, is the point here.
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_local_cluster_run_equals_serial_run_bit_for_bit(cluster, box_files, plasma, serial):
     series = raytrace.load_series([str(p) for p in box_files])
     held = []

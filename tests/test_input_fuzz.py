@@ -206,11 +206,13 @@ def test_random_run_files_through_settings_name_the_file_or_the_key(document):
             assert_matches_schema(found)
             for key, value in found.items():
                 option = KNOWN[key]
-                # The schema's bounds (at_least inclusive, above exclusive) hold for what is accepted.
-                if value is not None and option.at_least is not None:
-                    assert value >= option.at_least
-                if value is not None and option.above is not None:
-                    assert value > option.above
+                # The schema's bounds (at_least inclusive, above exclusive) hold for what is accepted: for a
+                # listable option given a list (edges), for each of its values.
+                for each in (value if option.listable and isinstance(value, list) else [value]):
+                    if each is not None and option.at_least is not None:
+                        assert each >= option.at_least
+                    if each is not None and option.above is not None:
+                        assert each > option.above
 
 
 flag_options = [option for option in SIGHTLINE_OPTIONS if option.kind is not bool]

@@ -1,11 +1,14 @@
 """The one-page report (raytrace.report.page, ``raytrace report``), the limits CLI on a result file and the
-anisotropy-limit curve, against numbers computed here from the stored arrays.
+anisotropy-limit curves of a sky's quick look and of a C_l table, against numbers computed here from
+the stored arrays.
 
 Sources: the result files' arrays read with h5py (not through SightlineResult / SkyResult); the
 spectral limit of raytrace.limits.spectral (itself checked in tests/test_limits.py against astropy's
 blackbody and scipy); PHYSICS.md section 6 for dT/T = -epsilon^2 K / omega_0 (1 - e^-x)/x with
-x = h nu / (k T_0), T_0 = 2.72548 K (Fixsen 2009, ApJ 707, 916), k from astropy (CODATA 2018);
-healpy.anafast for C_l; numpy.percentile for the sightline quantiles.
+x = h nu / (k T_0), T_0 = 2.72548 K (Fixsen 2009, ApJ 707, 916), k and h from astropy (CODATA 2018);
+section 10 for the signal of the two splits (their covariance over pixels, their cross-spectrum
+with healpy.anafast); numpy.percentile for the sightline quantiles. The measured-spectrum limit is
+tests/test_sky_signal.py's.
 """
 
 import argparse
@@ -27,15 +30,30 @@ from raytrace.boxes import Box
 from raytrace.cli import limits as limits_cli
 from raytrace.cli import report as report_cli
 from raytrace.core.errors import InputError, ProbedRangeWarning, RaytraceWarning
-from raytrace.limits.anisotropy import anisotropy_curve
+from raytrace.limits.anisotropy import rms_limit, table_limit
 from raytrace.limits.spectral import UnconstrainedMassWarning, spectral_limit
 from raytrace.physics.background import MeanPlasma
 from raytrace.report.page import DPI, PAGE_WIDTH_IN, histogram_masses, make_report
 from raytrace.sky.maps import SkyResult
+from raytrace.sky.pixelwindow import pixel_window
 
 T0_K = 2.72548  # Fixsen 2009
 K_EV_PER_K = const.k_B.to_value(u.eV / u.K)
 OMEGA0_EV = K_EV_PER_K * T0_K  # the default photon energy, k T_0
+SKY_OMEGA0_EV = (const.h * 143 * u.GHz).to_value(u.eV)  # the anisotropy limits' default, 143 GHz
+
+
+def split_dtt(stored, omega0):
+    """dT/T at epsilon = 1 of the two split maps (the boxes' kernel; the background adds a constant)."""
+    x = omega0 / (K_EV_PER_K * T0_K)
+    return stored["sky_splits"] / omega0 * (1 - np.exp(-x)) / x
+
+
+def signal_rms(stored, omega0):
+    """The sky's signal rms of dT/T: the covariance of its two splits over pixels (PHYSICS.md s.10)."""
+    a, b = split_dtt(stored, omega0)[:, 0], split_dtt(stored, omega0)[:, 1]
+    covariance = ((a - a.mean(axis=0)) * (b - b.mean(axis=0))).mean(axis=0)
+    return np.sqrt(np.clip(covariance, 0, None))
 
 
 def lognormal_box(plasma, cells=16, seed=4):
@@ -72,9 +90,11 @@ def stored(run_files):
                                                        "dispersion_measure_boxes")}
         arrays["dm_background"] = float(handle.attrs["dispersion_measure_background"])
     with h5py.File(sky_path, "r") as handle:
-        # A sky's maps are stored mass-major: its pixels on axis 1 (the dataset's attribute rows_axis).
-        assert handle["kernel_boxes"].attrs["rows_axis"] == 1
+        # A sky's maps are stored mass-major: its pixels on axis 1 (the dataset's attribute rows_axis), and
+        # each split's maps (masses, splits, pixels): the pixels on axis 2.
+        assert handle["kernel_boxes"].attrs["rows_axis"] == 1 and handle["kernel_splits"].attrs["rows_axis"] == 2
         arrays["sky_kernel"] = handle["kernel_boxes"][...].T + handle["kernel_background"][...][None, :]
+        arrays["sky_splits"] = handle["kernel_splits"][...].transpose(2, 1, 0)  # (pixels, splits, masses)
     arrays["kernel"] = arrays["kernel_boxes"] + arrays["kernel_background"][None, :]
     return arrays
 
@@ -84,6 +104,9 @@ def heavy_tail():
     return pytest.warns(RaytraceWarning, match="the top 1 % of rows carry more than 50 % of the variance")
 
 
+# 40 rays through a heavy-tailed box, made so one ray carries most of the variance: its per-bin means
+# stray from the one-point mean by design.
+@pytest.mark.filterwarnings("ignore::raytrace.statistics.meancheck.MeanCheckWarning")
 def test_the_run_has_masses_where_one_ray_carries_most_of_the_variance(stored):
     # The fixture's 40 rays: at some masses the largest K alone carries over half of sum (K - mean)^2
     # (numpy here), so the report must warn, as heavy_tail() expects of every make_report below.
@@ -114,9 +137,10 @@ def test_report_writes_png_pdf_and_text(report_paths):
     for kind in ("png", "pdf", "txt"):
         assert report_paths[kind].stat().st_size > 0
     image = matplotlib.image.imread(report_paths["png"])
-    # A page PAGE_WIDTH_IN wide at DPI, taller than wide with the sky's row (portrait).
+    # A page PAGE_WIDTH_IN wide at DPI, taller than wide with the sky's row (portrait); the sky's signal
+    # and noise lines make it longer than A4's 1.41.
     assert image.shape[1] == round(PAGE_WIDTH_IN * DPI)
-    assert image.shape[1] < image.shape[0] < 1.6 * image.shape[1]
+    assert image.shape[1] < image.shape[0] < 1.8 * image.shape[1]
     assert image[..., :3].std() > 0.05  # something is drawn, not a blank page
     assert report_paths["pdf"].read_bytes().startswith(b"%PDF")  # the PDF format's own header
 
@@ -226,7 +250,9 @@ def test_limits_cli_from_a_result_file(run_files, stored, capsys):
         warnings.simplefilter("ignore", UnconstrainedMassWarning)
         assert limits_cli.run(parse(limits_cli, ["--result", str(result_path), "--sky", str(sky_path),
                                                  "--output", str(table)])) == 0
-    assert "sky rms < 1e-5 in dT/T" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert "sky quick look: signal rms < 1e-5 in dT/T at 143 GHz" in printed
+    assert "measured TT spectrum (l 2-8) at 143 GHz" in printed and "component separation" in printed
     columns = read_csv(table)
     mass = stored["mass_eV"]
     np.testing.assert_allclose(columns["mass_eV"], mass, rtol=1e-9)  # the CSV keeps 10 digits
@@ -237,14 +263,18 @@ def test_limits_cli_from_a_result_file(run_files, stored, capsys):
         np.testing.assert_allclose(columns[f"sightline_p{percent}_epsilon_max"],
                                    as_table(quiet_limits(mass, np.percentile(stored["kernel"], percent, axis=0))),
                                    rtol=1e-9)
-    # The anisotropy column: sqrt(threshold / rms of dT/T at epsilon = 1), PHYSICS.md section 6.
-    x = OMEGA0_EV / (K_EV_PER_K * T0_K)
-    rms = (stored["sky_kernel"] / OMEGA0_EV * (1 - np.exp(-x)) / x).std(axis=0)
-    varies = np.ptp(stored["sky_kernel"], axis=0) > 0
+    # The quick-look column: sqrt(threshold / signal rms of dT/T at epsilon = 1), PHYSICS.md sections 6, 10.
+    rms = signal_rms(stored, SKY_OMEGA0_EV)
+    varies = rms > 0
     assert varies.sum() > 10
-    np.testing.assert_allclose(columns["anisotropy_epsilon_max"][varies], np.sqrt(1e-5 / rms[varies]), rtol=1e-9)
-    assert np.all(np.isnan(columns["anisotropy_epsilon_max"][~varies]))  # empty fields
-    assert [bool(reason) for reason in columns["anisotropy_unconstrained"]] == (~varies).tolist()
+    np.testing.assert_allclose(columns["anisotropy_rms_epsilon_max"][varies], np.sqrt(1e-5 / rms[varies]), rtol=1e-9)
+    assert np.all(np.isnan(columns["anisotropy_rms_epsilon_max"][~varies]))  # empty fields
+    assert [bool(reason) for reason in columns["anisotropy_rms_unconstrained"]] == (~varies).tolist()
+    # The measured-spectrum limit and its band sit beside it, the band around it.
+    finite = np.isfinite(columns["anisotropy_epsilon_max"]) & np.isfinite(columns["anisotropy_high_epsilon_max"])
+    assert finite.sum() > 10
+    assert np.all(columns["anisotropy_low_epsilon_max"][finite] <= columns["anisotropy_epsilon_max"][finite])
+    assert np.all(columns["anisotropy_epsilon_max"][finite] <= columns["anisotropy_high_epsilon_max"][finite])
 
 
 def test_limits_cli_sky_options_need_matching_masses(run_files):
@@ -268,41 +298,52 @@ def test_limits_cli_without_masses_takes_the_documented_grid(capsys):
 # -- the anisotropy curve ---------------------------------------------------------------------------
 
 
-def test_anisotropy_curve_scales_as_the_square_root_of_the_threshold(run_files, stored):
+def test_quick_look_scales_as_the_square_root_of_the_threshold(run_files, stored):
     sky = SkyResult.load(run_files[2])
-    omega0 = 6.6e-4  # 160 GHz in eV
-    base, four = anisotropy_curve(sky, omega0, threshold=1e-5), anisotropy_curve(sky, omega0, threshold=4e-5)
+    omega0 = (const.h * 160 * u.GHz).to_value(u.eV)
+    base, four = rms_limit(sky, omega0, threshold=1e-5), rms_limit(sky, omega0, threshold=4e-5)
     finite = np.isfinite(base.epsilon_max)
     assert finite.sum() > 10
     # dT/T goes as epsilon^2: four times the threshold allows twice the epsilon.
     np.testing.assert_allclose(four.epsilon_max[finite] / base.epsilon_max[finite], 2.0, rtol=1e-12)
-    x = omega0 / (K_EV_PER_K * T0_K)
-    rms = (stored["sky_kernel"] / omega0 * (1 - np.exp(-x)) / x).std(axis=0)
+    # From the splits' covariance, never the raw map (whose rms the rays' noise inflates).
+    rms = signal_rms(stored, omega0)
     np.testing.assert_allclose(base.epsilon_max[finite], np.sqrt(1e-5 / rms[finite]), rtol=1e-9)
-    assert base.label.startswith("sky rms < 1e-5 in dT/T at 160 GHz")
-    assert base.metadata()["kind"] == "CMB anisotropy" and set(base.columns()) == {"epsilon_max"}
+    x = omega0 / (K_EV_PER_K * T0_K)
+    raw = (stored["sky_kernel"] / omega0 * (1 - np.exp(-x)) / x).std(axis=0)
+    assert np.all(raw[finite] > rms[finite])
+    assert base.label.startswith("sky quick look: signal rms < 1e-5 in dT/T at 160 GHz")
+    assert base.metadata()["kind"] == "CMB anisotropy" and set(base.columns()) == {"epsilon_max", "signal_rms_dT_T"}
 
 
-def test_anisotropy_curve_from_a_cl_table(run_files, stored, tmp_path):
+def test_limit_from_a_cl_table(run_files, stored, tmp_path):
     sky = SkyResult.load(run_files[2])
     ells = np.arange(1, 3 * sky.nside)
     table = tmp_path / "cl_limits.txt"
     np.savetxt(table, np.column_stack([ells, np.full(ells.size, 1e-12)]), header="l, C_l limit in (dT/T)^2")
-    curve = anisotropy_curve(sky, cl_limits=table)
-    assert curve.label.startswith("C_l limits from cl_limits.txt")
-    # Reference: healpy.anafast of the dT/T map at epsilon = 1 (monopole removed), C_l going as
-    # epsilon^4, so epsilon_max = min_l (limit / C_l)^(1/4).
-    x = OMEGA0_EV / (K_EV_PER_K * T0_K)
-    for k in (8, 12, 16):
-        dtt = -stored["sky_kernel"][:, k] / OMEGA0_EV * (1 - np.exp(-x)) / x
-        cl = healpy.anafast(dtt - dtt.mean(), lmax=ells[-1])
-        assert curve.epsilon_max[k] == pytest.approx(np.min(1e-12 / cl[ells]) ** 0.25, rel=1e-9)
+    curve = table_limit(sky, SKY_OMEGA0_EV, table)
+    assert curve.label.startswith("sky: C_l limits from cl_limits.txt")
+    # Reference: the signal spectrum, healpy.anafast of the two split dT/T maps at epsilon = 1 (RING
+    # maps, monopoles removed) over the pixel window squared, C_l going as epsilon^4, so epsilon_max =
+    # min over the resolved l <= 2 nside where C_l > 0 of (limit / C_l)^(1/4).
+    splits = split_dtt(stored, SKY_OMEGA0_EV)
+    resolved = ells[ells <= 2 * sky.nside]
+    checked = 0
+    for k in range(sky.mass_eV.size):
+        a, b = (splits[:, i, k] - splits[:, i, k].mean() for i in (0, 1))
+        cl = healpy.anafast(a, b, lmax=ells[-1]) / pixel_window(sky.nside, ells[-1]) ** 2
+        positive = cl[resolved] > 0
+        if positive.any() and np.ptp(stored["sky_kernel"][:, k]) > 0:
+            expected = np.min(1e-12 / cl[resolved][positive]) ** 0.25
+            assert curve.epsilon_max[k] == pytest.approx(expected, rel=1e-9)
+            checked += 1
+    assert checked > 10
     # Limits sixteen times looser allow twice the epsilon.
-    looser = anisotropy_curve(sky, cl_limits=np.column_stack([ells, np.full(ells.size, 16e-12)]))
+    looser = table_limit(sky, SKY_OMEGA0_EV, np.column_stack([ells, np.full(ells.size, 16e-12)]))
     finite = np.isfinite(curve.epsilon_max)
     np.testing.assert_allclose(looser.epsilon_max[finite] / curve.epsilon_max[finite], 2.0, rtol=1e-12)
-    with pytest.raises(InputError, match="threshold"):
-        anisotropy_curve(sky, threshold=1e-5, cl_limits=table)
+    with pytest.raises(InputError, match="cl_limits"):
+        table_limit(sky, SKY_OMEGA0_EV, np.column_stack([ells, -np.ones(ells.size)]))
 
 
 # -- the report CLI ---------------------------------------------------------------------------------

@@ -19,10 +19,9 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.core.errors import InputError
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
-from raytrace.sky.maps import SkyResult
 from raytrace.statistics.onepoint import pdf_mean
 from raytrace.statistics.resolution import degrade, resolution_convergence, richardson, write_convergence_page
-from raytrace.statistics.spread import hill_index, relative_spread_interval, sky_rms_interval, spread, top_share
+from raytrace.statistics.spread import hill_index, relative_spread_interval, spread, top_share
 
 
 @pytest.fixture(scope="module")
@@ -162,14 +161,3 @@ def test_top_share_and_robust_spreads():
     assert found.mad[0] == 0.0 and found.half_width[0] == 0.0  # median absolute deviation of a constant bulk
     with pytest.raises(InputError, match="at least 2 rows"):
         spread(np.ones((1, 3)), np.ones(3))
-
-
-def test_sky_rms_interval_contains_the_map_rms():
-    kernel = np.random.default_rng(3).lognormal(0, 0.4, (768, 2)) * 1e5  # the interval needs only these maps
-    sky = SkyResult([1e-14, 2e-14], kernel, np.zeros(2), np.zeros((768, 2)), np.zeros(768), 0.0,
-                    {"nside": 8, "ordering": "RING", "z_max": 1.0})
-    interval = sky_rms_interval(sky, 2.35e-4, n_resamples=200, seed=1)
-    assert np.all(interval["rms_low"] < interval["rms"]) and np.all(interval["rms"] < interval["rms_high"])
-    assert np.all(interval["epsilon_low"] < interval["epsilon_max"])
-    # epsilon_max = sqrt(threshold / rms) (raytrace.limits.anisotropy.anisotropy_limit's rule, PHYSICS.md s.6).
-    np.testing.assert_allclose(interval["epsilon_max"], np.sqrt(1e-5 / interval["rms"]))

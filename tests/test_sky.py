@@ -28,9 +28,9 @@ import raytrace
 from raytrace.boxes import Box, BoxSeries
 from raytrace.core.errors import InputError, ProbedRangeWarning
 from raytrace.kernels.geometry import copy_transform
-from raytrace.limits.anisotropy import anisotropy_limit, read_cl_limits
+from raytrace.limits.anisotropy import read_cl_limits
 from raytrace.physics.background import MeanPlasma
-from raytrace.physics.conversion import ISOTROPY_LEVEL, photon_x
+from raytrace.physics.conversion import photon_x
 from raytrace.physics.ionisation import IonisationHistory
 from raytrace.sky.maps import SkyResult
 from raytrace.statistics.meancheck import MeanCheckWarning, mean_check
@@ -72,6 +72,9 @@ def structured_box(plasma, n_com):
 
 
 def structured_sky(box, plasma, nside, seed=0, **options):
+    # The light cone's geometry and statistics are tested on plain maps, one ray at each pixel's centre
+    # (the one-ray fallback); the splits of several rays per pixel are test_sky_signal.py's.
+    options.setdefault("rays_per_pixel", 1)
     with warnings.catch_warnings():
         # A sky is one observer's correlated light cone: its built-in MC/PDF check may flag a mass by nature
         # (the warning says so); test_sky_mean_agrees_with_the_one_point_pdf_integral compares over seeds.
@@ -92,7 +95,7 @@ def seeded_skies(structured_box, plasma):
 
 @pytest.fixture(scope="module")
 def small_sky(structured_box, plasma):
-    return structured_sky(structured_box, plasma, 4, seed=5)
+    return structured_sky(structured_box, plasma, 4, seed=5, rays_per_pixel=4)
 
 
 def homogeneous_kernel(mass, n_com):
@@ -230,7 +233,7 @@ def layered_sky(box, plasma, randomise, ordering="RING"):
         # built-in MC/PDF check may warn; the lattice's symmetry is the subject.
         warnings.simplefilter("ignore", MeanCheckWarning)
         return raytrace.cast_sky(box, LAYERED_MASSES, 8, 0.2, seed=3, include_background=False, plasma=plasma,
-                                 randomise_copies=randomise, ordering=ordering)
+                                 randomise_copies=randomise, ordering=ordering, rays_per_pixel=1)
 
 
 # The built-in check flags the untransformed lattice's sky: its copies repeat exactly, so the 12 faces
@@ -435,51 +438,7 @@ def test_sky_result_saves_and_loads(small_sky, tmp_path):
     assert loaded.run["seed"] == small_sky.run["seed"]
 
 
-# -- anisotropy test ------------------------------------------------------------------------------
-def test_rms_limit_scales_with_threshold_and_kernel(small_sky):
-    omega0 = 2.35e-4
-    # dT/T is proportional to epsilon^2 K (PHYSICS.md sections 2 and 6), so at epsilon_max the
-    # map's rms (monopole removed) equals the threshold; epsilon_max goes as threshold^(1/2)
-    # and as K^(-1/2).
-    base = anisotropy_limit(small_sky, omega0)["epsilon_max_rms"]
-    assert np.all(np.isfinite(base))
-    for k, mass in enumerate(small_sky.mass_eV):
-        rms = small_sky.temperature_anisotropy(mass, base[k], omega0).std()
-        assert rms == pytest.approx(ISOTROPY_LEVEL, rel=1e-9)
-    np.testing.assert_allclose(anisotropy_limit(small_sky, omega0, threshold=4e-5)["epsilon_max_rms"],
-                               base * 2, rtol=1e-12)
-    doubled = SkyResult(small_sky.mass_eV, 2 * small_sky.kernel_boxes, 2 * small_sky.kernel_background,
-                        small_sky.crossings, small_sky.dispersion_measure_boxes, 0.0, small_sky.run)
-    np.testing.assert_allclose(anisotropy_limit(doubled, omega0)["epsilon_max_rms"], base / np.sqrt(2), rtol=1e-12)
-    # A map without anisotropy sets no limit.
-    flat = hand_made_sky(np.full((healpy.nside2npix(4), 1), 2.2e5))  # its dT/T map has np.std 1e-7, not 0
-    limits = anisotropy_limit(flat, omega0, cl_limits=[[2, 1e-10], [3, 1e-10]])
-    assert limits["epsilon_max_rms"][0] == np.inf and limits["epsilon_max_cl"][0] == np.inf
-
-
-def test_cl_limit_scales_as_the_fourth_root_and_touches_the_table(small_sky):
-    omega0 = 2.35e-4
-    ell = np.arange(1, 12)
-    table = np.column_stack([ell, 1e-10 * (1 + 0.1 * ell)])
-    base = anisotropy_limit(small_sky, omega0, cl_limits=table)["epsilon_max_cl"]
-    assert np.all(np.isfinite(base))
-    # C_l of dT/T goes as epsilon^4: at epsilon_max the spectrum (healpy.anafast of the RING map
-    # minus its mean) touches the table at one l and stays below it elsewhere.
-    for k, mass in enumerate(small_sky.mass_eV):
-        dtt = small_sky.temperature_anisotropy(mass, base[k], omega0)
-        cl = healpy.anafast(dtt - dtt.mean(), lmax=11)[ell]
-        assert np.max(cl / table[:, 1]) == pytest.approx(1.0, rel=1e-9)
-    scaled = anisotropy_limit(small_sky, omega0, cl_limits=table * [1, 16])["epsilon_max_cl"]
-    np.testing.assert_allclose(scaled, 2 * base, rtol=1e-12)
-    # Multipoles beyond the map's 3 nside - 1 are not measured and do not count.
-    beyond = np.vstack([table, [50, 1e-30]])
-    np.testing.assert_array_equal(anisotropy_limit(small_sky, omega0, cl_limits=beyond)["epsilon_max_cl"], base)
-    with pytest.raises(InputError, match="cl_limits"):
-        anisotropy_limit(small_sky, omega0, cl_limits=table * [1, -1])
-    with pytest.raises(InputError, match="threshold"):
-        anisotropy_limit(small_sky, omega0, threshold=0.0)
-
-
+# -- C_l tables ----------------------------------------------------------------------------------
 def test_cl_limit_tables_are_read_and_bad_ones_refused(tmp_path):
     good = tmp_path / "good.txt"
     good.write_text("# l  C_l limit\n2 1e-10\n3 2e-10\n")
@@ -521,34 +480,12 @@ def test_ring_and_nested_are_the_same_map_reordered(structured_box, plasma):
     np.testing.assert_array_equal(healpy.reorder(nested.dispersion_measure, n2r=True), ring.dispersion_measure)
 
 
-def test_sub_pixel_rays_average_the_finer_map(structured_box, plasma):
-    # The observer and the copy transforms depend on the seed and the boxes only, so the 4 rays
-    # of a pixel at nside 4 are the rays of its 4 NESTED children at nside 8; healpy.ud_grade
-    # degrades a map by averaging those children.
-    # The rays of a pixel are the centres of its NESTED children at 2 nside (healpy).
-    tracer = SkyTracer(BoxSeries([structured_box]), STRUCTURED_MASSES, 4, 4, STRUCTURED_Z_MAX, 6, 0.5,
-                                    plasma.cosmology)
-    directions = tracer.ray_directions(np.arange(192))
-    np.testing.assert_array_equal(healpy.vec2pix(4, *directions.T, nest=True), np.repeat(np.arange(192), 4))
-    np.testing.assert_allclose(directions, np.array(healpy.pix2vec(8, np.arange(768), nest=True)).T, atol=1e-15)
-    coarse = structured_sky(structured_box, plasma, 4, seed=6, rays_per_pixel=4, ordering="NESTED")
-    fine = structured_sky(structured_box, plasma, 8, seed=6, ordering="NESTED")
-    for k in range(STRUCTURED_MASSES.size):
-        degraded = healpy.ud_grade(fine.kernel[:, k], 4, order_in="NESTED", order_out="NESTED")
-        np.testing.assert_allclose(coarse.kernel[:, k], degraded, rtol=1e-12, atol=0)
-    degraded = healpy.ud_grade(fine.dispersion_measure, 4, order_in="NESTED", order_out="NESTED")
-    np.testing.assert_allclose(coarse.dispersion_measure, degraded, rtol=1e-12)
-    single = structured_sky(structured_box, plasma, 4, seed=6, ordering="NESTED")
-    assert not np.allclose(single.kernel, coarse.kernel)
-
-
 # -- bad input ------------------------------------------------------------------------------------
 @pytest.mark.parametrize("option, value, message", [
     ("nside", 3, "nside"), ("nside", 6, "nside"), ("nside", 0, "nside"), ("nside", -4, "nside"),
     ("nside", 4.0, "nside"), ("nside", True, "nside"),
-    ("rays_per_pixel", 0, "rays_per_pixel"), ("rays_per_pixel", 2, "rays_per_pixel"),
-    ("rays_per_pixel", 8, "rays_per_pixel"), ("rays_per_pixel", -4, "rays_per_pixel"),
-    ("rays_per_pixel", 4.0, "rays_per_pixel"),
+    ("rays_per_pixel", 0, "rays_per_pixel"), ("rays_per_pixel", -4, "rays_per_pixel"),
+    ("rays_per_pixel", 4.0, "rays_per_pixel"), ("rays_per_pixel", True, "rays_per_pixel"),
     ("ordering", "GALACTIC", "ordering"), ("ordering", "", "ordering"),
     ("z_max", 0.0, "z_max"), ("z_max", -0.5, "z_max"), ("z_max", float("nan"), "z_max"),
     ("z_max", float("inf"), "z_max"), ("z_max", "1", "z_max"),

@@ -25,17 +25,18 @@ import raytrace
 from raytrace.boxes import load_series
 from raytrace.cli import main
 from raytrace.core.errors import InputError
-from raytrace.limits.anisotropy import anisotropy_limit
+from raytrace.limits.anisotropy import table_limit
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
 from raytrace.sky import fits as fitsmaps
 from raytrace.sky.maps import SkyResult
+from raytrace.sky.spectra import sky_spectra
 from raytrace.tracing import backends
 from raytrace.tracing.backends import HDF5Backend
 from raytrace.tracing.lattice import SkyTracer
 
 MASS = np.geomspace(1.2e-14, 6e-14, 7)
-OPTIONS = dict(nside=8, z_max=0.6, include_background=False, seed=4)
+OPTIONS = dict(nside=8, z_max=0.6, include_background=False, seed=4, rays_per_pixel=4)
 MAPS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent")
 
 
@@ -60,8 +61,8 @@ def series(box_files):
 def whole(request, series, plasma):
     """(ordering, per-pixel arrays): every pixel traced in one call of the tracer, in memory."""
     ordering = request.param
-    tracer = SkyTracer(series, MASS, OPTIONS["nside"], 1, OPTIONS["z_max"], OPTIONS["seed"], 2.35e-4,
-                       plasma.cosmology, True, ordering=ordering)
+    tracer = SkyTracer(series, MASS, OPTIONS["nside"], OPTIONS["rays_per_pixel"], OPTIONS["z_max"], OPTIONS["seed"],
+                       2.35e-4, plasma.cosmology, True, ordering=ordering)
     arrays = tracer.trace(np.arange(12 * OPTIONS["nside"] ** 2))
     assert arrays["crossings"].sum() > 1000  # resonances happen: equality below is not between zeros
     return ordering, arrays
@@ -79,11 +80,14 @@ def test_streamed_maps_equal_the_whole_sky_traced_in_memory(series, plasma, whol
         for name in MAPS:
             for k in range(MASS.size):
                 assert np.array_equal(sky.map(name, k), arrays[name][:, k]), (name, k)
+        for k in range(MASS.size):  # each split's maps, streamed as (masses, splits, pixels)
+            assert np.array_equal(sky.split_maps(k), arrays["kernel_splits"][:, k].T), ("kernel_splits", k)
         assert np.array_equal(sky.dispersion_measure_boxes, arrays["dispersion_measure_boxes"])
     with h5py.File(tmp_path / "sky.h5", "r") as handle:
         # One mass's map is one contiguous stretch of the file (HDF5's contiguous layout).
         assert handle["kernel_boxes"].id.get_create_plist().get_layout() == h5py.h5d.CONTIGUOUS
         assert handle["kernel_boxes"].shape == (MASS.size, 12 * OPTIONS["nside"] ** 2)
+        assert handle["kernel_splits"].shape == (MASS.size, 2, 12 * OPTIONS["nside"] ** 2)
     loaded.close()
 
 
@@ -167,21 +171,34 @@ def test_spectra_one_mass_at_a_time_from_the_file_equal_anafast_of_the_whole_map
     in_memory = raytrace.cast_sky(series, MASS, plasma=plasma, **dict(OPTIONS, ordering="NESTED"))
     raytrace.cast_sky(series, MASS, plasma=plasma, backend=HDF5Backend(tmp_path / "sky.h5"),
                       **dict(OPTIONS, ordering="NESTED"))
-    table = np.column_stack([np.arange(2, 20), np.full(18, 1e-12)])
+    table = np.column_stack([np.arange(2, 17), np.full(15, 1e-12)])
     with SkyResult.load(tmp_path / "sky.h5") as on_disk:
-        limit = anisotropy_limit(on_disk, 2.35e-4, cl_limits=table)
+        # The splits as streamed: (masses, splits, pixels), a mass's pair one contiguous read.
+        assert on_disk.splits.shape == (MASS.size, 2, on_disk.npix)
+        spectra = sky_spectra(on_disk, n_resamples=20)
+        limit = table_limit(on_disk, 2.35e-4, table, spectra)
         for k in range(MASS.size):
             ring = healpy.reorder(in_memory.kernel[:, k], n2r=True)
             expected = healpy.anafast(ring - ring.mean())
             np.testing.assert_array_equal(on_disk.angular_power(on_disk.map("kernel", k)), expected)
-    # The C_l limit from the same spectra of dT/T = -K (1 - e^-x)/x / omega_0 at epsilon = 1 (PHYSICS.md s.6),
-    # the table's l = 2..19, worked out here from healpy.anafast of the in-memory maps.
+            np.testing.assert_array_equal(on_disk.split_maps(k), in_memory.kernel_splits[:, :, k].T)
+    # The signal spectrum read one mass at a time from the file: healpy's cross-spectrum of the in-memory
+    # split maps (map2alm, alm2cl; the outside reference), over the pixel window squared.
+    cross = np.zeros_like(spectra.cross)
+    for k in np.flatnonzero(~spectra.flat):
+        alm_a, alm_b = (healpy.map2alm(healpy.reorder(m - m.mean(), n2r=True), lmax=spectra.lmax, iter=3)
+                        for m in in_memory.kernel_splits[:, :, k].T)
+        cross[:, k] = healpy.alm2cl(alm_a, alm_b, lmax=spectra.lmax) / spectra.window**2
+    assert np.any(~spectra.flat)
+    np.testing.assert_allclose(spectra.cross, cross, rtol=1e-9, atol=0)
+    # The C_l limit from that signal spectrum of dT/T = -K (1 - e^-x)/x / omega_0 at epsilon = 1 (PHYSICS.md
+    # s.6), the table's l = 2..16 (the resolved 2 nside), worked out here.
     x = 2.35e-4 / (8.617333262e-5 * 2.72548)  # h nu / k T_0 at omega_0 = 2.35e-4 eV (CODATA 2018 k_B)
     factor = (1 - np.exp(-x)) / x / 2.35e-4
     for k in range(MASS.size):
-        ring = healpy.reorder(in_memory.kernel[:, k], n2r=True) * factor
-        cl = healpy.anafast(ring - ring.mean(), lmax=19)[2:20]
-        np.testing.assert_allclose(limit["epsilon_max_cl"][k], np.min(1e-12 / cl) ** 0.25, rtol=1e-6)
+        signal = cross[2:17, k] * factor**2
+        expected = np.min(1e-12 / signal[signal > 0]) ** 0.25 if np.any(signal > 0) else np.inf
+        np.testing.assert_allclose(limit.epsilon_max[k], expected, rtol=1e-6)
 
 
 # -- bad input, refused before any tracing ---------------------------------------------------------
@@ -205,14 +222,15 @@ def test_nside_not_a_power_of_two_or_too_large_is_refused_first(series, plasma, 
 def test_a_disk_too_small_for_the_result_is_refused_first_in_one_line(box_files, tmp_path, monkeypatch, capsys,
                                                                         no_tracing):
     class Usage:  # what shutil.disk_usage says of a disk with 0.2 MB free
-        free = 200_000  # bytes: an nside-8 result of 7 masses takes 4 x 7 x 768 x 8 + 768 x 8 bytes + 128 kB
+        free = 200_000  # bytes: an nside-8 result of 7 masses takes 6 x 7 x 768 x 8 + 768 x 8 bytes + 128 kB
 
     monkeypatch.setattr(backends.shutil, "disk_usage", lambda folder: Usage())
     settings = run_file(tmp_path, box_files)
     assert main(["sky", str(settings), "--output", str(tmp_path / "sky.h5")]) == 2
     lines = [line for line in capsys.readouterr().err.splitlines() if "error" in line]
     assert len(lines) == 1
-    expected = 4 * MASS.size * 768 * 8 + 768 * 8 + 48 * 49 + (1 << 17)  # 48 batches of 16 pixels
+    # 4 maps and the 2 split maps per mass (the default 4 rays per pixel), 48 batches of 16 pixels
+    expected = (4 + 2) * MASS.size * 768 * 8 + 768 * 8 + 48 * 49 + (1 << 17)
     assert f"{tmp_path / 'sky.h5'} (--output): the result will take {expected / 1e6:.3g} MB on disk" in lines[0]
     assert "0.2 MB are free there" in lines[0] and "--map-precision float32" in lines[0]
     assert os.listdir(tmp_path) == ["sky.toml"]  # no checkpoint was made
@@ -226,17 +244,17 @@ def test_estimate_prints_the_runs_size_and_time_without_writing(box_files, tmp_p
     assert main(["sky", str(settings), "--output", str(tmp_path / "sky.h5"), "--estimate", "--jobs", "2"]) == 0
     out = capsys.readouterr().out
     assert os.listdir(tmp_path) == ["sky.toml"]  # nothing traced into a file, nothing written
-    # Cells: 768 pixels x one ray x chi(z = 0.6) / cell (astropy Planck18; 50 cMpc boxes of 16 cells).
+    # Cells: 768 pixels x 4 rays (the default) x chi(z = 0.6) / cell (astropy Planck18; 50 cMpc boxes of 16 cells).
     per_ray = Planck18.comoving_distance(0.6).to_value("Mpc") / (50 / 16)
-    assert "(768 pixels x 1 rays x " in out
-    assert float(out.split("x 1 rays x ")[1].split()[0]) == pytest.approx(per_ray, abs=1)  # printed to the cell
+    assert "(768 pixels x 4 rays x " in out
+    assert float(out.split("x 4 rays x ")[1].split()[0]) == pytest.approx(per_ray, abs=1)  # printed to the cell
     assert "result on disk: " in out and "memory per worker: " in out and "M cells/s on 2 threads" in out
     assert "expected wall time here: " in out
 
     # The stated size is the file the run then writes: its datasets plus at most the stated 128 kB.
     assert main(["sky", str(settings), "--output", str(tmp_path / "sky.h5")]) == 0
     on_disk = os.path.getsize(tmp_path / "sky.h5")
-    rows = 4 * MASS.size * 768 * 8 + 768 * 8 + 48 * 49
+    rows = (4 + 2) * MASS.size * 768 * 8 + 768 * 8 + 48 * 49  # 4 maps and 2 split maps per mass
     assert rows < on_disk <= rows + (1 << 17)
     assert f"result on disk: {(rows + (1 << 17)) / 1e6:.3g} MB" in out
 

@@ -62,11 +62,12 @@ def add_sky_arguments(parser):
     """Options of the sky's anisotropy limit; shared with ``raytrace report``."""
     group = parser.add_argument_group("anisotropy limit from a sky result")
     add_option(group, "inputs.sky")
-    add_option(group, "output.frequency", help="observed photon frequency or energy with a unit for dT/T (and for P "
-               "in the report), e.g. '160 GHz' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)")
-    test = group.add_mutually_exclusive_group()
-    add_option(test, "anisotropy.threshold", shown="1e-05", type=float)
-    add_option(test, "anisotropy.cl_limits")
+    add_option(group, "output.frequency", help="observed photon frequency or energy with a unit of the anisotropy "
+               "limits, e.g. '100 GHz' (default: 143 GHz, the central channel of the Planck TT spectrum, whose "
+               "100-217 GHz the limit from the measured spectrum needs), and of P in the report with --epsilon "
+               "(default there: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)")
+    add_option(group, "anisotropy.threshold", shown="1e-05", type=float)
+    add_option(group, "anisotropy.cl_limits")
 
 
 # Parameter names in the library's messages and the flags a user typed.
@@ -82,20 +83,23 @@ def flags_named():
     return background_flags_named(_LIMIT_FLAGS)
 
 
-def photon_energy_from_args(args):
-    """--frequency as a photon energy in eV (default k T_0)."""
+def photon_energy_from_args(args, default=None):
+    """--frequency as a photon energy in eV; without it ``default`` (None: k T_0)."""
     from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
-    return CMB_PHOTON_ENERGY_EV if args.frequency is None else photon_energy_eV(args.frequency, "--frequency")
+    if args.frequency is None:
+        return CMB_PHOTON_ENERGY_EV if default is None else default
+    return photon_energy_eV(args.frequency, "--frequency")
 
 
 def anisotropy_from_args(args, sky):
-    """The anisotropy curve of ``sky`` that --frequency, --isotropy-threshold and --cl-limits ask for."""
-    from raytrace.limits.anisotropy import anisotropy_curve
+    """The anisotropy curves of ``sky`` (a LimitSet) that --frequency, --confidence, --isotropy-threshold and
+    --cl-limits ask for (:func:`raytrace.limits.anisotropy.anisotropy_limits`)."""
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV, anisotropy_limits
 
     with flags_named():
-        return anisotropy_curve(sky, photon_energy_from_args(args), threshold=args.isotropy_threshold,
-                                cl_limits=args.cl_limits)
+        return anisotropy_limits(sky, photon_energy_from_args(args, DEFAULT_PHOTON_ENERGY_EV), args.confidence,
+                                 threshold=args.isotropy_threshold, cl_limits=args.cl_limits)
 
 
 def refuse_unused_sky_options(args, flags=("--frequency", "--isotropy-threshold", "--cl-limits")):
@@ -116,28 +120,28 @@ def check_confidence(args):
         delta_chi2(args.confidence)
 
 
-def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, background_kernel_eV=None, extra_curves=()):
+def report(args, mass_eV, mean_kernel_eV=None, spread_kernels_eV=None, background_kernel_eV=None, extra=None):
     """Compute the limits from kernel arrays and print / write them as ``args`` asks.
 
     ``mass_eV`` the mass grid, ``mean_kernel_eV`` <K>(m) over sightlines,
     ``spread_kernels_eV`` a pair (K at the 16 % and at the 84 % sightline
     quantile), ``background_kernel_eV`` K of the homogeneous universe (None:
-    CAMB with Planck 2018); ``extra_curves`` (e.g. an anisotropy limit on the
-    same masses) join the set. ``args`` supplies --confidence, --spectrum,
+    CAMB with Planck 2018); the curves and bands of ``extra`` (a LimitSet, e.g.
+    a sky's anisotropy limits on the same masses) join the set. ``args`` supplies --confidence, --spectrum,
     --fit-galaxy, --output, --plot and --overwrite, already checked by
     :func:`run` before any work. Returns the :class:`~raytrace.limits.limitset.LimitSet`.
     """
+    from raytrace.limits.spectral import sightline_limits
     from raytrace.core.provenance import output_set
     from raytrace.limits.limitset import limit_table, plot_limits
-    from raytrace.limits.spectral import sightline_limits
     from raytrace.limits.spectrum import read_spectrum
 
     limits = sightline_limits(
         mass_eV, mean_kernel_eV, spread_kernels_eV, background_kernel_eV=background_kernel_eV,
         spectrum=read_spectrum(args.spectrum), confidence=args.confidence, fit_galaxy=args.fit_galaxy,
     )
-    for curve in extra_curves:
-        limits = limits.with_curve(curve)
+    if extra is not None:
+        limits = limits.joined(extra)
     _print(limits, getattr(args, "all", False))
     with output_set():  # all the tables and the plot, or none of them (checked by _check_outputs)
         for path in args.output:
@@ -192,7 +196,7 @@ def _limits(args):
         else:
             grid = "--mass-values" if args.mass_values is not None else "--mass-min/--mass-max/--mass-count"
         kernels = {"mass_eV": masses, "background_kernel_eV": plasma.kernel(masses)}
-    extra = ()
+    extra = None
     if sky is not None:
         if grid is not None and not same_mass_grid(sky.mass_eV, kernels["mass_eV"]):
             raise InputError(
@@ -200,8 +204,9 @@ def _limits(args):
                 f"are not those of {grid} ({len(kernels['mass_eV'])} masses); the table needs one grid: "
                 "cast the sky on the same masses, or leave out the other mass option to use the sky's"
             )
-        extra = (anisotropy_from_args(args, sky),)
-    report(args, **kernels, extra_curves=extra)
+        sky.require_splits(f"--sky {args.sky}")
+        extra = anisotropy_from_args(args, sky)
+    report(args, **kernels, extra=extra)
     return 0
 
 
@@ -222,7 +227,10 @@ _ROWS = 12
 
 
 def _print(limits, every_mass=False):
-    """The limits as a table that fits 100 columns: a handful of masses, or all with ``every_mass``."""
+    """The limits as tables that fit 100 columns: a handful of masses, or all with ``every_mass``; the
+    spectral curves first, then the sky's anisotropy curves, if any."""
+    import textwrap
+
     curves = limits.all_curves()
     first = curves[0]
     galaxy = "" if first.galaxy_amplitude is None else (
@@ -234,31 +242,48 @@ def _print(limits, every_mass=False):
         f"chi^2 = {first.chi2:.2f} for {first.dof} dof"
     )
     print(f"# one-sided {100 * first.confidence:g} % upper limit, Delta chi^2 = {first.delta_chi2:.3f}: {first.method}")
-    for curve in curves:
-        if not hasattr(curve, "kernel_eV"):  # a limit of another kind (the sky's): say what it is
-            print(f"# {curve.name}: {curve.label}")
-    mass = first.mass_eV
-    with_kernel = [curve for curve in curves if hasattr(curve, "kernel_eV")]
-    columns = {"mass_eV": mass}
-    columns.update({f"K_{_short(curve.name)}": curve.kernel_eV for curve in with_kernel[:2]})
-    columns.update({f"eps_{_short(curve.name)}": curve.epsilon_max for curve in curves})
-    rows = np.arange(mass.size)
-    if not every_mass and mass.size > _ROWS:
+    spectral = [curve for curve in curves if hasattr(curve, "kernel_eV")]
+    sky = [curve for curve in curves if not hasattr(curve, "kernel_eV")]
+    rows = np.arange(first.mass_eV.size)
+    if not every_mass and first.mass_eV.size > _ROWS:
         tightest = np.nanargmin(np.where(np.isfinite(first.epsilon_max), first.epsilon_max, np.nan)) \
             if np.isfinite(first.epsilon_max).any() else 0
-        rows = np.unique(np.append(np.round(np.linspace(0, mass.size - 1, _ROWS)).astype(int), tightest))
-        print(f"# {rows.size} of {mass.size} masses (--all prints every one); eps: epsilon_max, "
+        rows = np.unique(np.append(np.round(np.linspace(0, first.mass_eV.size - 1, _ROWS)).astype(int), tightest))
+        print(f"# {rows.size} of {first.mass_eV.size} masses (--all prints every one); eps: epsilon_max, "
               "'-': not constrained")
     else:
         print("# eps: epsilon_max, '-': not constrained")
+    columns = {"mass_eV": first.mass_eV}
+    columns.update({f"K_{_short(curve.name)}": curve.kernel_eV for curve in spectral[:2]})
+    columns.update({f"eps_{_short(curve.name)}": curve.epsilon_max for curve in spectral})
+    _print_table(columns, rows)
+    if sky:
+        print("# the sky's anisotropy limits:")
+        for curve in sky:
+            print(f"#   eps_{_short(curve.name)}: {curve.label}")
+        caveat = next((curve.details["caveat"] for curve in sky if "caveat" in curve.details), None)
+        if caveat:
+            text = (f"'*': noise exceeds signal in the bands that decide the limit, which the noise biases "
+                    f"tight there: quote the band's upper edge (eps_skyhi); {caveat}")
+            print("\n".join("#   " + line for line in textwrap.wrap(text, 94)))
+        columns = {"mass_eV": first.mass_eV}
+        columns.update({f"eps_{_short(curve.name)}": curve.epsilon_max for curve in sky})
+        noisy = {f"eps_{_short(curve.name)}": curve.noisy for curve in sky if np.any(curve.noisy)}
+        _print_table(columns, rows, noisy)
+
+
+def _print_table(columns, rows, marked=None):
+    """Columns (name -> per-mass values) at ``rows``; a '*' after the cells that ``marked`` flags."""
+    marked = marked or {}
     width = 11 if len(columns) <= 8 else 9
     print("#" + " ".join(f"{name[:width]:>{width}}" for name in columns)[1:])
     for k in rows:
-        cells = [f"{values[k]:.{3 if width == 9 else 4}e}" if np.isfinite(values[k]) else "-"
-                 for values in columns.values()]
+        cells = [(f"{values[k]:.{3 if width == 9 else 4}e}" if np.isfinite(values[k]) else "-")
+                 + ("*" if name in marked and marked[name][k] else "") for name, values in columns.items()]
         print(" ".join(f"{cell:>{width}}" for cell in cells))
 
 
 def _short(name):
     """A column name's curve part that fits a narrow column (sightline_p16 -> p16)."""
-    return {"background": "homog", "anisotropy": "sky"}.get(name, name.replace("sightline_", ""))
+    return {"background": "homog", "anisotropy": "sky", "anisotropy_rms": "skyrms", "anisotropy_low": "skylo",
+            "anisotropy_high": "skyhi", "anisotropy_cl": "skyCl"}.get(name, name.replace("sightline_", ""))

@@ -56,7 +56,8 @@ def run(args):
         check_writable(path, args.overwrite)
     with flags_named(), output_lock(paths):  # one run per output at a time
         paths = make_report(
-            args.result, args.output, sky=args.sky, epsilon=args.epsilon, omega0_eV=photon_energy_from_args(args),
+            args.result, args.output, sky=args.sky, epsilon=args.epsilon,
+            omega0_eV=None if args.frequency is None else photon_energy_from_args(args),
             spectrum=read_spectrum(args.spectrum), confidence=args.confidence, overwrite=args.overwrite,
             fit_galaxy=args.fit_galaxy, threshold=args.isotropy_threshold, cl_limits=args.cl_limits, mass_eV=args.mass,
             plasma=MeanPlasma(None, ionisation_from_args(args)), kinds=kinds,

@@ -122,15 +122,19 @@ TRACE_OPTIONS = (
            metavar="ADDRESS"),
     Option("rays.workers", int, None, "worker processes of the local cluster (--scheduler local; default: one per core)",
            at_least=1),
+    Option("rays.device", str, "cpu", "where the rays are traced: the CPU, a CUDA GPU (numba-cuda: the 'gpu' "
+           "extra), or auto, a GPU where numba-cuda sees one and else the CPU", choices=("cpu", "gpu", "auto")),
 )
 
 #: Every output path can be switched off with an empty value (--plot "", or plot = "" in a run file).
 OUTPUT_OPTIONS = (
     Option("output.path", str, None, "result file (HDF5)", flag_name="output", path=True, metavar="RESULT.h5"),
     Option("output.plot", str, None, "figure of the kernel versus mass (PNG or PDF)", path=True),
-    Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel", above=0.0),
-    Option("output.frequency", str, None, "observed photon frequency or energy with a unit, e.g. '160 GHz' or "
-           "'5.45 1/cm' (default: k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009)", metavar="FREQUENCY"),
+    Option("output.epsilon", float, None, "plot P for this mixing instead of the kernel (a sky: its dT/T figure, "
+           "by default at the shown mass's limit, and P maps in FITS)", above=0.0),
+    Option("output.frequency", str, None, "observed photon frequency or energy with a unit, e.g. '160 GHz' (default: "
+           "k T_0 = 2.35e-4 eV, T_0 = 2.72548 K, Fixsen 2009; a sky's dT/T and anisotropy limits: 143 GHz, "
+           "the measured TT spectrum's limit needs 100-217 GHz)", metavar="FREQUENCY"),
     Option("output.overwrite", bool, False, "replace this run's existing outputs (never another run's files)"),
     Option("output.resume", bool, False, "continue an interrupted run from its checkpoint"),
 )
@@ -148,26 +152,22 @@ SIGHTLINE_OPTIONS = (BOX_OPTIONS + MASS_OPTIONS
                      + (Option("rays.count", int, 1000, "number of sightlines", at_least=1, flag_name="rays"),)
                      + TRACE_OPTIONS + BIN_OPTIONS + OUTPUT_OPTIONS)
 
-_SKY_TRACE_KEYS = ("rays.z_max", "rays.z_boxes", "rays.include_background", "rays.photon_energy_eV", "rays.seed", "rays.jobs",
-                   "rays.scheduler", "rays.workers")
-
 #: The mass whose map a sky figure, the first FITS map and the report show (default: :func:`raytrace.report.plots.shown_mass_index`).
 SHOWN_MASS = Option("output.mass_eV", float, None, "dark-photon mass in eV of the map shown: the figure and the "
                     "first FITS map (default: the middle of the masses resonating in most pixels)", above=0.0,
                     flag_name="mass", metavar="EV")
-ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "dT/T rms the map must stay below (CMB isotropy ~1e-5)",
+ISOTROPY_THRESHOLD = Option("anisotropy.threshold", float, 1e-5, "quick look: signal rms of dT/T to stay below (~1e-5)",
                             above=0.0, flag_name="isotropy-threshold", metavar="DT_T", aliases=("--threshold",))
-CL_LIMITS = Option("anisotropy.cl_limits", str, None, "two-column text table of l and C_l upper limits in (dT/T)^2: "
-                   "the C_l test instead of the rms", path=True)
+CL_LIMITS = Option("anisotropy.cl_limits", str, None, "table of l, C_l upper limit in (dT/T)^2: a further limit", path=True)
 
 SKY_OPTIONS = (
     BOX_OPTIONS + MASS_GRID + (MASS_VALUES,)
-    + tuple(option for option in TRACE_OPTIONS if option.key in _SKY_TRACE_KEYS)
+    + tuple(option for option in TRACE_OPTIONS if option.key != "rays.batch_size")
     + (
         replace(TRACE_OPTIONS[6], default=1024, help="pixels per batch, the checkpoint's granularity "
                 "(results do not depend on it)", aliases=("--batch-pixels",), old_keys=("sky.batch_pixels",)),
         Option("sky.nside", int, 32, "HEALPix nside of the map (a power of 2)", at_least=1),
-        Option("sky.rays_per_pixel", int, 1, "rays averaged per pixel, at sub-pixel centres (1, 4, 16 ...)", at_least=1),
+        Option("sky.rays_per_pixel", int, 4, "rays per pixel, two independent splits (1: noise unknown)", at_least=1),
         Option("sky.ordering", str, "RING", "pixel ordering of the maps: RING or NESTED"),
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
         Option("sky.shells", float, None, "redshift shells with a map each: edges in z (or a count, as "

@@ -52,11 +52,12 @@ def bins_value(value, flag):
     return int(value)
 
 
-def observed_energy(values):
+def observed_energy(values, default=None):
+    """--frequency as a photon energy in eV; without it ``default`` (None: k T_0)."""
     from raytrace.physics.units import CMB_PHOTON_ENERGY_EV, photon_energy_eV
 
     if values["output.frequency"] is None:
-        return CMB_PHOTON_ENERGY_EV
+        return CMB_PHOTON_ENERGY_EV if default is None else default
     return photon_energy_eV(values["output.frequency"], "output.frequency (--frequency)")
 
 
@@ -186,6 +187,7 @@ def run_outputs(values, output, plot):
             photon_energy_eV=values["rays.photon_energy_eV"], n_jobs=values["rays.jobs"],
             include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
             batch_size=values["rays.batch_size"], backend=backend, progress=True, executor=executor,
+            device=values["rays.device"],
             redshift_bins=bins_value(values["rays.redshift_bins"], "--redshift-bins (TOML rays.redshift_bins)"),
             keep_ray_bins=values["rays.keep_ray_bins"], **classes_option(values),
         )

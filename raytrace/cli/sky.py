@@ -62,15 +62,15 @@ def print_estimate(values, started):
     import contextlib
     import io
 
-    from raytrace.limits.anisotropy import anisotropy_limit
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV
     from raytrace.report.plots import shown_mass_index
     from raytrace.sky.estimate import estimate_sky
 
     def summary(sky):  # the run's summary, in silence: its cost is what counts here
         with contextlib.redirect_stdout(io.StringIO()), warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            limit = anisotropy_limit(sky, observed_energy(values), threshold=values["anisotropy.threshold"])
-            print_summary(sky, limit, values["anisotropy.threshold"], observed_energy(values),
+            omega0 = observed_energy(values, DEFAULT_PHOTON_ENERGY_EV)
+            print_summary(sky, *sky_limits(sky, values, omega0), omega0,
                           shown_mass_index(sky, values["output.mass_eV"]))
 
     estimate = estimate_sky(load_boxes(values), masses(values), values["sky.nside"], values["rays.z_max"],
@@ -109,8 +109,21 @@ def sky_options(values):
                 include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
                 ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
                 randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
-                map_precision=values["sky.map_precision"],
+                map_precision=values["sky.map_precision"], device=values["rays.device"],
                 shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"))
+
+
+def sky_limits(sky, values, omega0):
+    """(signal and noise spectra, anisotropy limits) of a sky with splits, each read one mass at a time;
+    (None, None) for one ray per pixel (no splits: its noise is unknown)."""
+    from raytrace.limits.anisotropy import anisotropy_limits
+    from raytrace.sky.spectra import sky_spectra
+
+    if sky.splits is None:
+        return None, None
+    spectra = sky_spectra(sky, n_resamples=200)
+    return spectra, anisotropy_limits(sky, omega0, threshold=values["anisotropy.threshold"],
+                                      cl_limits=values["anisotropy.cl_limits"], spectra=spectra)
 
 
 def check_fits_path(path):
@@ -125,74 +138,96 @@ def check_fits_path(path):
 def run_outputs(values):
     """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
     from raytrace.core.companions import owner_name
-    from raytrace.limits.anisotropy import anisotropy_limit, read_cl_limits
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV
     from raytrace.report.plots import shown_mass_index
+    from raytrace.report.skyfigures import sky_figure
+    from raytrace.sky.figures import shown_epsilon
     from raytrace.sky.maps import cast_sky
     from raytrace.tracing.backends import HDF5Backend, MemoryBackend
 
     overwrite = values["output.overwrite"]
     output = values["output.path"]
-    cl_limits = read_cl_limits(values["anisotropy.cl_limits"]) if values["anisotropy.cl_limits"] else None
     series = load_boxes(values)
     mass = masses(values)
-    omega0 = observed_energy(values)
+    omega0 = observed_energy(values, DEFAULT_PHOTON_ENERGY_EV)
     backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
     with cluster_executor(values) as executor:
         sky = cast_sky(series, mass, values["sky.nside"], values["rays.z_max"], n_jobs=values["rays.jobs"],
                        backend=backend, progress=True, executor=executor, **sky_options(values))
-    limit = anisotropy_limit(sky, omega0, threshold=values["anisotropy.threshold"], cl_limits=cl_limits)
+    spectra, limits = sky_limits(sky, values, omega0)
     shown = shown_mass_index(sky, values["output.mass_eV"])
-    print_summary(sky, limit, values["anisotropy.threshold"], omega0, shown)
+    print_summary(sky, spectra, limits, omega0, shown)
     owner = owner_name(output)
+    epsilon, why = shown_epsilon(limits.curves[0] if limits else None, shown, values["output.epsilon"])
     if values["output.fits"]:
         # HDU 1 the shown mass (healpy.read_map's default), HDU 2 the grid in its own order.
         sky.write_fits(values["output.fits"], sky.mass_eV, epsilon=values["output.epsilon"], omega0_eV=omega0,
                        overwrite=overwrite, owner=owner, shown_eV=float(sky.mass_eV[shown]))
     if values["output.plot"]:
-        sky.plot_mollweide(sky.mass_eV[shown], values["output.plot"], epsilon=values["output.epsilon"],
-                           omega0_eV=omega0, overwrite=overwrite, owner=owner)
+        sky_figure(values["output.plot"], sky, shown, epsilon, omega0, spectra, overwrite=overwrite, owner=owner)
+        print(f"# figure: dT/T at epsilon = {epsilon:.3g} ({why})")
     return float(sky.mass_eV[shown])
 
 
-def print_summary(sky, limit, threshold, omega0, shown):
-    """The run's table at up to 16 masses; every statistic reads one map at a time."""
+def print_summary(sky, spectra, limits, omega0, shown):
+    """The run, per mass (up to 16) its map's mean and spreads, the anisotropy limits; then signal and noise.
+    Every statistic reads one map at a time."""
     from raytrace.core.textcells import cell, no_resonance
-    from raytrace.statistics.spread import robust_spread, sky_rms_interval
+    from raytrace.limits.anisotropy import COMPONENT_SEPARATION_CAVEAT
+    from raytrace.physics.units import frequency_label
 
-    rows = list(range(0, sky.mass_eV.size, max(1, sky.mass_eV.size // 16)))
+    mean = sky.mean()
     check = sky.mean_check()
-    ratio = check.ratio() if check is not None else np.full(sky.mass_eV.size, np.nan)
-    relative_sem = check.relative_error() if check is not None else np.full(sky.mass_eV.size, np.nan)
-    interval = sky_rms_interval(sky, omega0, n_resamples=200, seed=sky.run["seed"], threshold=threshold, masses=rows)
+    ratio = check.ratio() if check is not None else np.full(mean.size, np.nan)
     print(f"# sky of nside {sky.nside} ({sky.npix} pixels, {sky.run['rays_per_pixel']} rays each), z = 0 to "
           f"{sky.run['z_max']:g}, boxes to z = {sky.run['z_boxes']:g}, seed {sky.run['seed']}")
-    print(f"# anisotropy test: rms of dT/T below {threshold:g} at omega_0 = {omega0:.4g} eV")
-    header = (f"# {'mass_eV':>11} {'mean_K_eV':>11} {'rms/mean':>9} {'hw16-84':>9} {'MAD':>9} {'MC/PDF':>7} "
-              f"{'sem/PDF':>7} {'eps_max_rms':>12} {'68% interval':>21}")
-    if "epsilon_max_cl" in limit:
-        header += f" {'eps_max_Cl':>11}"
-    print(header)
-    for j, k in enumerate(rows):
+    if spectra is None:
+        print("# one ray per pixel: no independent splits, the map's sampling noise is unknown, and no anisotropy "
+              "limit is computed (--rays-per-pixel 2 or more)")
+    else:
+        by_name = {curve.name: curve for curve in limits.all_curves()}
+        print(f"# anisotropy limits at {frequency_label(omega0)}: eps_Cl = {by_name['anisotropy'].label} "
+              f"(band: signal +-1 sigma; '*': noise exceeds signal in the bands that decide it, biasing it tight: "
+              f"quote the band's upper edge); eps_rms = "
+              f"{by_name['anisotropy_rms'].label}")
+        print(f"# {COMPONENT_SEPARATION_CAVEAT}")
+    header = f"# {'mass_eV':>11} {'mean_K_eV':>11} {'raw rms':>8} {'MC/PDF':>7}"
+    if spectra is not None:
+        header += f" {'signal rms':>10} {'noise rms':>9} {'eps_Cl':>10} {'band':>21} {'eps_rms':>9}"
+    print(header + "   (rms: of K/<K> over pixels)")
+    step = max(1, sky.mass_eV.size // 16)
+    rows = list(range(0, sky.mass_eV.size, step))
+    for k in rows:
         kernel = sky.map("kernel", k)
         empty = no_resonance(kernel, "pixel")
         if empty:
             print(f"  {sky.mass_eV[k]:11.4e} {empty}")
             continue
-        mean, rms = kernel.mean(), kernel.std()
-        (half_width,), (mad,) = robust_spread(kernel)
-        relative = rms / mean if mean > 0 else 0.0
-        band = (f"{interval['epsilon_low'][j]:.3e}-{interval['epsilon_high'][j]:.3e}"
-                if np.isfinite(interval['epsilon_high'][j]) else "-")
-        line = (f"  {sky.mass_eV[k]:11.4e} {mean:11.4e} {relative:9.3f} {half_width:9.3e} {mad:9.3e} "
-                f"{cell(ratio[k], '.4f', 7)} {cell(relative_sem[k], '.4f', 7)} "
-                f"{cell(limit['epsilon_max_rms'][k], '.3e', 12)} {band:>21}")
-        if "epsilon_max_cl" in limit:
-            line += f" {cell(limit['epsilon_max_cl'][k], '.3e', 11)}"
+        relative = kernel.std() / mean[k] if mean[k] > 0 else 0.0
+        line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:8.3f} {cell(ratio[k], '.4f', 7)}"
+        if spectra is not None:
+            scale = mean[k] if mean[k] > 0 else 1.0
+            line += (f" {spectra.rms()[0][k] / scale:10.3g} {np.sqrt(spectra.noise_variance[k]) / scale:9.3g} "
+                     f"{_cells(by_name, k)}")
         print(line)
-    print("# MC/PDF: the mean over pixels / the one-point-PDF mean (sem: batch means over the 12 base pixels); "
-          "interval: 200 bootstrap resamples of the pixels (correlated pixels: a lower bound on its width); "
-          "'-': no number there (a flat map sets no limit)")
+    print("# MC/PDF: the mean over pixels / the one-point-PDF mean")
     _warn_spread(sky)
+    if spectra is not None:
+        from raytrace.sky.spectra import signal_noise_lines
+
+        for line in signal_noise_lines(spectra, [shown]):
+            print("# " + line)
     resonating = np.count_nonzero(sky.map("crossings", shown)) / sky.npix
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "
           "(--mass chooses; default: the middle of the masses resonating in most pixels)")
+
+
+def _cells(by_name, k):
+    """eps_Cl (marked where noisy), its band and eps_rms of mass ``k``; '-' where not constrained."""
+    def number(value, width):
+        return f"{value:{width}.3e}" if np.isfinite(value) else f"{'-':>{width}}"
+
+    measured = by_name["anisotropy"]
+    mark = "*" if measured.noisy[k] else " "
+    band = f"{number(by_name['anisotropy_low'].epsilon_max[k], 10)}-{number(by_name['anisotropy_high'].epsilon_max[k], 10)}"
+    return f"{number(measured.epsilon_max[k], 9)}{mark} {band} {number(by_name['anisotropy_rms'].epsilon_max[k], 9)}"

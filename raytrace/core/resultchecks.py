@@ -22,6 +22,7 @@ from raytrace.core.errors import InputError
 SHAPES = {
     "kernel_boxes": ("rows, masses", True),
     "kernel_tangent": ("rows, masses", True),
+    "kernel_splits": ("rows, 2, masses", True),
     "crossings": ("rows, masses", True),
     "tangent_events": ("rows, masses", True),
     "dispersion_measure_boxes": ("rows", True),
@@ -121,7 +122,7 @@ def read_arrays(owner, path, names, n_masses, n_rows=None, prefix="", optional=(
         layout = "masses" if per_mass else layout
         if n_rows is None and layout.startswith("rows"):
             n_rows = values.shape[0] if values.ndim else -1
-        expected = tuple({"rows": n_rows, "masses": n_masses, "3": 3}[part] for part in layout.split(", "))
+        expected = tuple({"rows": n_rows, "masses": n_masses, "3": 3, "2": 2}[part] for part in layout.split(", "))
         if values.shape != expected:
             raise InputError(f"{path}: {where} has shape {values.shape}; expected {expected} ({layout}: "
                              f"{n_rows} rows, {n_masses} masses): the file is damaged or cut short")

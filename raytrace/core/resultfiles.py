@@ -49,6 +49,8 @@ DATASETS = {
     "kernel_background": ("eV", "kernel of the homogeneous universe beyond the boxes per mass, the same for every {row}"),
     "crossings": ("1", "resonances inside the boxes per {row} and mass{mean}"),
     "tangent_events": ("1", "near-tangent resonance pairs (and near misses) taken in the Airy form per {row} and mass{mean}"),
+    "kernel_splits": ("eV", "the boxes' kernel of each of the two independent splits of a pixel's rays, per pixel, "
+                      "split and mass (their cross-spectrum is free of the rays' sampling noise)"),
     "kernel_tangent": ("eV", "the part of kernel_boxes from near-tangent (Airy) events per {row} and mass"),
     "dispersion_measure_boxes": ("pc cm^-3", "dispersion measure through the boxes per {row}"),
     "direction": ("1", "unit vector of each {row} in the boxes' axes"),

@@ -13,7 +13,9 @@ in passes over a table of the segment's cells: :func:`trace_cells` (the
 traversal: each cell's extent and corners), :func:`cell_cubics` (the field along
 the ray in each cell, asking for the cube's cache lines a few cells ahead, so that
 their latency overlaps), :func:`cell_redshifts` (1+z and H/c at each cell's exit),
-then each cell is solved in turn.
+then each cell is solved in turn (:func:`solve_cell`). The traversal's steps and the
+solve are compiled for the CPU and a GPU alike (:mod:`.targets`); the GPU walks the
+same cells one at a time, without tables (:mod:`.streaming`).
 Inside one cell the periodic trilinear interpolant along the ray is an exact
 cubic in the path length s (PHYSICS.md section 8); a blend weight linear in s
 makes it a quartic; times (1+z)^3, linear in s over a cell (its curvature
@@ -48,7 +50,8 @@ from raytrace.kernels.polynomial import (
     roots_in,
 )
 from raytrace.kernels.prefetch import prefetch
-from raytrace.kernels.tangent import count_below_near, tangent_events
+from raytrace.kernels.tangent import tangent_events
+from raytrace.kernels.targets import both_targets
 from raytrace.kernels.zcells import add_to_cell
 
 #: A cell's breakpoints: its two ends and up to four extrema (the slope of a blended density is a quartic).
@@ -60,7 +63,20 @@ _MAX_BREAKPOINTS = 6
 _CELL_COLUMNS = 14
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
+def _search_left(values, x):
+    """The number of ``values`` (sorted increasing) that are < x: a binary search."""
+    low, high = 0, values.shape[0]
+    while low < high:
+        middle = (low + high) // 2
+        if values[middle] < x:
+            low = middle + 1
+        else:
+            high = middle
+    return low
+
+
+@both_targets
 def _count_below(ln_targets, value, uniform, first, inverse_spacing):
     """Number of targets whose ln is < ln(value) (ln_targets sorted increasing)."""
     n = ln_targets.shape[0]
@@ -75,10 +91,10 @@ def _count_below(ln_targets, value, uniform, first, inverse_spacing):
         while k < n and ln_targets[k] < x:
             k += 1
         return k
-    return np.searchsorted(ln_targets, x, side="left")
+    return _search_left(ln_targets, x)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _lookup(table, chi_step_inverse, chi):
     """Linear interpolation in a table sampled at chi = 0, 1/chi_step_inverse, ..."""
     x = chi * chi_step_inverse
@@ -87,7 +103,7 @@ def _lookup(table, chi_step_inverse, chi):
     return table[i] + f * (table[i + 1] - table[i])
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _ray_cubic(cube, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz):
     """(c0, c1, c2, c3): the trilinear interpolant of the cell's 8 corners along t + d s."""
     # Along x: four edges, each linear in s.
@@ -111,6 +127,52 @@ def _ray_cubic(cube, i0, i1, j0, j1, k0, k1, tx, ty, tz, dx, dy, dz):
     return p0 + d0 * tz, p1 + d1 * tz + d0 * dz, p2 + d2 * tz + d1 * dz, d2 * dz
 
 
+@both_targets
+def axis_start(u, d, n):
+    """(i, w, next, step): one axis of a grid traversal from u (cells) heading d on a periodic axis of n
+    cells: the cell index, its wrapped index, the path length to the first face and between faces
+    (inf where the ray runs parallel to the axis)."""
+    i = int(math.floor(u))
+    inf = math.inf
+    next_face = ((i + 1 - u) / d if d > 0 else (i - u) / d) if d != 0 else inf
+    step = 1.0 / abs(d) if d != 0 else inf
+    return i, i % n, next_face, step
+
+
+@both_targets
+def _next_index(w, n):
+    return w + 1 if w + 1 < n else 0
+
+
+@both_targets
+def _cross_axis(axis, d, n):
+    """One axis's traversal state (i, w, next, step) after crossing its next face."""
+    i, w, next_face, step = axis
+    if d > 0:
+        return i + 1, _next_index(w, n), next_face + step, step
+    return i - 1, (w - 1 if w > 0 else n - 1), next_face + step, step
+
+
+@both_targets
+def cross_face(x, y, z, dx, dy, dz, n0, n1, n2):
+    """The traversal state (x, y, z) after the nearest face (ties: x before y before z)."""
+    if x[2] <= y[2] and x[2] <= z[2]:
+        return _cross_axis(x, dx, n0), y, z
+    if y[2] <= z[2]:
+        return x, _cross_axis(y, dy, n1), z
+    return x, y, _cross_axis(z, dz, n2)
+
+
+@both_targets
+def cell_place(axis, u, d, s, n):
+    """(t, w0, w1) of one axis in the current cell: the place of the point u + d s inside it (0..1)
+    and the wrapped indices of its two corners."""
+    i, w, _, _ = axis
+    # numpy float64 bounds: the same constants to numba; in numba's CUDA simulator (plain Python) a bound
+    # returned as a Python float would turn the float32 corner values it multiplies into float32 products.
+    return min(max(u + d * s - i, np.float64(0.0)), np.float64(1.0)), w, _next_index(w, n)
+
+
 @numba.njit(cache=True)
 def trace_cells(shape, start, direction, length, cells, corners):
     """Walk one segment through a periodic grid of ``shape``; return the number of cells it crosses.
@@ -124,54 +186,23 @@ def trace_cells(shape, start, direction, length, cells, corners):
     # Position on the interpolation grid: cell centres sit at integer + 1/2.
     ux, uy, uz = start[0] - 0.5, start[1] - 0.5, start[2] - 0.5
     dx, dy, dz = direction[0], direction[1], direction[2]
-    ix, iy, iz = int(math.floor(ux)), int(math.floor(uy)), int(math.floor(uz))
-    wx, wy, wz = ix % n0, iy % n1, iz % n2
-    inf = math.inf
-    next_x = ((ix + 1 - ux) / dx if dx > 0 else (ix - ux) / dx) if dx != 0 else inf
-    next_y = ((iy + 1 - uy) / dy if dy > 0 else (iy - uy) / dy) if dy != 0 else inf
-    next_z = ((iz + 1 - uz) / dz if dz > 0 else (iz - uz) / dz) if dz != 0 else inf
-    step_x = 1.0 / abs(dx) if dx != 0 else inf
-    step_y = 1.0 / abs(dy) if dy != 0 else inf
-    step_z = 1.0 / abs(dz) if dz != 0 else inf
+    x, y, z = axis_start(ux, dx, n0), axis_start(uy, dy, n1), axis_start(uz, dz, n2)
     n = 0
     s = 0.0
     while s < length:
-        s_end = min(next_x, next_y, next_z, length)
+        s_end = min(x[2], y[2], z[2], length)
         if s_end > s:
             if n == cells.shape[0]:
                 raise ValueError("trace_cells: the cell table is too short for this segment")
             cells[n, 0] = s_end
-            cells[n, 1] = min(max(ux + dx * s - ix, 0.0), 1.0)
-            cells[n, 2] = min(max(uy + dy * s - iy, 0.0), 1.0)
-            cells[n, 3] = min(max(uz + dz * s - iz, 0.0), 1.0)
-            corners[n, 0] = wx
-            corners[n, 1] = wx + 1 if wx + 1 < n0 else 0
-            corners[n, 2] = wy
-            corners[n, 3] = wy + 1 if wy + 1 < n1 else 0
-            corners[n, 4] = wz
-            corners[n, 5] = wz + 1 if wz + 1 < n2 else 0
+            cells[n, 1], corners[n, 0], corners[n, 1] = cell_place(x, ux, dx, s, n0)
+            cells[n, 2], corners[n, 2], corners[n, 3] = cell_place(y, uy, dy, s, n1)
+            cells[n, 3], corners[n, 4], corners[n, 5] = cell_place(z, uz, dz, s, n2)
             n += 1
         if s_end >= length:
             break
         s = s_end
-        if next_x <= next_y and next_x <= next_z:
-            if dx > 0:
-                ix += 1; wx = wx + 1 if wx + 1 < n0 else 0
-            else:
-                ix -= 1; wx = wx - 1 if wx > 0 else n0 - 1
-            next_x += step_x
-        elif next_y <= next_z:
-            if dy > 0:
-                iy += 1; wy = wy + 1 if wy + 1 < n1 else 0
-            else:
-                iy -= 1; wy = wy - 1 if wy > 0 else n1 - 1
-            next_y += step_y
-        else:
-            if dz > 0:
-                iz += 1; wz = wz + 1 if wz + 1 < n2 else 0
-            else:
-                iz -= 1; wz = wz - 1 if wz > 0 else n2 - 1
-            next_z += step_z
+        x, y, z = cross_face(x, y, z, dx, dy, dz, n0, n1, n2)
     return n
 
 
@@ -212,7 +243,7 @@ def cell_redshifts(opz_table, hubble_table, chi_step_inverse, chi0, cell_mpc, n_
         cells[n, 13] = _lookup(hubble_table, chi_step_inverse, chi)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _comoving_field(f0, f1, f2, f3, u0, u1, u2, u3, blended, w_a, w_slope):
     """(f0..f4, g0..g3): the comoving field F on a cell as a polynomial in the path from its entry:
     the lower snapshot's cubic f, plus w G when blending (G = u - f, u the upper snapshot's cubic,
@@ -224,7 +255,7 @@ def _comoving_field(f0, f1, f2, f3, u0, u1, u2, u3, blended, w_a, w_slope):
             f3 + w_a * g3 + w_slope * g2, w_slope * g3, g0, g1, g2, g3)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, ell):
     """int_0^ell F(s) (1+z(s)) ds with 1+z = opz_a + slope_opz s: the cell's DM over its length in cells."""
     return ell * (f0 * (opz_a + slope_opz * ell / 2.0)
@@ -234,7 +265,7 @@ def _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, ell):
                                              + ell * f4 * (opz_a / 5.0 + slope_opz * ell / 6.0)))))
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _hermite_start(a, b, v_a, v_b, slope_a, slope_b, curvature_a, curvature_b):
     """(usable, 1/rise, h1..h5): the inverse s(v) of a monotone piece as a quintic in
     t = (v - v_a) / rise, s = a + h1 t + ... + h5 t^5, its Hermite interpolant from the ends'
@@ -257,7 +288,7 @@ def _hermite_start(a, b, v_a, v_b, slope_a, slope_b, curvature_a, curvature_b):
             6.0 * span - 3.0 * d_a - 3.0 * d_b - 0.5 * c_a + 0.5 * c_b)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start):
     """(root, slope of P there) of P = target on the monotone piece [a, b] (values v_a, v_b);
     ``start``: :func:`_hermite_start`'s (usable, 1/rise, h1..h5) for the piece."""
@@ -275,7 +306,7 @@ def _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start):
     return bracketed_root(p0 - target, p1, p2, p3, p4, p5, a, b, v_a - target, v_b - target, guess)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _crossing_kernel(root, slope, target, mass2, cell_mpc, kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1,
                      blended, weight_term):
     """K (eV) of the crossing at ``root`` (P' = ``slope`` there), or 0 where its rate vanishes.
@@ -301,7 +332,119 @@ def _crossing_kernel(root, slope, target, mass2, cell_mpc, kernel_unit, opz_a, s
     return kernel_unit * mass2 * target * cubed / (opz * abs(scaled_rate))
 
 
-@numba.njit(cache=True)
+@both_targets
+def segment_constants(opz_table, hubble_table, chi_step_inverse, chi0, targets, ln_targets, cell_mpc, rate_unit,
+                      blended, z_lo, z_hi):
+    """(1+z and H/c at the segment's start, the targets' inverse spacing in ln, the kernel's unit per cell,
+    1/(z_hi - z_lo) of a blend): what every cell of a segment shares."""
+    n_targets = targets.shape[0]
+    inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
+    inverse_z_interval = 1.0 / (z_hi - z_lo) if blended else 0.0
+    return (_lookup(opz_table, chi_step_inverse, chi0), _lookup(hubble_table, chi_step_inverse, chi0),
+            inverse_spacing, math.pi * cell_mpc / rate_unit, inverse_z_interval)
+
+
+@both_targets
+def solve_cell(lower, upper, piece, opz_a, opz_b, h_a, h_b, end_value, k, blended, z_lo,
+               inverse_z_interval, cell_mpc, kernel_unit, targets, ln_targets, mass2, uniform, inverse_spacing,
+               rate_unit, m2_per_density, omega0, points, marks, kernel, count, tangent_count, tangent_kernel, cell_edges,
+               cell_kernel):
+    """Add one cell's resonances into one ray's rows; return (P at its exit, the number of targets below
+    that, its DM in Mpc cm^-3).
+
+    ``lower`` (``upper``): the lower (upper) snapshot's cubic along the ray from the cell's entry,
+    (c0, c1, c2, c3) scaled to comoving n_e (tuples: a call of more than 30 arguments cannot be inlined);
+    ``piece``: the cell's length (cells); 1+z and H/c at its ends;
+    ``end_value``, ``k``: what the previous cell of the segment returned (-1, -1 for its first);
+    ``cell_edges``/``cell_kernel``: each kernel also goes to its redshift cell (:mod:`.zcells`).
+    """
+    n_targets = targets.shape[0]
+    c0, c1, c2, c3 = lower
+    u0, u1, u2, u3 = upper
+    inverse_piece = 1.0 / piece
+    # The blend's weight, linear in the cell's redshift: 0 at z_lo, 1 at z_hi.
+    w_a = min(max((opz_a - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0)
+    w_slope = (min(max((opz_b - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0) - w_a) * inverse_piece
+    f0, f1, f2, f3, f4, g0, g1, g2, g3 = _comoving_field(c0, c1, c2, c3, u0, u1, u2, u3, blended, w_a, w_slope)
+    slope_opz = (opz_b - opz_a) * inverse_piece
+    slope_h = (h_b - h_a) * inverse_piece
+    dm = cell_mpc * _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, piece)
+    # Physical density P = F (1+z)^3, with (1+z)^3 linear over the cell.
+    d_a = opz_a * opz_a * opz_a
+    d_1 = (opz_b * opz_b * opz_b - d_a) * inverse_piece
+    p0, p1, p2, p3, p4, p5 = (f0 * d_a, f1 * d_a + f0 * d_1, f2 * d_a + f1 * d_1, f3 * d_a + f2 * d_1,
+                              f4 * d_a + f3 * d_1, f4 * d_1)
+    # Breakpoints: the cell's ends and the extrema of P between, with P's value (continuous with
+    # the previous cell's end), slope and curvature there.
+    # (Rows of ``points`` are indexed, never sliced, per cell: a slice is an array, with its reference count.)
+    n_ext, extrema = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece)
+    n_bp = n_ext + 2
+    points[0, 0], points[1, 0], points[2, 0], points[3, 0] = 0.0, end_value if end_value >= 0.0 else p0, p1, 2.0 * p2
+    for j in range(1, n_ext + 1):
+        points[0, j], points[2, j], points[3, j] = extrema[j - 1], 0.0, 0.0
+        points[1, j] = evaluate(p0, p1, p2, p3, p4, p5, extrema[j - 1])
+    points[0, n_bp - 1] = piece
+    points[1, n_bp - 1], points[2, n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
+    points[3, n_bp - 1] = evaluate(2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, 0.0, 0.0, piece)
+    # Targets are counted by stepping from the last cell's count (the field moves by little per
+    # cell): comparisons in n_e, no logarithm. A cell with extrema first counts at each of its
+    # breakpoints, for its near-tangent events and the crossings they claim.
+    if k < 0:
+        k = _count_below(ln_targets, points[1, 0], uniform and n_targets > 1, ln_targets[0], inverse_spacing)
+    if n_ext > 0:
+        tangent_events(points[0], points[1], k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
+                       rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
+                       tangent_count, tangent_kernel, cell_edges, cell_kernel)
+    weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
+    k = _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, n_ext > 0, k, points, marks, targets, mass2, cell_mpc,
+                      kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count,
+                      cell_edges, cell_kernel)
+    return points[1, n_bp - 1], k, dm
+
+
+@both_targets
+def _cross_pieces(p0, p1, p2, p3, p4, p5, n_bp, has_extrema, k, points, marks, targets, mass2, cell_mpc,
+                  kernel_unit, opz_a, slope_opz, h_a, slope_h, d_a, d_1, blended, weight_term, kernel, count,
+                  cell_edges, cell_kernel):
+    """Add the Landau-Zener crossings of a cell's monotone pieces (between breakpoints ``points``),
+    leaving out those its near-tangent events claimed (``marks``); return the targets below its exit."""
+    n_targets = targets.shape[0]
+    for j in range(n_bp - 1):
+        # Each target between the piece's end values is one crossing, met in the order of its
+        # values: upwards from the count below the start where the piece rises, else downwards.
+        a, b, v_a, v_b = points[0, j], points[0, j + 1], points[1, j], points[1, j + 1]
+        rising = v_b > v_a
+        if (rising and (k >= n_targets or targets[k] >= v_b)) or (not rising and (k <= 0 or targets[k - 1] < v_b)):
+            continue
+        start = _hermite_start(a, b, v_a, v_b, points[2, j], points[2, j + 1], points[3, j], points[3, j + 1])
+        claims = (marks[1, j], marks[2, j], marks[1, j + 1], marks[2, j + 1]) if has_extrema else (0, 0, 0, 0)
+        while True:
+            if rising:
+                if k >= n_targets or targets[k] >= v_b:
+                    break
+                crossed = k
+                k += 1
+            else:
+                if k <= 0 or targets[k - 1] < v_b:
+                    break
+                k -= 1
+                crossed = k
+            if (claims[0] <= crossed < claims[1]) or (claims[2] <= crossed < claims[3]):
+                continue
+            target = targets[crossed]
+            root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
+            value = _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a, slope_opz,
+                                     h_a, slope_h, d_a, d_1, blended, weight_term)
+            kernel[crossed] += value
+            add_to_cell(cell_kernel, cell_edges, crossed, opz_a + slope_opz * root, value)
+            count[crossed] += 1
+    return k
+
+
+# No reference counting here (numba's private ``_nrt`` flag): the walk allocates nothing and every array it
+# touches belongs to its caller, yet with it each inlined solve_cell would count references to its nine
+# array arguments, some twenty atomic operations per cell that cost the walk a tenth of its speed.
+@numba.njit(cache=True, _nrt=False)
 def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, start, direction, length, chi0,
                  cell_mpc, opz_table, hubble_table, chi_step_inverse, targets, ln_targets, mass2, uniform,
                  rate_unit, m2_per_density, omega0, cells, corners, points, marks, kernel, count, tangent_count,
@@ -313,6 +456,9 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     the observed photon energy of near-tangent events (eV; 0 turns them off);
     ``cells``/``corners``/``points``/``marks``: scratch from :func:`scratch`;
     ``cell_edges``/``cell_kernel``: each kernel also goes to its redshift cell (:mod:`.zcells`).
+    The CPU's walk: the segment's cells are tabulated first (their cube reads overlap),
+    then solved in turn (:func:`solve_cell`); :func:`~.streaming.stream_segment` is the
+    same walk cell by cell, without tables.
 
     Polynomials travel as scalars (registers) through inlined helpers: small arrays
     passed between kernels cost more than the arithmetic.
@@ -322,87 +468,22 @@ def walk_segment(cube_lo, cube_hi, scale_lo, scale_hi, blended, z_lo, z_hi, star
     if blended:
         cell_cubics(cube_hi, scale_hi, direction, n_cells, cells, corners, 8)
     cell_redshifts(opz_table, hubble_table, chi_step_inverse, chi0, cell_mpc, n_cells, cells)
-    n_targets = targets.shape[0]
-    inverse_spacing = (n_targets - 1) / (ln_targets[-1] - ln_targets[0]) if n_targets > 1 else 1.0
-    bp, bv, bs, bc = points[0], points[1], points[2], points[3]
-    claim_low, claim_high = marks[1], marks[2]
-    opz_a = _lookup(opz_table, chi_step_inverse, chi0)
-    h_a = _lookup(hubble_table, chi_step_inverse, chi0)
-    kernel_unit = math.pi * cell_mpc / rate_unit
-    inverse_z_interval = 1.0 / (z_hi - z_lo) if blended else 0.0
+    opz_a, h_a, inverse_spacing, kernel_unit, inverse_z_interval = segment_constants(
+        opz_table, hubble_table, chi_step_inverse, chi0, targets, ln_targets, cell_mpc, rate_unit, blended, z_lo, z_hi)
     end_value = -1.0  # P where the previous cell ended
     k = -1  # the number of targets below it
     dm = 0.0
     s_a = 0.0
     for c in range(n_cells):
-        piece = cells[c, 0] - s_a
-        s_a = cells[c, 0]
         opz_b, h_b = cells[c, 12], cells[c, 13]
-        inverse_piece = 1.0 / piece
-        # The blend's weight, linear in the cell's redshift: 0 at z_lo, 1 at z_hi.
-        w_a = min(max((opz_a - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0)
-        w_slope = (min(max((opz_b - 1.0 - z_lo) * inverse_z_interval, 0.0), 1.0) - w_a) * inverse_piece
-        f0, f1, f2, f3, f4, g0, g1, g2, g3 = _comoving_field(
-            cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7], cells[c, 8], cells[c, 9], cells[c, 10], cells[c, 11],
-            blended, w_a, w_slope)
-        slope_opz = (opz_b - opz_a) * inverse_piece
-        slope_h = (h_b - h_a) * inverse_piece
-        dm += cell_mpc * _dispersion_integral(f0, f1, f2, f3, f4, opz_a, slope_opz, piece)
-        # Physical density P = F (1+z)^3, with (1+z)^3 linear over the cell.
-        d_a = opz_a * opz_a * opz_a
-        d_1 = (opz_b * opz_b * opz_b - d_a) * inverse_piece
-        p0, p1, p2, p3, p4, p5 = (f0 * d_a, f1 * d_a + f0 * d_1, f2 * d_a + f1 * d_1, f3 * d_a + f2 * d_1,
-                                  f4 * d_a + f3 * d_1, f4 * d_1)
-        # Breakpoints: the cell's ends and the extrema of P between, with P's value (continuous with
-        # the previous cell's end), slope and curvature there.
-        n_ext, extrema = roots_in(p1, 2.0 * p2, 3.0 * p3, 4.0 * p4, 5.0 * p5, piece)
-        n_bp = n_ext + 2
-        bp[0], bv[0], bs[0], bc[0] = 0.0, end_value if end_value >= 0.0 else p0, p1, 2.0 * p2
-        for j in range(n_ext):
-            bp[j + 1], bv[j + 1], bs[j + 1], bc[j + 1] = extrema[j], evaluate(p0, p1, p2, p3, p4, p5, extrema[j]), 0.0, 0.0
-        bp[n_bp - 1] = piece
-        bv[n_bp - 1], bs[n_bp - 1] = evaluate_with_slope(p0, p1, p2, p3, p4, p5, piece)
-        bc[n_bp - 1] = evaluate(2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, 0.0, 0.0, piece)
-        end_value = bv[n_bp - 1]
-        # Targets are counted by stepping from the last cell's count (the field moves by little per
-        # cell): comparisons in n_e, no logarithm. A cell with extrema first counts at each of its
-        # breakpoints, for its near-tangent events and the crossings they claim.
-        if k < 0:
-            k = _count_below(ln_targets, bv[0], uniform and n_targets > 1, ln_targets[0], inverse_spacing)
-        if n_ext > 0:
-            tangent_events(bp, bv, k, n_bp, 2.0 * p2, 6.0 * p3, 12.0 * p4, 20.0 * p5, opz_a, opz_b, piece,
-                            rate_unit / cell_mpc, omega0, targets, mass2, m2_per_density, marks, kernel, count,
-                            tangent_count, tangent_kernel, cell_edges, cell_kernel)
-        weight_term = (w_a, w_slope, g0, g1, g2, g3, inverse_z_interval)
-        for j in range(n_bp - 1):
-            # Each target between the piece's end values is one crossing, met in the order of its
-            # values: upwards from the count below the start where the piece rises, else downwards.
-            a, b, v_a, v_b = bp[j], bp[j + 1], bv[j], bv[j + 1]
-            rising = v_b > v_a
-            if (rising and (k >= n_targets or targets[k] >= v_b)) or (not rising and (k <= 0 or targets[k - 1] < v_b)):
-                continue
-            start = _hermite_start(a, b, v_a, v_b, bs[j], bs[j + 1], bc[j], bc[j + 1])
-            claims = (claim_low[j], claim_high[j], claim_low[j + 1], claim_high[j + 1]) if n_ext > 0 else (0, 0, 0, 0)
-            while True:
-                if rising:
-                    if k >= n_targets or targets[k] >= v_b:
-                        break
-                    crossed = k
-                    k += 1
-                else:
-                    if k <= 0 or targets[k - 1] < v_b:
-                        break
-                    k -= 1
-                    crossed = k
-                if (claims[0] <= crossed < claims[1]) or (claims[2] <= crossed < claims[3]):
-                    continue
-                target = targets[crossed]
-                root, slope = _crossing(p0, p1, p2, p3, p4, p5, target, a, b, v_a, v_b, start)
-                value = _crossing_kernel(root, slope, target, mass2[crossed], cell_mpc, kernel_unit, opz_a, slope_opz,
-                                         h_a, slope_h, d_a, d_1, blended, weight_term)
-                kernel[crossed] += value
-                add_to_cell(cell_kernel, cell_edges, crossed, opz_a + slope_opz * root, value)
-                count[crossed] += 1
+        end_value, k, dm_cell = solve_cell(
+            (cells[c, 4], cells[c, 5], cells[c, 6], cells[c, 7]),
+            (cells[c, 8], cells[c, 9], cells[c, 10], cells[c, 11]), cells[c, 0] - s_a, opz_a, opz_b, h_a, h_b,
+            end_value, k, blended, z_lo, inverse_z_interval, cell_mpc, kernel_unit, targets, ln_targets, mass2,
+            uniform, inverse_spacing, rate_unit, m2_per_density, omega0, points, marks, kernel, count, tangent_count,
+            tangent_kernel, cell_edges, cell_kernel)
+        dm += dm_cell
+        s_a = cells[c, 0]
         opz_a, h_a = opz_b, h_b
     return dm * 1.0e6  # Mpc cm^-3 -> pc cm^-3
 

@@ -12,11 +12,13 @@ import math
 import numba
 import numpy as np
 
+from raytrace.kernels.targets import both_targets
+
 _GOLDEN = 0x9E3779B97F4A7C15
 _UNIT = 1.0 / 9007199254740992.0  # 2^-53
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _mix(state):
     """splitmix64 finaliser: a well-spread 64-bit hash."""
     state = (state ^ (state >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
@@ -24,13 +26,13 @@ def _mix(state):
     return state ^ (state >> np.uint64(31))
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _uniform(key, counter):
     """Number ``counter`` in [0, 1) of the stream ``key``."""
     return float(_mix(key + np.uint64(counter + 1) * np.uint64(_GOLDEN)) >> np.uint64(11)) * _UNIT
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def copy_transform(seed, box_index, c0, c1, c2):
     """(symmetry index 0-47, three shifts in [0, 1)) of lattice copy (c0, c1, c2) of box ``box_index``.
 

@@ -22,21 +22,21 @@ settles most of the engine's cells without the chain.
 
 import math
 
-import numba
+from raytrace.kernels.targets import both_targets
 
 #: Absolute accuracy of a bracketed root, in the caller's units (cells for the engine). A
 #: crossing's rate is its slope there, which a root off by 1e-8 cells moves by ~1e-8 of itself.
 ROOT_TOLERANCE = 1e-8
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def evaluate(c0, c1, c2, c3, c4, c5, x):
     # Estrin's scheme: shorter chains of dependent multiply-adds than Horner's, the same terms.
     x2 = x * x
     return (c0 + c1 * x) + x2 * ((c2 + c3 * x) + x2 * (c4 + c5 * x))
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def evaluate_with_slope(c0, c1, c2, c3, c4, c5, x):
     """(p(x), p'(x))."""
     x2 = x * x
@@ -45,7 +45,7 @@ def evaluate_with_slope(c0, c1, c2, c3, c4, c5, x):
     return value, slope
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _taylor(c0, c1, c2, c3, c4, c5, x):
     """The first Taylor coefficients at x: p, its slope, half its curvature, a sixth of its third
     derivative (Estrin's scheme for each)."""
@@ -57,7 +57,7 @@ def _taylor(c0, c1, c2, c3, c4, c5, x):
     return value, t1, t2, t3
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def chebyshev_step(c0, c1, c2, c3, c4, c5, x):
     """(root, slope there, error, p(x)): one step to the root of p near x from its Taylor series at x.
 
@@ -81,7 +81,7 @@ def chebyshev_step(c0, c1, c2, c3, c4, c5, x):
     return x + e, slope + e * (2.0 * t2 + e * (3.0 * t3 + e * (4.0 * t4 + 5.0 * c5 * e))), error, g
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def bracketed_root(c0, c1, c2, c3, c4, c5, low, high, g_low, g_high, start):
     """(x, slope of p at x): the x in [low, high] with p(x) = 0, where p changes sign once there
     (g_ = p at the ends), found from ``start`` (outside the bracket: its regula falsi point).
@@ -120,7 +120,7 @@ def bracketed_root(c0, c1, c2, c3, c4, c5, low, high, g_low, g_high, start):
     return x, slope
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _quadratic_roots(c0, c1, c2, length):
     """(n, x1, x2): the roots of c0 + c1 x + c2 x^2 inside (0, length), sorted."""
     n = 0
@@ -153,7 +153,7 @@ def _quadratic_roots(c0, c1, c2, length):
     return n, r1, r2
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _root_of_piece(c0, c1, c2, c3, c4, left, f_left, right, f_right, length):
     """The root of p on its monotone piece [left, right], or -1.0 where it has none."""
     if (f_left < 0.0 < f_right) or (f_right < 0.0 < f_left):
@@ -163,7 +163,7 @@ def _root_of_piece(c0, c1, c2, c3, c4, left, f_left, right, f_right, length):
     return -1.0
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _append(roots, n, x):
     """(n, roots) with x appended where x >= 0 (roots: a 4-tuple; a root is never negative)."""
     if x < 0.0:
@@ -178,7 +178,7 @@ def _append(roots, n, x):
     return 4, (r0, r1, r2, x)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def _cubic_roots_in(c0, c1, c2, c3, length):
     """(n, (x0, x1, x2, 0)): the roots of c0 + c1 x + c2 x^2 + c3 x^3 inside (0, length), sorted."""
     none = (0.0, 0.0, 0.0, 0.0)
@@ -205,7 +205,7 @@ def _cubic_roots_in(c0, c1, c2, c3, length):
     return _append(roots, n, _root_of_piece(c0, c1, c2, c3, 0.0, left, f_left, length, b3, length))
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def roots_in(c0, c1, c2, c3, c4, length):
     """(n, (x0, x1, x2, x3)): the roots of c0 + ... + c4 x^4 inside (0, length), sorted, n of them.
 
@@ -225,7 +225,7 @@ def roots_in(c0, c1, c2, c3, c4, length):
     return n, roots
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def airy_ai(x):
     """Ai(x) (DLMF 9.2) from its Maclaurin series (DLMF 9.4.1), for -8 <= x <= 5.
 

@@ -10,10 +10,10 @@ breakpoint and the crossings each event claims, which the crossing solver of
 
 import math
 
-import numba
 import numpy as np
 
 from raytrace.kernels.polynomial import airy_ai, evaluate
+from raytrace.kernels.targets import both_targets
 from raytrace.kernels.zcells import add_to_cell
 
 #: |xi| below which a near-tangent pair takes the Airy form. At this root of
@@ -26,7 +26,13 @@ _TWO_THIRD = 2.0 / 3.0
 _CUBE_ROOT_TWO = 2.0 ** (1.0 / 3.0)
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
+def cube_root(x):
+    """x^(1/3); :mod:`.gpu` has its own (numpy.cbrt has no CUDA form)."""
+    return np.cbrt(x)
+
+
+@both_targets
 def count_below_near(targets, value, hint):
     """Number of targets < value, stepping from ``hint`` (a count for a nearby value)."""
     k = hint
@@ -38,7 +44,7 @@ def count_below_near(targets, value, hint):
     return k
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     """K (eV) of one near-tangent pair or near miss (PHYSICS.md section 9).
 
@@ -52,7 +58,7 @@ def pair_kernel(mass2, one_plus_z, omega, curvature, delta):
     return math.pi**2 * mass2 * mass2 / (one_plus_z * omega) * (4.0 * omega / abs(curvature)) ** _TWO_THIRD * ai * ai
 
 
-@numba.njit(cache=True)
+@both_targets(inline=False)
 def tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, length, sigma_rate, omega0, targets,
                     mass2, m2_per_density, marks, kernel, count, tangent_count, tangent_kernel, cell_edges,
                     cell_kernel):
@@ -91,7 +97,7 @@ def tangent_events(bp, bv, below_start, n_bp, e0, e1, e2, e3, opz_a, opz_b, leng
         nearest = min(below_distance, above_distance)
         if nearest * nearest * nearest > 2.0 * (XI_CUT / m2_per_density) ** 3 * omega * omega * abs_a:
             continue
-        half_width = XI_CUT * _CUBE_ROOT_TWO * np.cbrt(omega * omega * abs_a) / m2_per_density
+        half_width = XI_CUT * _CUBE_ROOT_TWO * cube_root(omega * omega * abs_a) / m2_per_density
         k_start = count_below_near(targets, pe - half_width, k)
         k_stop = count_below_near(targets, pe + half_width, k)
         if k_start == k_stop:

@@ -4,15 +4,15 @@ In: one ray's cell rows (cells, masses), each mass's inner cell edges in 1+z
 (ascending, padded with +inf), the crossing's mass index, its 1+z and its kernel.
 Out: the kernel added into the row of its cell. Cell j of mass k holds the
 crossings with inner[k, j - 1] <= 1+z < inner[k, j] (no lower edge for j = 0,
-no upper one for the last). The cells are set up in :mod:`raytrace.redshiftbins`:
+no upper one for the last). The cells are set up in :mod:`raytrace.tracing.redshiftbins`:
 the redshift bins and the density classes of the crossing, D* = (m / mbar_gamma(z))^2,
 are both unions of cells, so one addition per crossing serves both.
 """
 
-import numba
+from raytrace.kernels.targets import both_targets
 
 
-@numba.njit(cache=True, inline="always")
+@both_targets
 def add_to_cell(cell_kernel, inner_edges, k, opz, value):
     """cell_kernel[cell of (k, opz), k] += value; nothing where no cells are kept (zero rows)."""
     if cell_kernel.shape[0] == 0:

@@ -2,6 +2,7 @@
 
 In: mean kernels (a sightline result) and a sky. Out: epsilon_max(m) from the
 measured CMB spectrum (``spectrum``: the FIRAS monopole; ``spectral``) and from
-the isotropy of the CMB (``anisotropy``), gathered in a
+a sky's anisotropy against the measured TT spectrum (``cmbpower``: Planck 2018;
+``anisotropy``), gathered in a
 :class:`~raytrace.limits.limitset.LimitSet` with its tables and plot.
 """

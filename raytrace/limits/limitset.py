@@ -1,7 +1,8 @@
 """A set of limit curves, and its tables and plots.
 
-In: limit curves of any kind (the :class:`~raytrace.limits.spectral.SpectralLimit` and
-:class:`~raytrace.limits.spectral.AnisotropyLimit` of :mod:`raytrace.limits.spectral`) gathered in
+In: limit curves of any kind (the :class:`~raytrace.limits.spectral.SpectralLimit` of
+:mod:`raytrace.limits.spectral`, the :class:`~raytrace.limits.anisotropy.AnisotropyLimit` of
+:mod:`raytrace.limits.anisotropy`) gathered in
 a :class:`LimitSet` (lines plus :class:`LimitBand` bands) on one mass grid.
 Out: a CSV or HDF5 table (:func:`limit_table`) and a log-log plot of
 epsilon_max(m) (:func:`plot_limits`).
@@ -47,6 +48,10 @@ class LimitSet:
     def with_curve(self, curve):
         """A new LimitSet with ``curve`` added to the lines (e.g. an anisotropy limit)."""
         return LimitSet(self.curves + (curve,), self.bands)
+
+    def joined(self, other):
+        """A new LimitSet with the curves and bands of ``other`` (a LimitSet) added."""
+        return LimitSet(self.curves + other.curves, self.bands + other.bands)
 
     def all_curves(self):
         """Lines, then each band's two edges."""

@@ -6,9 +6,9 @@ measured spectrum (:mod:`raytrace.limits.spectrum`; default the FIRAS monopole o
 Fixsen et al. 1996). Out: immutable :class:`SpectralLimit` curves epsilon_max(m)
 with the fit behind them, gathered by :func:`sightline_limits` in a
 :class:`~raytrace.limits.limitset.LimitSet` (lines plus bands). From a sky result
-(:mod:`raytrace.sky.maps`), :mod:`raytrace.limits.anisotropy` gives the
-isotropy test's curve, of the same kind. Tables and plots of the curves are
-:mod:`raytrace.limits.limitset`'s.
+(:mod:`raytrace.sky.maps`), :mod:`raytrace.limits.anisotropy` gives the limits of
+its anisotropy against the measured CMB spectrum, curves of the same kind. Tables
+and plots of the curves are :mod:`raytrace.limits.limitset`'s.
 """
 
 import os

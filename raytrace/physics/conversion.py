@@ -19,6 +19,10 @@ from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 #: The CMB is isotropic to about 1e-5 in dT/T (a fact of the trade, no source): the default
 #: level of the quick-look isotropy test.
 ISOTROPY_LEVEL = 1e-5
+#: The observed frequency of a sky's dT/T and anisotropy limits unless one is given: 143 GHz, the central
+#: channel of the Planck TT spectrum (common practice, no source).
+ANISOTROPY_FREQUENCY_GHZ = 143.0
+
 #: Above this linear P = epsilon^2 K / omega_0 the sum over crossings is no longer small (PHYSICS.md
 #: section 2: P = sum p_i holds while P << 1); the saturating form is then shown. At 0.1 the two
 #: differ by 9 %: (1 - exp(-0.2)) / 2 = 0.0906.

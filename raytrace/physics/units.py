@@ -5,10 +5,12 @@ Out: plain floats in the engine's units. Nothing is guessed: a bare number
 without a unit is an error that says which units are understood.
 """
 
+import math
+
 import astropy.units as u
 
 from raytrace.core.errors import InputError
-from raytrace.physics.constants import K_BOLTZMANN_EV_K
+from raytrace.physics.constants import HBAR_EV_S, K_BOLTZMANN_EV_K
 
 #: CMB temperature today, T_0 = 2.72548 +- 0.00057 K (Fixsen 2009, ApJ 707, 916).
 CMB_TEMPERATURE_K = 2.72548
@@ -43,3 +45,13 @@ def photon_energy_eV(value, what="frequency"):
     if not energy > 0:
         raise InputError(f"{what}: expected a positive photon energy, got {value!r}")
     return float(energy)
+
+
+def photon_energy_of_ghz(frequency_ghz):
+    """h nu in eV of a frequency in GHz."""
+    return float(frequency_ghz) * 1e9 * 2.0 * math.pi * HBAR_EV_S
+
+
+def frequency_label(omega0_eV):
+    """A photon energy in eV as its frequency, for labels: '143 GHz'."""
+    return f"{omega0_eV / (2.0 * math.pi * HBAR_EV_S) / 1e9:.3g} GHz"

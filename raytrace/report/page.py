@@ -18,7 +18,7 @@ import numpy as np
 from raytrace.core.errors import InputError, RaytraceWarning, require_positive_finite
 from raytrace.core.figures import pyplot
 from raytrace.core.provenance import atomic_output, check_outputs, output_set
-from raytrace.limits.anisotropy import anisotropy_curve
+from raytrace.limits.anisotropy import COMPONENT_SEPARATION_CAVEAT, DEFAULT_PHOTON_ENERGY_EV, anisotropy_limits
 from raytrace.limits.limitset import plot_limits, same_mass_grid
 from raytrace.limits.spectral import UnconstrainedMassWarning, result_kernels, sightline_limits
 from raytrace.limits.spectrum import Spectrum, read_spectrum
@@ -26,7 +26,9 @@ from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 from raytrace.report.crosscheck import warn_differences
 from raytrace.report.environments import environment_lines, environment_page
 from raytrace.report.plots import kernel_bands, shown_mass_index
+from raytrace.report.skyfigures import draw_spectra
 from raytrace.report.trust import trust_lines
+from raytrace.sky.figures import draw_map, shown_epsilon
 from raytrace.sky.maps import SkyResult
 from raytrace.statistics.results import SightlineResult
 
@@ -51,11 +53,13 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
                 kinds=KINDS):
     """Write the one-page report of a run: ``<path_stem>.png``, ``.pdf`` and ``.txt``.
 
-    ``sightlines``, ``sky``: result objects or their HDF5 files. ``epsilon``
-    (with ``omega0_eV``, default k T_0): show P = epsilon^2 K / omega_0 instead
-    of K and the sky's dT/T map. ``omega0_eV`` is also the photon energy of the
-    anisotropy limit (``threshold`` or ``cl_limits`` as in
-    :func:`raytrace.limits.anisotropy.anisotropy_curve`). ``spectrum``: a Spectrum, a file
+    ``sightlines``, ``sky``: result objects or their HDF5 files (a sky with
+    independent splits: two or more rays per pixel). ``epsilon`` (with
+    ``omega0_eV``, default k T_0): show P = epsilon^2 K / omega_0 instead of K, and
+    the sky's dT/T map at that epsilon (without it, at the anisotropy limit of the
+    shown mass). ``omega0_eV`` is also the photon energy of the anisotropy limits
+    and the sky's figures (default there 143 GHz; ``threshold``, ``cl_limits`` as
+    in :func:`raytrace.limits.anisotropy.anisotropy_limits`). ``spectrum``: a Spectrum, a file
     for :func:`raytrace.limits.spectrum.read_spectrum`, or None for FIRAS. ``plasma``:
     the MeanPlasma of the homogeneous comparison (default CAMB, Planck 2018).
     ``mass_eV``: the sky map's mass (default: :func:`raytrace.report.plots.shown_mass_index`,
@@ -77,20 +81,27 @@ def make_report(sightlines, path_stem, sky=None, epsilon=None, omega0_eV=None, s
         paths.update(where)
     sky_name = f"sky {sky}" if isinstance(sky, (str, Path)) else "the sky"
     sky = None if sky is None else _load(sky, SkyResult)
+    spectra = None
     if sky is not None:
+        from raytrace.sky.spectra import sky_spectra
+
+        sky.require_splits(sky_name)
+        spectra = sky_spectra(sky)
         warn_differences(result, sky, f"sightlines {sightlines}" if isinstance(sightlines, (str, Path))
                          else "the sightlines", sky_name)
     omega0 = CMB_PHOTON_ENERGY_EV if omega0_eV is None else float(require_positive_finite(omega0_eV, "omega0_eV"))
+    sky_omega0 = DEFAULT_PHOTON_ENERGY_EV if omega0_eV is None else omega0
     if epsilon is not None:
         epsilon = float(require_positive_finite(epsilon, "epsilon"))
     spectrum = spectrum if isinstance(spectrum, Spectrum) else read_spectrum(spectrum)
 
-    limits, notes = _limits(result, sky, spectrum, confidence, fit_galaxy, omega0, threshold, cl_limits, plasma)
+    limits, notes = _limits(result, sky, spectra, spectrum, confidence, fit_galaxy, sky_omega0, threshold, cl_limits,
+                            plasma)
     picked = histogram_masses(result)
     sky_index = None if sky is None else shown_mass_index(sky, mass_eV)
-    text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, threshold)
+    text = summary(result, limits, picked, notes, sky, sky_index, epsilon, omega0, spectra)
     plt = pyplot()
-    figure = _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0)
+    figure = _page(plt, result, limits, picked, text, (sky, spectra, sky_index, sky_omega0), epsilon, omega0)
     with output_set():  # the chosen files, or none (checked above)
         try:
             for kind in [kind for kind in ("png", "pdf") if kind in paths]:
@@ -134,7 +145,7 @@ def _share(result):
 
 
 def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=None, omega0_eV=CMB_PHOTON_ENERGY_EV,
-            threshold=None):
+            spectra=None):
     """The report's text: run parameters, boxes versus background, probed masses, limits at a few masses,
     the built-in mean check and how well the spread is determined (:mod:`raytrace.report.trust`)."""
     z_max = float(result.run["z_max"])
@@ -152,8 +163,10 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
                      f"seed {sky.run.get('seed')}, z = 0 to {sky.run['z_max']:g}, boxes to {sky.run['z_boxes']:g}; "
                      f"map at m = {sky.mass_eV[sky_index]:.3g} eV (resonating in "
                      f"{100 * np.count_nonzero(sky.map('crossings', sky_index)) / sky.npix:.0f} % of pixels)")
-        lines.append(f"  anisotropy limit: {anisotropy.label}"
+        lines.append(f"  eps sky: {anisotropy.label.replace('sky: ', '')} (band: signal spectrum +-1 sigma; '*': noise exceeds signal in "
+                     f"the bands that decide it); also {by_name['anisotropy_rms'].label.replace('sky ', '')}"
                      + ("" if same_mass_grid(sky.mass_eV, mass) else "; on its own mass grid, plotted only"))
+        lines.append(f"  {COMPONENT_SEPARATION_CAVEAT}")
     shown_sky = anisotropy is not None and same_mass_grid(anisotropy.mass_eV, mass)
 
     best = np.argmin(by_name["mean"].epsilon_max)
@@ -167,7 +180,7 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
                  _percent((result.crossings[:, k] > 0).mean())]
         cells += [_epsilon(by_name[name].epsilon_max[k]) for name in ("mean", "background", "sightline_p16",
                                                                       "sightline_p84")]
-        cells += [_epsilon(anisotropy.epsilon_max[k])] if shown_sky else []
+        cells += [_epsilon(anisotropy.epsilon_max[k]) + ("*" if anisotropy.noisy[k] else "")] if shown_sky else []
         cells += [f"{result.probability(epsilon, omega0_eV)[:, k].mean():.3g}"] if epsilon is not None else []
         lines.append("  " + " ".join(f"{cell:>11}" for cell in cells))
     lines.append("  boxes: the boxes' share of <K>; rays hit: share of rays with a resonance in the boxes; "
@@ -179,7 +192,7 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
         legend.append(f"<P>: mean over rays at epsilon = {epsilon:g}, omega_0 = {omega0_eV:.4g} eV")
     if legend:
         lines.append("  " + "; ".join(legend))
-    trust, warned = trust_lines(result, rows.astype(int), sky, sky_index, omega0_eV, threshold)
+    trust, warned = trust_lines(result, rows.astype(int), sky, sky_index, spectra)
     lines += trust
     for message in warned:
         warnings.warn(message, RaytraceWarning, stacklevel=3)
@@ -244,14 +257,14 @@ def _load(value, kind):
     return value if isinstance(value, kind) else kind.load(value)
 
 
-def _limits(result, sky, spectrum, confidence, fit_galaxy, omega0, threshold, cl_limits, plasma):
+def _limits(result, sky, spectra, spectrum, confidence, fit_galaxy, omega0, threshold, cl_limits, plasma):
     """The LimitSet of the page, and the unconstrained-mass warnings turned into notes for its text."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         limits = sightline_limits(**result_kernels(result, plasma), spectrum=spectrum, confidence=confidence,
                                   fit_galaxy=fit_galaxy)
         if sky is not None:
-            limits = limits.with_curve(anisotropy_curve(sky, omega0, threshold=threshold, cl_limits=cl_limits))
+            limits = limits.joined(anisotropy_limits(sky, omega0, confidence, threshold, cl_limits, spectra))
     notes = []
     for warning in caught:
         if issubclass(warning.category, UnconstrainedMassWarning):
@@ -269,8 +282,11 @@ def _epsilon(value):
     return f"{value:.3g}" if np.isfinite(value) else "none"
 
 
-def _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0):
-    """The figure: two panels a row, the sky's row when there is one, then the text."""
+def _page(plt, result, limits, picked, text, shown_sky, epsilon, omega0):
+    """The figure: two panels a row, the sky's row when there is one, then the text.
+
+    ``shown_sky``: (sky or None, its spectra, the shown mass's index, the sky's photon energy)."""
+    sky, spectra, sky_index, sky_omega0 = shown_sky
     panel_rows = 3 if sky is not None else 2
     text_in = _LINE_IN * (text.count("\n") + 1)
     height = _TOP_IN + panel_rows * (_PANEL_IN + _GAP_IN) + text_in + _BOTTOM_IN
@@ -288,8 +304,11 @@ def _page(plt, result, limits, picked, text, sky, sky_index, epsilon, omega0):
     _draw_histograms(figure.add_axes(rect(1, 0)), result, picked)
     _draw_dispersion(figure.add_axes(rect(1, 1)), result)
     if sky is not None:
-        _draw_sky(plt, figure, rect(2, 0), sky, sky_index, epsilon, omega0)
-        _draw_power(figure.add_axes(rect(2, 1)), sky, sky_index, epsilon, omega0)
+        measured = next(curve for curve in limits.curves if curve.name == "anisotropy")
+        sky_epsilon, _ = shown_epsilon(measured if same_mass_grid(measured.mass_eV, sky.mass_eV) else None,
+                                       sky_index, epsilon)
+        _draw_sky(plt, figure, rect(2, 0), sky, sky_index, sky_epsilon, sky_omega0)
+        draw_spectra(figure.add_axes(rect(2, 1)), spectra, sky_index, sky_epsilon, sky_omega0)
     words = figure.add_axes([_LEFT_IN / 2 / PAGE_WIDTH_IN, _BOTTOM_IN / height,
                              1 - (_LEFT_IN / 2 + _RIGHT_IN) / PAGE_WIDTH_IN, text_in / height])
     words.axis("off")
@@ -380,40 +399,11 @@ def _draw_dispersion(ax, result):
     ax.legend(fontsize=7, loc="upper right")
 
 
-def _sky_map(sky, index, epsilon, omega0):
-    """The map shown, what it is, its unit on the colour bar and the unit of its C_l: K, or dT/T at ``epsilon``."""
-    mass = sky.mass_eV[index]
-    if epsilon is None:
-        return sky.kernel_map(mass), "K", "K [eV]", "eV$^2$"
-    what = f"dT/T at epsilon = {epsilon:g}"
-    return sky.temperature_anisotropy(mass, epsilon, omega0), what, what, "(dT/T)$^2$"
-
-
 def _draw_sky(plt, figure, where, sky, index, epsilon, omega0):
-    from raytrace.core.figures import mollview
-
-    values, _, unit, _ = _sky_map(sky, index, epsilon, omega0)
     left, bottom, width, height = where
     plt.figure(figure.number)  # mollview draws on pyplot's current figure
     # sub=(1, 1, 1) spans the page; the margins cut it down to this panel's place.
-    mollview(values, nest=sky.ordering == "NESTED", sub=(1, 1, 1), unit=unit, format="%.3g",
-             margins=(left, bottom, 1 - left - width, 1 - bottom - height), fontsize={"cbar_label": 9},
+    draw_map(sky, index, epsilon, omega0, sub=(1, 1, 1), margins=(left, bottom, 1 - left - width, 1 - bottom - height),
              title=f"sky at m = {sky.mass_eV[index]:.3g} eV, z < {sky.run['z_max']:g}")
     plt.gca().title.set_fontsize(10)  # mollview leaves its map axes current, the colour bar last
-    figure.axes[-1].tick_params(labelsize=8)
-
-
-def _draw_power(ax, sky, index, epsilon, omega0):
-    values, what, _, squared = _sky_map(sky, index, epsilon, omega0)
-    cl = sky.angular_power(values)
-    ell = np.arange(1, cl.size)
-    power = ell * (ell + 1) * cl[1:] / (2 * np.pi)
-    ax.plot(ell, np.where(power > 0, power, np.nan), "o-", ms=3, color="C4")
-    ax.set_xscale("log")
-    _readable_log_axis(ax.xaxis, integers=True)
-    if np.any(power > 0):
-        ax.set_yscale("log")
-    ax.set_xlabel("multipole l")
-    ax.set_ylabel(rf"$l(l+1)\,C_l / 2\pi$ [{squared}]")
-    ax.set_title(f"angular power of the map of {what.split(' at ')[0]} (pixel window not deconvolved)", fontsize=10)
-    ax.grid(True, which="major", alpha=0.3)
+    figure.axes[-1].tick_params(labelsize=7)

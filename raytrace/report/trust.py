@@ -1,20 +1,21 @@
 """The report's lines on how far a result can be trusted: the built-in mean check and the spread.
 
-In: a sightline result (and optionally a sky result), the masses to show, the
-photon energy and isotropy threshold of the anisotropy limit. Out: text lines
-(per mass: the MC/PDF ratio with the Monte Carlo standard error and the pull;
+In: a sightline result (and optionally a sky result with its signal and noise
+spectra, :mod:`raytrace.sky.spectra`), the masses to show. Out: text lines (per
+mass: the MC/PDF ratio with the Monte Carlo standard error and the pull;
 std/mean with its bootstrap interval, the top-1 % variance share, the Hill tail
-index and robust spreads; the sky's rms anisotropy limit with its bootstrap
-interval; warnings naming masses) and the warnings to show beside them.
+index and robust spreads; at the sky's shown mass its signal and noise side by
+side, and where the noise exceeds the signal; warnings naming masses) and the
+warnings to show beside them.
 """
 
 import numpy as np
 
-from raytrace.statistics.spread import N_RESAMPLES, sky_rms_interval, spread
+from raytrace.statistics.spread import N_RESAMPLES, spread
 
 
-def trust_lines(result, rows, sky=None, sky_index=None, omega0_eV=None, threshold=None, n_resamples=N_RESAMPLES):
-    """(lines, warnings) for the masses ``rows`` of ``result`` (sky: at its mass ``sky_index``)."""
+def trust_lines(result, rows, sky=None, sky_index=None, spectra=None, n_resamples=N_RESAMPLES):
+    """(lines, warnings) for the masses ``rows`` of ``result`` (sky: its ``spectra`` at its mass ``sky_index``)."""
     lines, warned = [], []
     check = result.mean_check()
     found = (spread(result.kernel, result.mass_eV, n_resamples, int(result.run.get("seed", 0)))
@@ -41,18 +42,10 @@ def trust_lines(result, rows, sky=None, sky_index=None, omega0_eV=None, threshol
             warned.append(message)
             lines.append(f"  WARNING: {message}")
     if sky is not None and sky_index is not None:
-        interval = sky_rms_interval(sky, omega0_eV, n_resamples, int(sky.run.get("seed", 0)), threshold=threshold,
-                                    masses=[sky_index])
-        interval = {key: value[0] if isinstance(value, np.ndarray) else value for key, value in interval.items()}
-        k = sky_index
-        if interval["rms"] > 0:
-            lines.append(f"sky at m = {sky.mass_eV[k]:.3g} eV: rms dT/T {interval['rms']:.3g} at epsilon = 1 "
-                         f"(68 % bootstrap over pixels {interval['rms_low']:.3g} to {interval['rms_high']:.3g}); "
-                         f"rms anisotropy limit epsilon_max = {interval['epsilon_max']:.3g} "
-                         f"({interval['epsilon_low']:.3g} to {interval['epsilon_high']:.3g}); correlated "
-                         "pixels: a lower bound on the interval's width")
-        else:
-            lines.append(f"sky at m = {sky.mass_eV[k]:.3g} eV: a flat map (no resonance or no anisotropy), no limit")
+        from raytrace.sky.spectra import signal_noise_lines
+
+        found = signal_noise_lines(spectra, [sky_index], most=3)
+        lines += ["sky: " + found[0], *found[1:-1], "  " + found[-1]]
         sky_check = sky.mean_check()
         if sky_check is not None and sky_check.message():
             warned.append("sky: " + sky_check.message())

@@ -108,9 +108,12 @@ def _timed_on_a_stand_in(summary, plan):
     from raytrace.sky.maps import SkyResult
 
     n_pixels, masses = 12 * STAND_IN**2, plan.mass_eV.size
-    maps = np.random.default_rng(0).lognormal(0.0, 0.5, (n_pixels, masses))
+    rng = np.random.default_rng(0)
+    maps = rng.lognormal(0.0, 0.5, (n_pixels, masses))
+    # With splits the summary also computes their spectra and limits: the stand-in has splits too.
+    splits = rng.lognormal(0.0, 0.5, (n_pixels, 2, masses)) if plan.run["split_rays"] else None
     sky = SkyResult(plan.mass_eV, maps, np.zeros(masses), maps, np.zeros(n_pixels), 0.0,
-                    dict(plan.run, nside=STAND_IN))
+                    dict(plan.run, nside=STAND_IN), kernel_splits=splits)
     begun = time.perf_counter()
     summary(sky)
     return time.perf_counter() - begun

@@ -3,15 +3,19 @@
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
 its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
+the maps of two independent splits of each pixel's rays
+(:mod:`raytrace.tracing.splits`; their signal and noise: :mod:`raytrace.sky.spectra`),
 angular power spectra (healpy.anafast), FITS maps (:mod:`raytrace.sky.fits`),
-Mollweide plots, maps per redshift shell, and the anisotropy limit on epsilon.
+Mollweide plots (:mod:`raytrace.sky.figures`) and maps per redshift shell. The
+limits on epsilon from its anisotropy are :mod:`raytrace.limits.anisotropy`'s.
 
 A sky's maps stay where its run wrote them: in its result file, or for a run
 without one in the same file in memory. Everything downstream reads them one
-mass at a time (:meth:`SkyResult.map`, :meth:`SkyResult.columns`), so memory
-holds one map (plus the file's page cache) whatever nside and the number of
-masses; the whole arrays (``kernel``, ``crossings`` ...) are still there for
-small skies and read every map.
+mass at a time (:meth:`SkyResult.map`, :meth:`SkyResult.split_maps`,
+:meth:`SkyResult.columns`), so memory holds one map (plus the file's page cache)
+whatever nside and the number of masses; the whole arrays (``kernel``,
+``crossings``, ``kernel_splits`` ...) are still there for small skies and read
+every map.
 
 The light cone is traced by :mod:`raytrace.tracing.lattice`, which says how
 the copies of the boxes are laid out and transformed. The random transforms break the exact repetition a plain periodic
@@ -32,6 +36,7 @@ from raytrace.statistics.results import KernelRows, tangent_arrays
 from raytrace.statistics.spread import Columns
 from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
 from raytrace.tracing.lattice import FORMAT, trace_sky
+from raytrace.tracing.splits import SPLITS
 
 #: Pixels per piece when the face of each pixel is worked out (RING order): 8 MB of indices at a time.
 _FACE_PIECE = 1 << 20
@@ -52,22 +57,28 @@ class SkyResult(KernelRows):
     ``maps`` holds each per-mass array (n_masses, npix), mass-major, as numpy
     arrays or the file's datasets; :meth:`map` reads one mass's map. ``kernel``
     (npix, n_masses) in eV, pixel order as ``ordering`` says, reads them all;
-    P = epsilon^2 K / omega_0.
+    P = epsilon^2 K / omega_0. ``splits`` holds the boxes' kernel of each
+    independent split of the pixels' rays (:mod:`raytrace.tracing.splits`),
+    (n_masses, 2, npix), read a mass at a time by :meth:`split_maps`; None for a
+    sky of one ray per pixel (or a file from before the splits): its noise is unknown.
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
-                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None):
+                 dispersion_measure_background, run, tangent_events=None, kernel_tangent=None, kernel_splits=None):
         kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         # Per pixel: means over the pixel's rays, so fractional counts.
         events, tangent = tangent_arrays(kernel_boxes, tangent_events, kernel_tangent)
         maps = {"kernel_boxes": kernel_boxes.T, "crossings": np.asarray(crossings, dtype=float).T,
                 "tangent_events": np.asarray(events, dtype=float).T, "kernel_tangent": tangent.T}
-        self._set_up(mass_eV, maps, kernel_background, dispersion_measure_boxes, dispersion_measure_background, run)
+        splits = None if kernel_splits is None else np.asarray(kernel_splits, dtype=float).transpose(2, 1, 0)
+        self._set_up(mass_eV, maps, splits, kernel_background, dispersion_measure_boxes, dispersion_measure_background,
+                     run)
 
-    def _set_up(self, mass_eV, maps, kernel_background, dispersion_measure_boxes, dispersion_measure_background,
-                run, handle=None):
+    def _set_up(self, mass_eV, maps, splits, kernel_background, dispersion_measure_boxes,
+                dispersion_measure_background, run, handle=None):
         self.mass_eV = np.asarray(mass_eV, dtype=float)
         self.maps = maps
+        self.splits = splits
         self.kernel_background = np.asarray(kernel_background, dtype=float)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
@@ -84,22 +95,25 @@ class SkyResult(KernelRows):
         path = handle.filename
         sky = object.__new__(cls)
         maps = {name: item for name, item in handle.items() if int(item.attrs.get("rows_axis", 0)) >= 1}
+        splits = maps.pop("kernel_splits", None)
         if maps:
             run, mass = run_record(handle, path, _REQUIRED), mass_grid(handle, path)
             npix = sky_rows(run, path)
             arrays = read_arrays(handle, path, ("kernel_background", "dispersion_measure_boxes"), mass.size, npix)
-            for name, item in maps.items():
-                if item.shape != (mass.size, npix):
-                    raise InputError(f"{path}: dataset {name} has shape {item.shape}; expected {(mass.size, npix)} "
-                                     "(masses, pixels): the file is damaged or cut short")
+            for name, item in {**maps, **({} if splits is None else {"kernel_splits": splits})}.items():
+                expected = (mass.size, npix) if name != "kernel_splits" else (mass.size, SPLITS, npix)
+                if item.shape != expected:
+                    raise InputError(f"{path}: dataset {name} has shape {item.shape}; expected {expected} "
+                                     "(masses, [splits,] pixels): the file is damaged or cut short")
             dm_background = scalar_attribute(handle, path, "dispersion_measure_background")
-        else:  # files before format version 3 hold (npix, n_masses), rows first, and fit in memory
+        else:  # files before format version 3 hold (npix, [splits,] n_masses), rows first, and fit in memory
             run, mass, arrays, dm_background = read_rows(handle, path, required=_REQUIRED, sky=True)
             events, tangent = tangent_arrays(arrays["kernel_boxes"], arrays["tangent_events"], arrays["kernel_tangent"])
             maps = {"kernel_boxes": arrays["kernel_boxes"].T, "crossings": arrays["crossings"].astype(float).T,
                     "tangent_events": events.astype(float).T, "kernel_tangent": tangent.T}
-        sky._set_up(mass, maps, arrays["kernel_background"], arrays["dispersion_measure_boxes"], dm_background, run,
-                    handle)
+            splits = _legacy_splits(handle, path, mass.size, sky_rows(run, path))
+        sky._set_up(mass, maps, splits, arrays["kernel_background"], arrays["dispersion_measure_boxes"],
+                    dm_background, run, handle)
         shells = read_group(handle, "redshift_shells", mass.size)
         if shells is not None:
             sky.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
@@ -217,6 +231,32 @@ class SkyResult(KernelRows):
         counts = np.bincount(faces, minlength=12)
         return self.columns().each(lambda kernel: np.bincount(faces, weights=kernel, minlength=12) / counts).T
 
+    @property
+    def split_rays(self):
+        """Rays per pixel of each split, () where the sky has no splits."""
+        return tuple(self.run.get("split_rays", ())) if self.splits is not None else ()
+
+    @property
+    def kernel_splits(self):
+        """(npix, 2, n_masses): the boxes' kernel of each split, every mass read whole; None without splits."""
+        return None if self.splits is None else np.asarray(self.splits[...], dtype=float).transpose(2, 1, 0)
+
+    def split_maps(self, k):
+        """(2, npix): mass ``k``'s boxes' kernel of split A and of split B (float64, one contiguous read of the
+        file, checked when it comes from one)."""
+        self.require_splits()
+        values = np.asarray(self.splits[k], dtype=float)
+        if self.handle is not None:
+            check_values(values, self.handle.filename, f"dataset kernel_splits (mass {k})")
+        return values
+
+    def require_splits(self, what="the signal"):
+        """Refuse, in one line, what needs the splits on a sky without them."""
+        if self.splits is None:
+            raise InputError(f"{what}: this sky has {self.run.get('rays_per_pixel', 1)} ray per pixel and no "
+                             "independent splits, so its map's sampling noise is unknown; cast it with "
+                             "rays_per_pixel >= 2 (--rays-per-pixel)")
+
     def mass_index(self, mass_eV):
         """Index of the grid mass nearest (in log) to ``mass_eV``."""
         if not (np.isfinite(mass_eV) and mass_eV > 0):
@@ -241,9 +281,8 @@ class SkyResult(KernelRows):
     def angular_power(self, sky_map, lmax=None):
         """C_l of a map in this result's ordering: healpy.anafast with the monopole removed.
 
-        The C_l include the HEALPix pixel window (and the sub-pixel ray average); they
-        are not deconvolved: divide by healpy.pixwin(nside)**2 where healpy's window
-        files are installed (healpy fetches them over the network on first use).
+        The raw auto-spectrum: the pixel window not removed, the rays' sampling noise
+        included. The signal and noise spectra are :func:`raytrace.sky.spectra.sky_spectra`'s.
         """
         healpy = _healpy()
         ring = sky_map if self.ordering == "RING" else healpy.reorder(sky_map, n2r=True)
@@ -265,14 +304,16 @@ class SkyResult(KernelRows):
         """Write the sky to HDF5 atomically, one map at a time (maps in their stored precision)."""
         layout = {name: RowArray(lambda r, m: (m, r), maps.dtype, 1) for name, maps in self.maps.items()}
         layout["dispersion_measure_boxes"] = RowArray(lambda r, m: (r,), np.float64)
+        if self.splits is not None:
+            layout["kernel_splits"] = RowArray(lambda r, m: (m, SPLITS, r), self.splits.dtype, 2)
         if self.kernel_shells_boxes is not None:
             shells = self.kernel_shells_boxes.shape[1]
             layout["kernel_shells_boxes"] = RowArray(lambda r, m: (r, shells, m), np.float64)
 
         def fill(handle):
-            for name in self.maps:
+            for name, maps in {**self.maps, **({} if self.splits is None else {"kernel_splits": self.splits})}.items():
                 for k in range(self.mass_eV.size):
-                    handle[name][k] = self.maps[name][k]
+                    handle[name][k] = maps[k]
             handle["dispersion_measure_boxes"][...] = self.dispersion_measure_boxes
             if self.kernel_shells_boxes is not None:
                 handle["kernel_shells_boxes"][...] = self.kernel_shells_boxes
@@ -306,20 +347,18 @@ class SkyResult(KernelRows):
                               owner=owner, shown_eV=shown_eV)
 
     def plot_mollweide(self, mass_eV, path=None, epsilon=None, omega0_eV=None, overwrite=False, owner=None):
-        """Mollweide view (healpy.mollview) of K, or of dT/T when ``epsilon`` is given.
-
-        Colour-bar ticks in three significant digits (scientific notation where the
-        values need it); ``owner`` marks the file as in :func:`raytrace.core.figures.save_figure`.
-        """
-        from raytrace.core.figures import mollview, pyplot, save_figure
+        """Mollweide view of dT/T (mean removed) at ``epsilon`` (default 1e-7, said in the title) and
+        ``omega0_eV`` (default 143 GHz) (:func:`raytrace.sky.figures.draw_map`); with its signal and noise
+        spectra beside it: :func:`raytrace.report.skyfigures.sky_figure`."""
+        from raytrace.core.figures import pyplot, save_figure
+        from raytrace.physics.conversion import ANISOTROPY_FREQUENCY_GHZ
+        from raytrace.physics.units import photon_energy_of_ghz
+        from raytrace.sky.figures import draw_map, shown_epsilon
 
         plt = pyplot()
-        if epsilon is None:
-            values, label = self.kernel_map(mass_eV), "K [eV]"
-        else:
-            values, label = self.temperature_anisotropy(mass_eV, epsilon, omega0_eV), "dT/T"
-        mollview(values, nest=self.ordering == "NESTED", unit=label, format="%.3g",
-                 title=f"m = {self.mass_eV[self.mass_index(mass_eV)]:.3g} eV, z < {self.run['z_max']:g}")
+        epsilon, _ = shown_epsilon(None, 0, epsilon)
+        omega0 = photon_energy_of_ghz(ANISOTROPY_FREQUENCY_GHZ) if omega0_eV is None else omega0_eV
+        draw_map(self, self.mass_index(mass_eV), epsilon, omega0)
         figure = plt.gcf()
         if path is not None:
             save_figure(figure, path, overwrite=overwrite, owner=owner)
@@ -327,23 +366,39 @@ class SkyResult(KernelRows):
         return figure
 
 
-def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, include_background=True,
+def _legacy_splits(handle, path, n_masses, npix):
+    """(n_masses, 2, npix) of a file before format version 3 that holds kernel_splits (npix, 2, n_masses), or
+    None."""
+    if "kernel_splits" not in handle:
+        return None
+    values = handle["kernel_splits"][...]
+    if values.shape != (npix, SPLITS, n_masses):
+        raise InputError(f"{path}: dataset kernel_splits has shape {values.shape}; expected "
+                         f"{(npix, SPLITS, n_masses)} (pixels, splits, masses): the file is damaged or cut short")
+    check_values(values, path, "dataset kernel_splits")
+    return values.transpose(2, 1, 0)
+
+
+def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
              backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV,
-             map_precision="float64", shells_z=None, **removed):
+             map_precision="float64", shells_z=None, device="cpu", **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
-    ``rays_per_pixel`` (1, 4, 16 ...) rays follow the centres of sub-pixels and
-    are averaged (a beam average). ``ordering`` is "RING" or "NESTED" for the
-    result's pixel order. ``randomise_copies=False`` leaves every copy of the
+    ``rays_per_pixel`` (>= 2) rays per pixel, at random stratified positions inside
+    it, form two independent splits (:mod:`raytrace.tracing.splits`); the result keeps
+    the mean of all of them (the map) and each split's map, whose cross-spectrum
+    is free of the sampling noise (:mod:`raytrace.sky.spectra`). ``rays_per_pixel=1``
+    is a plain map, one ray at each pixel's centre, whose noise is unknown.
+    ``ordering`` is "RING" or "NESTED" for the result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
     ``map_precision`` "float32" stores the maps per mass in single precision
     (half the file; see :data:`raytrace.tracing.lattice.PRECISIONS`).
     Other arguments (``backend``, ``executor`` for a cluster) as in
-    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV``; results
-    are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster. With an
-    :class:`~raytrace.tracing.backends.HDF5Backend` the maps go batch by batch
-    to the result file and the returned sky reads them from there.
+    :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
+    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster. With an
+    :class:`~raytrace.tracing.backends.HDF5Backend` the maps (and each split's maps)
+    go batch by batch to the result file and the returned sky reads them from there.
     ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
     :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
     (``kernel_shells``), each crossing in the shell of its redshift.
@@ -357,6 +412,6 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=1, n_jobs=1, 
                        rays_per_pixel=rays_per_pixel, include_background=include_background, z_boxes=z_boxes,
                        ordering=ordering, plasma=plasma, randomise_copies=randomise_copies,
                        batch_pixels=batch_pixels, photon_energy_eV=photon_energy_eV, map_precision=map_precision,
-                       shells_z=shells_z, **removed)
+                       shells_z=shells_z, device=device, **removed)
     # The built-in check (raytrace.statistics.meancheck), per mass and per shell.
     return warn_on_mismatch(SkyResult.from_file(traced.backend.finish()))

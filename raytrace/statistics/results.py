@@ -229,7 +229,7 @@ def load_mean_result(path):
 def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                     batch_size=256, plasma=None, backend=None, progress=False, executor=None,
                     photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=DEFAULT_BIN_COUNT,
-                    density_classes=DEFAULT_DENSITY_EDGES, keep_ray_bins=False, **removed):
+                    density_classes=DEFAULT_DENSITY_EDGES, keep_ray_bins=False, device="cpu", **removed):
     """Cast ``n_rays`` random sightlines from z = 0 to ``z_max`` through ``series``.
 
     Returns a :class:`SightlineResult` carrying its built-in check (the
@@ -266,6 +266,9 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
     density_classes : edges in D* = (m / mbar_gamma(z_c))^2 of the crossings' density classes
         (default 1 and 100: voids, sheets and filaments, halos)
     keep_ray_bins : also keep every ray's bins (rays x bins x masses) in the result
+    device : "cpu", "gpu" (CUDA through numba-cuda: the ``gpu`` extra) or "auto"
+        (a GPU where numba-cuda sees one, else the CPU); the run records the
+        device used. Per ray, a GPU's rows equal the CPU's to rounding.
     """
     plasma = check_background(plasma)
     traced = trace_sightlines(series, mass_eV, n_rays, z_max, seed=seed, n_jobs=n_jobs,
@@ -273,7 +276,8 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
                               plasma=plasma, backend=backend, progress=progress, executor=executor,
                               photon_energy_eV=photon_energy_eV, redshift_bins=redshift_bins,
                               density_classes=density_classes, groups=check_groups(series, plasma, n_jobs),
-                              reducer=partial(BinAccumulator.for_run, keep_rays=bool(keep_ray_bins)), **removed)
+                              reducer=partial(BinAccumulator.for_run, keep_rays=bool(keep_ray_bins)), device=device,
+                              **removed)
     bins = None if traced.reducer is None else traced.reducer.finish()
     with traced.backend.finish({} if bins is None else {"redshift_bins": binned_group(bins)}) as handle:
         result = SightlineResult.from_file(handle)

@@ -3,8 +3,8 @@
 In: per-row kernels (rows: rays or pixels; columns: masses) as an array or as
 :class:`Columns` (read a block of rows or one column at a time: a sky's maps
 stay in its file, one map in memory at a time), a number of resamples and a
-seed. Out: bootstrap intervals of std/mean (and, for a sky, of
-the rms of dT/T and of the anisotropy limit), the share of the variance carried
+seed. Out: bootstrap intervals of std/mean (a sky's signal and noise are
+:mod:`raytrace.sky.spectra`'s), the share of the variance carried
 by the top 1 % of rows, the tail index from the Hill estimator, and robust
 spreads (16-84 % half-width, median absolute deviation).
 
@@ -30,7 +30,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from raytrace.core.errors import InputError
-from raytrace.physics.conversion import ISOTROPY_LEVEL, anisotropy_per_probability
 from raytrace.tracing.checks import check_seed
 
 N_RESAMPLES = 1000
@@ -38,6 +37,7 @@ LEVEL = 0.68
 TOP_FRACTION = 0.01
 #: Warn when the top 1 % of rows carry more than this share of the variance.
 TOP_SHARE_WARNING = 0.5
+_CHUNK = 64  # resamples per matrix product in resample_weights: bounds memory at 64 x n_rows counts
 _BLOCK_VALUES = 1 << 20  # values of a block (resamples x rows of counts, or rows x columns of data): 8 MB
 
 
@@ -124,6 +124,17 @@ def bootstrap_moments(kernel, n_resamples=N_RESAMPLES, seed=0):
         second += weights @ unit**2
     first, second = first / n, second / n
     return centre + scale * first, scale * np.sqrt(np.maximum(second - first**2, 0.0) * n / (n - 1))
+
+
+def resample_weights(n_rows, n_resamples=N_RESAMPLES, seed=0):
+    """(first resample, count, weights (count, n_rows)) in chunks: how often each row is drawn, with
+    replacement, in each bootstrap resample; the same for a given seed on every run."""
+    if isinstance(n_resamples, bool) or not isinstance(n_resamples, (int, np.integer)) or n_resamples < 10:
+        raise InputError(f"n_resamples: expected a whole number >= 10, got {n_resamples!r}")
+    rng = _rng(seed)  # checked here, before any resample is drawn
+    return ((start, min(_CHUNK, n_resamples - start),
+             rng.multinomial(n_rows, np.full(n_rows, 1.0 / n_rows), size=min(_CHUNK, n_resamples - start)).astype(float))
+            for start in range(0, n_resamples, _CHUNK))
 
 
 def percentile_interval(samples, level=LEVEL):
@@ -270,29 +281,3 @@ def spread(kernel, mass_eV, n_resamples=N_RESAMPLES, seed=0, level=LEVEL):
     half_width, mad = robust_spread(columns)
     return Spread(np.asarray(mass_eV, dtype=float), relative, low, high, top_share(columns), tails[0], tails[1],
                   np.nan_to_num(tails[2]).astype(int), half_width, mad, int(n_resamples), float(level), int(seed))
-
-
-def sky_rms_interval(sky, omega0_eV, n_resamples=N_RESAMPLES, seed=0, level=LEVEL, threshold=None, masses=None):
-    """Bootstrap over pixels of the rms of dT/T at epsilon = 1 and of the rms anisotropy limit.
-
-    Returns a dict of arrays over the masses ``masses`` (indices; default all): "rms", "rms_low", "rms_high" (dT/T at
-    epsilon = 1; it scales as epsilon^2) and "epsilon_max", "epsilon_low",
-    "epsilon_high" (epsilon_max = sqrt(threshold / rms); a larger rms gives a lower
-    epsilon, so the interval's ends swap). The pixels of one sky are correlated:
-    the interval is a lower bound on the true uncertainty.
-    """
-    threshold = ISOTROPY_LEVEL if threshold is None else float(threshold)
-    factor = anisotropy_per_probability(omega0_eV) / omega0_eV
-    dtt = sky.columns("kernel", masses, factor)  # |dT/T| per pixel at epsilon = 1 (the sign does not change an rms)
-    _, stds = bootstrap_moments(dtt, n_resamples, seed)
-    n = dtt.n_rows
-    stds *= np.sqrt((n - 1) / n)  # the map's rms is the population std (raytrace.limits.anisotropy.anisotropy_limit)
-    rms = dtt.each(np.std)
-    low, high = percentile_interval(stds, level)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        def limit(value):
-            return np.where(value > 0, np.sqrt(threshold / np.where(value > 0, value, 1.0)), np.inf)
-
-        return {"rms": rms, "rms_low": low, "rms_high": high, "epsilon_max": limit(rms),
-                "epsilon_low": limit(high), "epsilon_high": limit(low), "threshold": threshold,
-                "n_resamples": int(n_resamples), "level": float(level), "seed": int(seed)}

@@ -33,6 +33,8 @@ from raytrace.tracing.checks import (
     check_trace_options,
     warn_outside_probed_range,
 )
+from raytrace.tracing.devices import choose_device, device_record, device_tracer
+from raytrace.tracing.gputrace import GpuTracing
 from raytrace.tracing.rays import draw_rays, plan_rays
 from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins, run_layout
 
@@ -52,6 +54,8 @@ SIGHTLINE_LAYOUT = {
 class Tracer:
     """What sightline and sky tracers share: the ray plan, the mass targets, the
     kernel's constants, and (for a cluster) their state without the boxes."""
+
+    device = "cpu"  # where :meth:`trace` runs (raytrace.tracing.gputrace: "gpu")
 
     def _set_up(self, series, mass_eV, z_boxes, seed, photon_energy_eV, cosmology, bins=None):
         self.boxes = series.boxes
@@ -88,12 +92,14 @@ class Tracer:
                 blended, float(self.redshifts[low]), float(self.redshifts[high]))
 
     def _physics_arguments(self):
-        """The trailing arguments of a kernel call: tables, targets, constants."""
+        """The trailing arguments of a kernel call: tables, targets, constants, the redshift cells' edges."""
         plan = self.plan
         return (plan.one_plus_z, plan.hubble_over_c, 1.0 / plan.chi_step, self.targets, self.ln_targets,
-                self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV)
+                self.mass2, self.uniform, HBAR_EV_S * C_MPC_S, PLASMA_MASS2_PER_DENSITY, self.photon_energy_eV,
+                self.cell_edges)
 
     def _outputs(self, n_rows):
+        """The per-row output arrays, zero, in the order the kernels take them."""
         n_masses = self.mass2.size
         return {"kernel_boxes": np.zeros((n_rows, n_masses)),
                 "crossings": np.zeros((n_rows, n_masses), dtype=np.int32),
@@ -101,10 +107,6 @@ class Tracer:
                 "kernel_tangent": np.zeros((n_rows, n_masses)),
                 "dispersion_measure_boxes": np.zeros(n_rows),
                 "kernel_cells": np.zeros((n_rows, self.cell_count, n_masses))}
-
-    def _cell_arguments(self, out):
-        """The last arguments of a kernel call: the cells' edges and the rows they fill."""
-        return self.cell_edges, out["kernel_cells"]
 
     def state(self):
         """Everything but the boxes: small arrays that rebuild this tracer elsewhere with :meth:`from_state`."""
@@ -137,25 +139,54 @@ class RayTracer(Tracer):
     def trace(self, ray_indices):
         """Per-ray arrays (kernel_boxes, crossings, tangent_events, kernel_tangent,
         dispersion_measure_boxes, kernel_cells, direction) for the given rays."""
-        plan = self.plan
-        ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), plan, self.n_cells)
+        ray_direction, starts, directions = self._ray_geometry(ray_indices)
         out = self._outputs(len(ray_indices))
-        for span in range(plan.n_spans):
-            pieces = plan.pieces_of(span)
-            geometry = self.boxes[int(plan.span_box[span])]
-            trace_pieces(*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
-                         plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts,
-                         directions, *self._physics_arguments(), out["kernel_boxes"], out["crossings"],
-                         out["tangent_events"], out["kernel_tangent"], out["dispersion_measure_boxes"],
-                         *self._cell_arguments(out))
+        for span in range(self.plan.n_spans):
+            trace_pieces(*self._piece_arguments(span, starts, directions), *out.values())
         out["direction"] = ray_direction
         return out
+
+    def _ray_geometry(self, ray_indices):
+        """(direction, per-segment starts, per-segment directions) of the given rays."""
+        ray_direction, starts, directions, _ = draw_rays(self.seed, np.asarray(ray_indices), self.plan, self.n_cells)
+        return ray_direction, starts, directions
+
+    def _piece_arguments(self, span, starts, directions):
+        """The arguments of a sightline kernel for span ``span``, all but the outputs."""
+        plan = self.plan
+        pieces = plan.pieces_of(span)
+        geometry = self.boxes[int(plan.span_box[span])]
+        return (*self._span_arguments(span), plan.piece_segment[pieces], plan.piece_chi_a[pieces],
+                plan.piece_chi_b[pieces], plan.segment_chi0, float(geometry.cell_size_cMpc), starts, directions,
+                *self._physics_arguments())
+
+
+class GpuRayTracer(GpuTracing, RayTracer):
+    """:class:`RayTracer` on a GPU (:class:`~raytrace.tracing.gputrace.GpuTracing`)."""
+
+    def __init__(self, *arguments):
+        RayTracer.__init__(self, *arguments)
+        self._set_up_device(1, self._physics_resident())
+
+    def trace(self, ray_indices):
+        return self._in_calls(ray_indices, self._trace_call)
+
+    def _trace_call(self, ray_indices):
+        ray_direction, starts, directions = self._ray_geometry(ray_indices)
+        out = self._device_outputs(ray_indices.size)
+        sent = {}
+        for span in range(self.plan.n_spans):
+            self._launch(self._gpu.trace_pieces, ray_indices.size, self._piece_arguments(span, starts, directions),
+                         out, sent)
+        arrays = {name: values.copy_to_host() for name, values in out.items()}
+        arrays["direction"] = ray_direction
+        return arrays
 
 
 def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                      batch_size=256, plasma=None, backend=None, progress=False, executor=None,
                      photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=None,
-                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, groups=None, **removed):
+                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, groups=None, device="cpu", **removed):
     """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s, and
     ``groups`` that of :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced`.
 
@@ -171,6 +202,7 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
+    device, device_note = choose_device(device, executor)
     run = {
         "raytrace": __version__,
         "n_rays": int(n_rays),
@@ -185,11 +217,13 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
         "boxes": [box.describe() for box in series.boxes],
         "ionisation": plasma.ionisation.description,
         "cosmology": plasma.cosmology.name,
+        **device_record(device, device_note),
     }
     bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
     run.update(bins.run_record() if bins is not None else {})
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer = RayTracer(series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins)
+    tracer, device_executor = device_tracer(device, RayTracer, GpuRayTracer, (series, mass, z_boxes, seed,
+                                            photon_energy_eV, plasma.cosmology, bins), executor)
     contents = background_contents(plasma, mass, z_boxes, z_max, include_background, groups)
     reduce = None if bins is None or reducer is None else reducer(
         bins, mass, plasma, z_max if include_background else z_boxes, contents.per_mass["kernel_background"], n_rays)
@@ -202,6 +236,6 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     backend.check_room(result_bytes(layout, n_rays, mass.size, n_batches)
                        + (result_bytes(kept, n_rays, mass.size, n_batches) if len(kept) < len(layout) else 0),
                        "rays or masses (--rays, --mass-count)")
-    run_batches(tracer, backend, mass, run, layout, FORMAT, n_rays, batch_size, n_jobs, executor, progress,
+    run_batches(tracer, backend, mass, run, layout, FORMAT, n_rays, batch_size, n_jobs, device_executor, progress,
                 f"{n_rays} sightlines", contents, reduce)
     return Traced(backend, run, series, plasma, n_jobs, reduce)
