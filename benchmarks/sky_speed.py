@@ -1,6 +1,13 @@
-"""Benchmark of the sky-map stage (issues "Sky maps" and 10), measured in one run.
+"""Benchmark of the sky-map stage (issues "Sky maps", 10 and 21), measured in one run.
 
-nside = 64 (49 152 pixels), 4 rays per pixel, to z = 3 through the 64^3 demo
+First (issue 21) the sky's tracer against the sightline engine on the same
+boxes (the demo series to z = 3, 64 masses): box cells per second per thread,
+one thread, by process CPU time (what a loaded machine disturbs least), best of
+a few alternating rounds, in calls of a run's progress steps; target sky >=
+sightlines. Then the one-thread fixed costs of a sky (set-up, background, the
+built-in one-point check: an nside-1 sky, 12 pixels) as a share of an nside-64
+sky (one ray per pixel) on one thread; target: a small fraction (<= 5 %).
+Then nside = 64 (49 152 pixels), 4 rays per pixel, to z = 3 through the 64^3 demo
 series, 64 masses, 2 threads: the wall time after compilation (target < 120 s),
 the ray length traced per second in box cells, and 2 threads against 1 on an
 nside-16 map (on nside 8 the run's fixed costs, about 0.4 s that one thread does
@@ -9,7 +16,7 @@ alone, are a quarter of the 2-thread time: 1.73 there). Then the peak memory of 
 that loads the boxes as a user's run would, against 1.3 x the boxes' bytes +
 300 MB (issue 10; the half-cell engine of commit 8dc5f14 needed 1.99 GB).
 
-Usage: python benchmarks/sky_speed.py [--nside 64] [--rays-per-pixel 4]
+Usage: python benchmarks/sky_speed.py [--nside 64] [--rays-per-pixel 4] [--fixed-nside 64]
 """
 
 import argparse
@@ -27,8 +34,10 @@ from raytrace.boxes import load_series
 from raytrace.core.errors import ProbedRangeWarning
 from raytrace.physics.background import MeanPlasma
 from raytrace.statistics.meancheck import MeanCheckWarning
-from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, numba_threads
 from raytrace.tracing.lattice import SkyTracer
+from raytrace.tracing.progress import step_rows
+from raytrace.tracing.sightlines import RayTracer
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 DEMO = str(REPOSITORY / "cubes_demo" / "demo_z*.h5")
@@ -51,6 +60,39 @@ def cells_per_ray(series, z_max, plasma):
     return float(np.sum((plan.span_chi_b - plan.span_chi_a) / cell))
 
 
+def per_thread_rates(series, mass, z_max, plasma, rows=1536, rounds=3):
+    """Best-of-``rounds`` box cells per CPU second on one thread: (sky tracer, sightline engine), same rows."""
+    sky = SkyTracer(series, mass, 64, 1, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology, True, ordering="RING")
+    rays = RayTracer(series, mass, z_max, 0, DEFAULT_PHOTON_ENERGY_EV, plasma.cosmology)
+    cells = sky.cells_per_row()
+    assert abs(cells / rays.cells_per_row() - 1) < 1e-12  # the same ray length through the same boxes
+    step = step_rows(1024, 1, cells)
+    best = {"sky": np.inf, "sightlines": np.inf}
+    with numba_threads(1):
+        for tracer in (sky, rays):
+            tracer.trace(np.arange(step))  # loads the kernels
+        for _ in range(rounds):
+            for name, tracer in (("sky", sky), ("sightlines", rays)):
+                start = time.process_time()
+                for first in range(0, rows, step):
+                    tracer.trace(np.arange(1000 + first, 1000 + min(first + step, rows)))
+                best[name] = min(best[name], time.process_time() - start)
+    return rows * cells / best["sky"], rows * cells / best["sightlines"], step
+
+
+def one_thread_costs(series, mass, z_max, plasma, nside):
+    """(CPU seconds of an nside-1 sky: the fixed costs, of an nside ``nside`` sky), one thread, 1 ray per pixel."""
+    options = dict(z_max=z_max, include_background=False, plasma=plasma, n_jobs=1)
+    seconds = []
+    for size in (1, nside):
+        with warnings.catch_warnings():  # 12 pixels are too few for the built-in check: its warning is not the point
+            warnings.simplefilter("ignore", MeanCheckWarning)
+            start = time.process_time()
+            raytrace.cast_sky(series, mass, size, **options)
+            seconds.append(time.process_time() - start)
+    return seconds
+
+
 def memory_child(nside):
     """In a fresh process: load the demo series, cast an nside sky to z = 6 with defaults, report peak RSS."""
     plasma = MeanPlasma()
@@ -69,6 +111,7 @@ def main():
     parser.add_argument("--rays-per-pixel", type=int, default=4)
     parser.add_argument("--z-max", type=float, default=3.0)
     parser.add_argument("--memory-nside", type=int, default=32)
+    parser.add_argument("--fixed-nside", type=int, default=64, help="the sky whose one-thread fixed costs are shared")
     parser.add_argument("--memory-child", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
     warnings.simplefilter("ignore", ProbedRangeWarning)
@@ -83,6 +126,14 @@ def main():
     with warnings.catch_warnings():  # 48 rays are too few for the built-in mean check; only compiling here
         warnings.simplefilter("ignore", MeanCheckWarning)
         raytrace.cast_sky(series, mass, 2, rays_per_pixel=1, n_jobs=2, **options)  # compile
+
+    sky_rate, line_rate, step = per_thread_rates(series, mass, args.z_max, plasma)
+    print(f"per thread, one thread, demo series to z = {args.z_max:g}, {mass.size} masses, calls of {step} rows "
+          f"(a run's progress step), CPU time: sky {sky_rate / 1e6:.2f} M cells/s, sightlines "
+          f"{line_rate / 1e6:.2f} M cells/s: sky / sightlines {sky_rate / line_rate:.2f} (target >= 1)")
+    fixed, whole = one_thread_costs(series, mass, args.z_max, plasma, args.fixed_nside)
+    print(f"one-thread fixed costs (an nside-1 sky: set-up, background, built-in check): {fixed:.2f} s CPU of "
+          f"{whole:.1f} s for an nside-{args.fixed_nside} sky: {100 * fixed / whole:.1f} % (target <= 5 %)")
 
     timings = {}
     for jobs in (1, 2):

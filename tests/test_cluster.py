@@ -153,3 +153,55 @@ def test_without_distributed_raytrace_imports_and_the_cli_says_what_to_install(b
     assert done.returncode == 2, done.stderr
     last = done.stderr.strip().splitlines()[-1]
     assert "--scheduler" in last and "pip install 'raytrace[dist]'" in last
+
+
+def test_the_recipe_a_worker_gets_does_not_grow_with_the_boxes(tmp_path, plasma):
+    # Boxes travel as file names and checksums (each worker opens and memory-maps them), never as
+    # arrays: the pickled recipe grows with the cells along a ray (its redshift tables: x4 from 16^3 to
+    # 64^3 boxes), not with a box's cells (x64), and stays far below the boxes' bytes.
+    import pickle
+
+    from raytrace.tracing.cluster import tracer_recipe
+    from raytrace.tracing.lattice import SkyTracer
+
+    sizes = {}
+    for cells in (16, 64):
+        rng = np.random.default_rng(cells)
+        files = [write_lognormal_box(tmp_path / f"box{cells}_z{z:g}.h5", z, rng, cells=cells) for z in REDSHIFTS]
+        series = raytrace.load_series([str(p) for p in files])
+        tracer = SkyTracer(series, MASS, 64, 4, 1.0, 2, 2.35e-4, plasma.cosmology, True, ordering="RING")
+        sizes[cells] = len(pickle.dumps(tracer_recipe(tracer)))
+        assert all(isinstance(box.data, np.memmap) for box in series.boxes)
+    assert sizes[64] < 5 * sizes[16] and sizes[64] < 0.2 * 2 * 64**3 * 4, sizes
+
+
+def test_a_cluster_sky_whose_client_was_stopped_resumes_to_the_serial_sky(cluster, box_files, plasma, tmp_path,
+                                                                           monkeypatch):
+    # The client writes each batch to the result file as it arrives; stopped after 3 (as a killed client
+    # would be), the run resumes on the cluster from the file's finished batches. Reference: the serial sky.
+    from raytrace.tracing.backends import HDF5Backend
+
+    series = raytrace.load_series([str(p) for p in box_files])
+    options = dict(nside=4, z_max=1.0, seed=2, batch_pixels=16, include_background=False, plasma=plasma)
+    serial_sky = raytrace.cast_sky(series, MASS, **options)
+    write, written = HDF5Backend.write_batch, []
+
+    def stop_after_three(self, *batch):
+        write(self, *batch)
+        written.append(1)
+        if len(written) == 3:
+            raise KeyboardInterrupt
+
+    monkeypatch.setattr(HDF5Backend, "write_batch", stop_after_three)
+    output = tmp_path / "sky.h5"
+    with DaskExecutor(cluster.scheduler_address) as executor, pytest.raises(KeyboardInterrupt):
+        raytrace.cast_sky(series, MASS, executor=executor, backend=HDF5Backend(output), **options)
+    monkeypatch.undo()
+    with h5py.File(output.with_name("sky.h5.partial"), "r") as handle:
+        assert handle["batch_done"][...].sum() == 3
+    with DaskExecutor(cluster.scheduler_address) as executor:
+        resumed = raytrace.cast_sky(series, MASS, executor=executor, backend=HDF5Backend(output, resume=True),
+                                    **options)
+    for name in ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent"):
+        for k in range(MASS.size):
+            assert np.array_equal(resumed.map(name, k), serial_sky.map(name, k)), (name, k)

@@ -294,17 +294,13 @@ def test_demo_sky_shows_a_mass_resonating_in_at_least_90_percent_of_pixels(demo_
 
 
 def test_shown_mass_rule_prefers_masses_resonating_in_most_pixels():
-    class Sky:  # a hand-made sky: 10 pixels, 5 masses; the edge masses resonate in 1 pixel
-        mass_eV = np.geomspace(1e-14, 1e-12, 5)
-        crossings = np.zeros((10, 5))
-
-        def mass_index(self, mass):
-            return int(np.argmin(np.abs(np.log(self.mass_eV / mass))))
-
-    sky = Sky()
-    sky.crossings[0, [0, 4]] = 1.0
-    sky.crossings[:, [1, 2, 3]] = 2.0
-    sky.crossings[3, 1] = 0.0  # mass 1 misses one pixel: masses 2 and 3 resonate in all
+    # A hand-made sky: 12 pixels (nside 1), 5 masses; the edge masses resonate in 1 pixel.
+    crossings = np.zeros((12, 5))
+    crossings[0, [0, 4]] = 1.0
+    crossings[:, [1, 2, 3]] = 2.0
+    crossings[3, 1] = 0.0  # mass 1 misses one pixel: masses 2 and 3 resonate in all
+    sky = SkyResult(np.geomspace(1e-14, 1e-12, 5), np.ones((12, 5)), np.zeros(5), crossings, np.zeros(12), 0.0,
+                    {"nside": 1, "ordering": "RING"})
     assert shown_mass_index(sky) in (2, 3)
     assert shown_mass_index(sky, 1e-12) == 4
 
@@ -348,12 +344,14 @@ def test_inspect_handles_empty_cells_without_numpy_warnings(tmp_path, capsys):
     assert f"{zero} cells ({100 * zero / values.size:.1f} %) are empty" in out
 
 
-def test_progress_steps_give_the_same_bits_as_whole_batches(boxes, capsys):
+def test_progress_steps_give_the_same_bits_as_whole_batches(boxes, capsys, monkeypatch):
     # Every ray is traced on its own (DEVELOPERS.md), so tracing a batch in small steps for the bar
-    # must not change a bit.
+    # must not change a bit. Steps of the fewest rows (four per thread) here.
     import raytrace
     from raytrace.boxes import load_series
+    from raytrace.tracing import progress
 
+    monkeypatch.setattr(progress, "STEP_CELLS_PER_THREAD", 1)
     series = load_series(boxes["a"])
     masses = np.geomspace(1e-14, 1e-13, 6)
     with warnings.catch_warnings():
@@ -364,10 +362,12 @@ def test_progress_steps_give_the_same_bits_as_whole_batches(boxes, capsys):
     np.testing.assert_array_equal(quiet.crossings, shown.crossings)
 
 
-def test_step_rows_are_a_few_per_thread_and_at_most_a_batch():
+def test_step_rows_are_about_2_18_cells_and_four_rows_per_thread_and_at_most_a_batch():
     from raytrace.tracing.progress import step_rows
 
-    assert step_rows(256, 2) == 8 and step_rows(256, 16) == 64 and step_rows(5, 16) == 5 and step_rows(1, 0) == 1
+    # Rows of 2^16 cells: 4 per thread (the least); of 1000 cells: ceil(2^18 / 1000) = 263 per thread.
+    assert step_rows(256, 2, 2**16) == 8 and step_rows(1024, 2, 1000) == 526 and step_rows(256, 2, 1000) == 256
+    assert step_rows(5, 16, 1e6) == 5 and step_rows(1, 0, 10) == 1
 
 
 def test_report_warns_about_a_sky_from_other_boxes_and_takes_mass(runs, tmp_path, capsys):

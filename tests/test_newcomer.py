@@ -134,7 +134,8 @@ def test_fits_keeps_the_grid_order_and_names_the_shown_mass(folder, capsys):
     assert status == 0, err
     with h5py.File(folder / "m.h5", "r") as handle:
         mass = handle["mass_eV"][...]
-        kernel = handle["kernel_boxes"][...] + handle["kernel_background"][...][None, :]
+        # A sky's maps are stored mass-major: its pixels on axis 1 (the dataset's attribute rows_axis).
+        kernel = handle["kernel_boxes"][...].T + handle["kernel_background"][...][None, :]
     shown = int(np.argmin(np.abs(np.log(mass / 6e-14))))
     assert shown not in (0, mass.size - 1)  # a shown mass inside the grid: the old order broke there
     grid = fits.getheader(folder / "m.fits", 2)

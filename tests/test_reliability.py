@@ -141,7 +141,8 @@ def test_a_disk_that_fills_during_a_run_stops_it_in_one_line_and_resume_is_bit_i
     output = small_file_system / "s.h5"
     filler = []
     # The disk fills while batches are written: the checkpoint's blocks are reserved, so the
-    # batches still land, and the final write is refused.
+    # batches still land; a sightline run's result is written apart at the end (with its statistics
+    # per redshift bin, made after the run), and that write is refused.
     stop_after(monkeypatch, 3, lambda: filler.append(fill(small_file_system)))
     assert run(workspace, output) == 2
     line = error_line(capsys)
@@ -153,12 +154,46 @@ def test_a_disk_that_fills_during_a_run_stops_it_in_one_line_and_resume_is_bit_i
     assert_same_as_reference(output, reference)
 
 
-def test_a_disk_too_small_for_the_checkpoint_refuses_it_at_the_start(workspace, small_file_system, capsys):
-    workspace.write_text(RUN_FILE.format(n_rays=4000, batch=BATCH))  # a 0.8 MB checkpoint
+SKY_RUN = """\
+[boxes]
+files = ["box_z0.h5", "box_z1.h5"]
+[masses]
+min_eV = 1e-14
+max_eV = 1.2e-13
+count = 16
+[rays]
+z_max = 1.5
+batch_size = 16
+seed = 11
+[sky]
+nside = 4
+"""
+
+
+def test_a_disk_that_fills_during_a_sky_run_does_not_stop_it(workspace, small_file_system, monkeypatch):
+    # A sky's result file is its checkpoint: its blocks were reserved when it was made and finishing it
+    # only sets a flag in place, so a disk that fills while batches are written does not stop the run.
+    # Reference: the same sky run uninterrupted on the ordinary disk.
+    sky_file = workspace.parent / "sky.toml"
+    sky_file.write_text(SKY_RUN)
+    assert main(["sky", str(sky_file), "--output", str(workspace.parent / "reference_sky.h5")]) == 0
+    output = small_file_system / "sky.h5"
+    filler = []
+    stop_after(monkeypatch, 3, lambda: filler.append(fill(small_file_system)))
+    assert main(["sky", str(sky_file), "--output", str(output)]) == 0
+    assert filler and not checkpoint_of(output).exists()
+    assert not [p for p in os.listdir(small_file_system) if p.endswith(".part")]
+    with h5py.File(output, "r") as result, h5py.File(workspace.parent / "reference_sky.h5", "r") as expected:
+        for name in ("kernel_boxes", "crossings", "dispersion_measure_boxes"):
+            assert np.array_equal(result[name][...], expected[name][...]), name
+
+
+def test_a_disk_too_small_for_the_result_refuses_it_at_the_start(workspace, small_file_system, capsys):
+    workspace.write_text(RUN_FILE.format(n_rays=4000, batch=BATCH))  # a result of a few MB
     output = small_file_system / "s.h5"
     assert run(workspace, output) == 2
     line = error_line(capsys)
-    assert str(checkpoint_of(output)) in line and "No space left" in line
+    assert f"{output} (--output): the result will take " in line and "MB are free there" in line
     assert os.listdir(small_file_system) == []  # nothing half-made is left
 
 

@@ -90,8 +90,11 @@ def stored(run_files):
                                                        "dispersion_measure_boxes")}
         arrays["dm_background"] = float(handle.attrs["dispersion_measure_background"])
     with h5py.File(sky_path, "r") as handle:
-        arrays["sky_kernel"] = handle["kernel_boxes"][...] + handle["kernel_background"][...][None, :]
-        arrays["sky_splits"] = handle["kernel_splits"][...]
+        # A sky's maps are stored mass-major: its pixels on axis 1 (the dataset's attribute rows_axis), and
+        # each split's maps (masses, splits, pixels): the pixels on axis 2.
+        assert handle["kernel_boxes"].attrs["rows_axis"] == 1 and handle["kernel_splits"].attrs["rows_axis"] == 2
+        arrays["sky_kernel"] = handle["kernel_boxes"][...].T + handle["kernel_background"][...][None, :]
+        arrays["sky_splits"] = handle["kernel_splits"][...].transpose(2, 1, 0)  # (pixels, splits, masses)
     arrays["kernel"] = arrays["kernel_boxes"] + arrays["kernel_background"][None, :]
     return arrays
 

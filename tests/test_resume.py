@@ -91,9 +91,10 @@ def assert_same_result(path, reference_path):
     arrays, attributes = datasets(path)
     expected_arrays, expected_attributes = datasets(reference_path)
     binned = [f"redshift_bins/{name}" for name in BINNED_DATASETS if name != "ray_bins"]
+    # The result file keeps each batch's rows and checksum (it is the run's checkpoint, finished).
     assert sorted(arrays) == sorted(expected_arrays) == sorted(
         [*SIGHTLINE_LAYOUT, "kernel_background", "mass_eV", *[f"pdf_mean/{name}" for name in PdfMean.ARRAYS],
-         *binned])
+         *binned, "batch_rows", "batch_sha256", "batch_done"])
     for name, values in expected_arrays.items():
         assert np.array_equal(arrays[name], values), name
     assert attributes == expected_attributes
@@ -210,10 +211,11 @@ def test_a_failed_final_write_leaves_no_output_and_no_temporary_file(workspace, 
         output.write_bytes(b"an earlier result")
     before = set(os.listdir(folder))
 
-    def disk_full(handle, path):  # the last step inside the temporary file, after every dataset is written
+    def disk_full(handle, path):  # the last step inside the result's temporary file, after every dataset is in
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr("raytrace.core.resultfiles._check_finite", disk_full)
+    # A sightline run's result is written apart at the end (with its statistics per redshift bin).
+    monkeypatch.setattr("raytrace.tracing.backends._check_finite", disk_full)
     # A full disk is the machine's state, not a bug: one line naming the file, exit 2 (issue 14).
     assert main(arguments(run_file, output, "--overwrite")) == 2
     checkpoint = output.with_name(output.name + ".partial")

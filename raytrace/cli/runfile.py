@@ -5,13 +5,11 @@ settings (``{"rays.count": 2000, ...}``). Unknown sections or keys, wrong types
 and out-of-range values are InputErrors that name the key, the file and what
 is expected (an unknown key lists the known ones).
 
-The schema is data (:data:`SIGHTLINE_OPTIONS`, :data:`SKY_OPTIONS`), so the
-TOML keys, the flags, their help and their checks cannot drift apart. It is also
-the project's one vocabulary: every subcommand, with a run file or without,
-spells a concept with the flag, metavar, default and help of its :class:`Option`
-here (:data:`VOCABULARY`; :func:`add_option` adds one to a plain parser). Old
-spellings (``aliases``, ``old_keys``) keep working for one release and print a
-one-line deprecation notice.
+The schema is data (:data:`SIGHTLINE_OPTIONS`, :data:`SKY_OPTIONS`), so the TOML keys, the flags, their help
+and their checks cannot drift apart. It is also the project's one vocabulary: every subcommand, with a run
+file or without, spells a concept with the flag, metavar, default and help of its :class:`Option` here
+(:data:`VOCABULARY`; :func:`add_option` adds one to a plain parser). Old spellings (``aliases``,
+``old_keys``) keep working for one release and print a one-line deprecation notice.
 """
 
 import argparse
@@ -30,12 +28,10 @@ from raytrace.core.errors import InputError
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
 
 #: Options that older releases took and this one refuses, with the reason (API keywords).
-REMOVED_OPTIONS = {
-    "step": "the engine now solves the interpolated field's crossings exactly, cell by cell, so there is no "
-            "step length to choose; remove it",
-    "density_floor": "empty cells are now exact zeros of the interpolated field, which never resonate; "
-                     "remove it",
-}
+REMOVED_OPTIONS = {"step": "the engine now solves the interpolated field's crossings exactly, cell by cell, so "
+                           "there is no step length to choose; remove it",
+                   "density_floor": "empty cells are now exact zeros of the interpolated field, which never resonate; "
+                                    "remove it"}
 
 #: The run-file keys (and their flags) of those options: refused with the same reason, in one line.
 REMOVED_KEYS = {"rays.step_cells": ("--step-cells", REMOVED_OPTIONS["step"])}
@@ -176,6 +172,10 @@ SKY_OPTIONS = (
         Option("sky.randomise_copies", bool, True, "give each box copy a random symmetry and shift (off: diagnostic)"),
         Option("sky.shells", float, None, "redshift shells with a map each: edges in z (or a count, as "
                "--redshift-bins)", at_least=0.0, listable=True, metavar="Z"),
+        Option("sky.map_precision", str, "float64", "stored precision of the maps per mass: float32 halves the result "
+               "and rounds to 6e-8 of a value, far below a pixel's sampling noise", choices=("float64", "float32")),
+        Option("sky.estimate", bool, False, "trace nothing: print the cells to trace, the result's size on disk, the "
+               "memory per worker and the wall time at a rate measured on a sample of the run's own rays here"),
         ISOTROPY_THRESHOLD,
         CL_LIMITS,
     )

@@ -122,11 +122,14 @@ def prepare_outputs(args, values, keys):
 
 def finished_run(output):
     """With --resume: complete an interrupted final write; a note when the run is then complete, else None."""
-    from raytrace.core.journal import complete_interrupted_write
+    from raytrace.core.journal import complete_interrupted_write, journal_path
     from raytrace.tracing.backends import HDF5Backend
 
+    # A journal left means the final write had begun: every output was complete (a sky's result is
+    # its checkpoint, renamed: no checkpoint is left beside it), so the run is done once it is completed.
+    journaled = journal_path(output).is_file()
     moved = complete_interrupted_write(output)
-    if not (HDF5Backend(output, resume=True).finished() or moved):
+    if not (HDF5Backend(output, resume=True).finished() or moved or journaled):
         return None
     completed = (f"; a kill during its final write had left {', '.join(str(path) for path in moved)} unmoved, "
                  "now in place") if moved else ""
@@ -256,9 +259,10 @@ def _warn_spread(result):
 
     from raytrace.statistics.spread import TOP_SHARE_WARNING, top_share
 
-    if result.kernel.shape[0] < 2:
+    kernel = result.columns()  # a sky's maps one at a time
+    if kernel.n_rows < 2:
         return
-    share = np.nan_to_num(top_share(result.kernel))
+    share = np.nan_to_num(top_share(kernel))
     bad = np.flatnonzero(share > TOP_SHARE_WARNING)
     if bad.size:
         shown = ", ".join(f"{result.mass_eV[k]:.3g} eV ({100 * share[k]:.0f} %)" for k in bad[:6])

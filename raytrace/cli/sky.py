@@ -1,4 +1,11 @@
-"""``raytrace sky``: a HEALPix sky map of conversion seen by one observer, from a TOML run file or flags."""
+"""``raytrace sky``: a HEALPix sky map of conversion seen by one observer, from a TOML run file or flags.
+
+With ``--estimate`` it traces nothing and prints what the run will take (:mod:`raytrace.sky.estimate`).
+"""
+
+import os
+import time
+import warnings
 
 import numpy as np
 
@@ -30,7 +37,10 @@ def run(args):
     from raytrace.core.outputguard import output_lock
     from raytrace.core.provenance import output_set
 
+    started = time.perf_counter() - process_age()
     values = settings(args, SKY_OPTIONS)
+    if values["sky.estimate"]:
+        return print_estimate(values, started)
     keys = ("output.path", "output.fits", "output.plot")
     if values["output.fits"]:
         check_fits_path(values["output.fits"])
@@ -47,6 +57,75 @@ def run(args):
     return 0
 
 
+def print_estimate(values, started):
+    """Size the run (``--estimate``) and print it; nothing is traced or written."""
+    import contextlib
+    import io
+
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV
+    from raytrace.report.plots import shown_mass_index
+    from raytrace.sky.estimate import estimate_sky
+
+    def summary(sky):  # the run's summary, in silence: its cost is what counts here
+        with contextlib.redirect_stdout(io.StringIO()), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            omega0 = observed_energy(values, DEFAULT_PHOTON_ENERGY_EV)
+            print_summary(sky, *sky_limits(sky, values, omega0), omega0,
+                          shown_mass_index(sky, values["output.mass_eV"]))
+
+    estimate = estimate_sky(load_boxes(values), masses(values), values["sky.nside"], values["rays.z_max"],
+                            n_jobs=values["rays.jobs"], started=started, summary=summary, **sky_options(values))
+    print(f"# sky of nside {values['sky.nside']} to z = {values['rays.z_max']:g}: what the run will take "
+          "(nothing traced or written)")
+    for line in estimate.lines():
+        print(line)
+    if values["output.path"]:  # the check the run makes before any work
+        from raytrace.core.errors import InputError
+        from raytrace.tracing.backends import HDF5Backend
+
+        try:
+            HDF5Backend(values["output.path"], resume=values["output.resume"]).check_room(
+                estimate.result_bytes, "pixels or masses")
+            print(f"disk: room for the result at {values['output.path']}")
+        except InputError as error:
+            print(f"disk: the run would be refused: {error}")
+    return 0
+
+
+def process_age():
+    """Seconds since this process started (Linux: /proc; elsewhere 0): an estimate counts the interpreter's start."""
+    try:
+        with open("/proc/self/stat") as stat, open("/proc/uptime") as uptime:
+            started_ticks = float(stat.read().rsplit(")", 1)[1].split()[19])
+            return max(0.0, float(uptime.read().split()[0]) - started_ticks / os.sysconf("SC_CLK_TCK"))
+    except (OSError, ValueError, IndexError):
+        return 0.0
+
+
+def sky_options(values):
+    """The keyword arguments of cast_sky that the run file and flags give, besides the boxes, masses, nside,
+    z_max and threads."""
+    return dict(seed=values["rays.seed"], rays_per_pixel=values["sky.rays_per_pixel"],
+                include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
+                ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
+                randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
+                map_precision=values["sky.map_precision"], device=values["rays.device"],
+                shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"))
+
+
+def sky_limits(sky, values, omega0):
+    """(signal and noise spectra, anisotropy limits) of a sky with splits, each read one mass at a time;
+    (None, None) for one ray per pixel (no splits: its noise is unknown)."""
+    from raytrace.limits.anisotropy import anisotropy_limits
+    from raytrace.sky.spectra import sky_spectra
+
+    if sky.splits is None:
+        return None, None
+    spectra = sky_spectra(sky, n_resamples=200)
+    return spectra, anisotropy_limits(sky, omega0, threshold=values["anisotropy.threshold"],
+                                      cl_limits=values["anisotropy.cl_limits"], spectra=spectra)
+
+
 def check_fits_path(path):
     """A FITS map needs a FITS name: healpy and other readers go by the suffix."""
     from raytrace.core.errors import InputError
@@ -59,12 +138,11 @@ def check_fits_path(path):
 def run_outputs(values):
     """Trace, print the summary and write the outputs (inside the run's output set); return the shown mass."""
     from raytrace.core.companions import owner_name
-    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV, anisotropy_limits
+    from raytrace.limits.anisotropy import DEFAULT_PHOTON_ENERGY_EV
     from raytrace.report.plots import shown_mass_index
     from raytrace.report.skyfigures import sky_figure
     from raytrace.sky.figures import shown_epsilon
     from raytrace.sky.maps import cast_sky
-    from raytrace.sky.spectra import sky_spectra
     from raytrace.tracing.backends import HDF5Backend, MemoryBackend
 
     overwrite = values["output.overwrite"]
@@ -74,20 +152,9 @@ def run_outputs(values):
     omega0 = observed_energy(values, DEFAULT_PHOTON_ENERGY_EV)
     backend = HDF5Backend(output, resume=values["output.resume"], overwrite=overwrite) if output else MemoryBackend()
     with cluster_executor(values) as executor:
-        sky = cast_sky(
-            series, mass, values["sky.nside"], values["rays.z_max"], seed=values["rays.seed"],
-            rays_per_pixel=values["sky.rays_per_pixel"], n_jobs=values["rays.jobs"],
-            include_background=values["rays.include_background"], z_boxes=values["rays.z_boxes"],
-            ordering=values["sky.ordering"], photon_energy_eV=values["rays.photon_energy_eV"],
-            randomise_copies=values["sky.randomise_copies"], batch_pixels=values["rays.batch_size"],
-            backend=backend, progress=True, executor=executor, device=values["rays.device"],
-            shells_z=bins_value(values["sky.shells"], "--shells (TOML sky.shells)"),
-        )
-    spectra = limits = None
-    if sky.kernel_splits is not None:
-        spectra = sky_spectra(sky, n_resamples=200)
-        limits = anisotropy_limits(sky, omega0, threshold=values["anisotropy.threshold"],
-                                   cl_limits=values["anisotropy.cl_limits"], spectra=spectra)
+        sky = cast_sky(series, mass, values["sky.nside"], values["rays.z_max"], n_jobs=values["rays.jobs"],
+                       backend=backend, progress=True, executor=executor, **sky_options(values))
+    spectra, limits = sky_limits(sky, values, omega0)
     shown = shown_mass_index(sky, values["output.mass_eV"])
     print_summary(sky, spectra, limits, omega0, shown)
     owner = owner_name(output)
@@ -103,12 +170,13 @@ def run_outputs(values):
 
 
 def print_summary(sky, spectra, limits, omega0, shown):
-    """The run, per mass its map's mean and spreads, the anisotropy limits; then signal and noise."""
+    """The run, per mass (up to 16) its map's mean and spreads, the anisotropy limits; then signal and noise.
+    Every statistic reads one map at a time."""
     from raytrace.core.textcells import cell, no_resonance
     from raytrace.limits.anisotropy import COMPONENT_SEPARATION_CAVEAT
     from raytrace.physics.units import frequency_label
 
-    mean = sky.kernel.mean(axis=0)
+    mean = sky.mean()
     check = sky.mean_check()
     ratio = check.ratio() if check is not None else np.full(mean.size, np.nan)
     print(f"# sky of nside {sky.nside} ({sky.npix} pixels, {sky.run['rays_per_pixel']} rays each), z = 0 to "
@@ -130,11 +198,12 @@ def print_summary(sky, spectra, limits, omega0, shown):
     step = max(1, sky.mass_eV.size // 16)
     rows = list(range(0, sky.mass_eV.size, step))
     for k in rows:
-        empty = no_resonance(sky.kernel[:, k], "pixel")
+        kernel = sky.map("kernel", k)
+        empty = no_resonance(kernel, "pixel")
         if empty:
             print(f"  {sky.mass_eV[k]:11.4e} {empty}")
             continue
-        relative = sky.kernel[:, k].std() / mean[k] if mean[k] > 0 else 0.0
+        relative = kernel.std() / mean[k] if mean[k] > 0 else 0.0
         line = f"  {sky.mass_eV[k]:11.4e} {mean[k]:11.4e} {relative:8.3f} {cell(ratio[k], '.4f', 7)}"
         if spectra is not None:
             scale = mean[k] if mean[k] > 0 else 1.0
@@ -148,7 +217,7 @@ def print_summary(sky, spectra, limits, omega0, shown):
 
         for line in signal_noise_lines(spectra, [shown]):
             print("# " + line)
-    resonating = (sky.crossings[:, shown] > 0).mean()
+    resonating = np.count_nonzero(sky.map("crossings", shown)) / sky.npix
     print(f"# shown: m = {sky.mass_eV[shown]:.4e} eV, resonating in {100 * resonating:.1f} % of pixels "
           "(--mass chooses; default: the middle of the masses resonating in most pixels)")
 

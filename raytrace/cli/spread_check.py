@@ -22,11 +22,12 @@ def run(args):
 
     result = load_rows(args.result)
     is_sky = hasattr(result, "nside")
+    kernel = result.columns()  # a sky's maps are read one at a time, or in blocks of pixels
     with _flag_names():
-        found = spread(result.kernel, result.mass_eV, args.resamples, args.seed, args.level)
+        found = spread(kernel, result.mass_eV, args.resamples, args.seed, args.level)
     rows = range(result.mass_eV.size)
-    print(f"# {args.result}: {result.kernel.shape[0]} {'pixels' if is_sky else 'rays'}")
-    for line in found.table(rows, result.kernel, "pixel" if is_sky else "ray"):
+    print(f"# {args.result}: {kernel.n_rows} {'pixels' if is_sky else 'rays'}")
+    for line in found.table(rows, kernel, "pixel" if is_sky else "ray"):
         print(line)
     message = found.warning()
     if message:
@@ -34,7 +35,7 @@ def run(args):
     if is_sky:
         from raytrace.sky.spectra import signal_noise_lines, sky_spectra
 
-        if result.kernel_splits is None:
+        if result.splits is None:
             print(f"# {args.result}: one ray per pixel, no independent splits: the map's signal and noise cannot "
                   "be told apart (cast it with --rays-per-pixel 2 or more)")
             return 0

@@ -150,6 +150,7 @@ class OutputSet:
 
     def __init__(self):
         self.pending = []      # (temporary, final path)
+        self.kept = set()      # temporaries a failure leaves where they are (a finished run's result)
         self.afterwards = []   # callables run once every output is in place
 
     def commit(self):
@@ -181,7 +182,7 @@ class OutputSet:
 
     def discard(self):
         for temporary, _ in self.pending:
-            if os.path.exists(temporary):
+            if os.path.exists(temporary) and temporary not in self.kept:
                 os.unlink(temporary)
         self.pending = []
 
@@ -212,8 +213,8 @@ def output_set(paths=(), overwrite=False):
     ``paths`` are checked first (:func:`check_outputs`). Each output goes to a
     temporary file beside its final name; when the block ends normally all are
     renamed into place, then the actions given to :func:`after_outputs` run (e.g.
-    removing a checkpoint); on any exception every temporary file is removed and
-    nothing at a final name changes.
+    removing a checkpoint); on any exception every temporary file is removed (but
+    those of :func:`move_into_place`, which stay) and nothing at a final name changes.
     """
     check_outputs(paths, overwrite)
     pending = OutputSet()
@@ -235,6 +236,19 @@ def after_outputs(action):
         action()
     else:
         pending.afterwards.append(action)
+
+
+def move_into_place(source, path):
+    """Rename ``source`` onto ``path``: now, or inside an output set with the set's other outputs. A set
+    that fails leaves ``source`` where it is (a finished run's result file, which a resume puts in place)."""
+    pending = _OUTPUT_SET.get()
+    if pending is None:
+        inode = os.stat(source).st_ino
+        os.replace(source, path)
+        claim_written([(path, inode)])
+        return
+    pending.pending.append((source, Path(path)))
+    pending.kept.add(source)
 
 
 def remove_stale_temporaries(path):

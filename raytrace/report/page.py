@@ -162,7 +162,7 @@ def summary(result, limits, picked, notes, sky=None, sky_index=None, epsilon=Non
         lines.append(f"sky: nside {sky.nside} ({sky.npix} pixels, {sky.run.get('rays_per_pixel')} ray(s) per pixel), "
                      f"seed {sky.run.get('seed')}, z = 0 to {sky.run['z_max']:g}, boxes to {sky.run['z_boxes']:g}; "
                      f"map at m = {sky.mass_eV[sky_index]:.3g} eV (resonating in "
-                     f"{100 * (sky.crossings[:, sky_index] > 0).mean():.0f} % of pixels)")
+                     f"{100 * np.count_nonzero(sky.map('crossings', sky_index)) / sky.npix:.0f} % of pixels)")
         lines.append(f"  eps sky: {anisotropy.label.replace('sky: ', '')} (band: signal spectrum +-1 sigma; '*': noise exceeds signal in "
                      f"the bands that decide it); also {by_name['anisotropy_rms'].label.replace('sky ', '')}"
                      + ("" if same_mass_grid(sky.mass_eV, mass) else "; on its own mass grid, plotted only"))

@@ -67,7 +67,7 @@ def shown_mass_index(sky, mass_eV=None):
     """
     if mass_eV is not None:
         return sky.mass_index(float(mass_eV))
-    resonating = (np.asarray(sky.crossings) > 0).mean(axis=0)
+    resonating = sky.resonating_fraction()
     if not np.any(resonating > 0):
         return sky.mass_eV.size // 2
     candidates = np.flatnonzero(resonating == resonating.max())

@@ -20,7 +20,7 @@ COLOUR_PERCENTILES = (2.0, 98.0)
 
 def anisotropy_map(sky, index, epsilon, omega0_eV):
     """dT/T at ``epsilon`` and ``omega0_eV`` of mass ``index``, mean removed, in the sky's ordering."""
-    kernel = sky.kernel[:, index]
+    kernel = sky.map("kernel", index)  # one mass's map, read from the sky's file
     return -(epsilon**2) * anisotropy_per_probability(omega0_eV) / omega0_eV * (kernel - kernel.mean())
 
 

@@ -1,4 +1,4 @@
-"""HEALPix FITS files of a sky's maps (healpy.write_map; Gorski et al. 2005, ApJ 622, 759).
+"""HEALPix FITS files of a sky's maps, written a block of pixels at a time (Gorski et al. 2005, ApJ 622, 759).
 
 In: a :class:`~raytrace.sky.SkyResult`, the masses whose maps to write, and
 optionally epsilon with the observed photon energy (probability maps beside
@@ -7,11 +7,14 @@ atomically: the maps of the given masses in their order, each header naming
 every map's mass (MASS1, MASS2 ...); with a shown mass, that mass's maps come
 first in their own extension (HDU 1, what ``healpy.read_map`` returns by
 default) and the grid's in HDU 2, so a column's number always means the same
-mass of the grid.
+mass of the grid. Each extension is a binary table in the HEALPix convention
+healpy.write_map follows (1024 pixels a row, one below 1025 pixels; PIXTYPE,
+ORDERING, NSIDE, FIRSTPIX, LASTPIX, INDXSCHM, OBJECT), streamed: each block of
+rows is read from every map (one contiguous piece of each mass's map in the
+result file) and written in order, so memory holds a few MB whatever nside and
+the number of maps.
 """
 
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -19,21 +22,25 @@ import numpy as np
 from raytrace import __version__
 from raytrace.core.errors import InputError
 
+#: Bytes of table rows written at a time (all columns of a block of pixels).
+BLOCK_BYTES = 1 << 25
+_FITS_RECORD = 2880  # FITS files come in records of 2880 bytes (FITS standard 4.0, section 3.1)
+
 
 def _columns(sky, masses_eV, epsilon, omega0_eV):
-    """(maps, column names, units, MASS cards) for the maps of ``masses_eV``, in their order."""
-    maps, names, units, cards = [], [], [], []
+    """([(name, unit, block(start, stop) -> values)], MASS cards) for the maps of ``masses_eV``, in their order."""
+    from raytrace.physics.conversion import probability_from_kernel
+
+    saturate = epsilon is not None and sky.saturates(epsilon, omega0_eV)
+    columns, cards = [], []
     for i, mass in enumerate(np.atleast_1d(masses_eV)):
         k = sky.mass_index(float(mass))
         cards.append((f"MASS{i + 1}", float(sky.mass_eV[k]), "dark-photon mass of map, eV"))
-        maps.append(sky.kernel[:, k])
-        names.append(f"KERNEL{i + 1}")
-        units.append("eV")
+        columns.append((f"KERNEL{i + 1}", "eV", lambda a, b, k=k: sky.pixels("kernel", k, a, b)))
         if epsilon is not None:
-            maps.append(sky.probability_map(sky.mass_eV[k], epsilon, omega0_eV))
-            names.append(f"PROB{i + 1}")
-            units.append("")
-    return maps, names, units, cards
+            columns.append((f"PROB{i + 1}", "", lambda a, b, k=k: probability_from_kernel(
+                sky.pixels("kernel", k, a, b), epsilon, omega0_eV, saturate=saturate)))
+    return columns, cards
 
 
 def _run_cards(sky, epsilon, omega0_eV, owner, shown_eV):
@@ -62,17 +69,6 @@ def _run_cards(sky, epsilon, omega0_eV, owner, shown_eV):
     return cards
 
 
-def _write_healpix(sky, target, columns, cards, extension):
-    maps, names, units, mass_cards = columns
-    # healpy names every map extension 'xtension'; its extra cards replace that. coord=None: no
-    # COORDSYS, the map's frame is the box axes (SKYFRAME).
-    healpy_cards = mass_cards + cards + [("EXTNAME", extension, "conversion kernel maps of a raytrace sky")]
-    import healpy
-
-    healpy.write_map(str(target), maps, nest=sky.ordering == "NESTED", coord=None, column_names=names,
-                     column_units=units, extra_header=healpy_cards, overwrite=True, dtype=np.float64)
-
-
 def write_sky_fits(sky, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None, shown_eV=None):
     """Write the maps of ``masses_eV`` (see the module docstring); returns the path."""
     from astropy.io import fits
@@ -82,22 +78,44 @@ def write_sky_fits(sky, path, masses_eV, epsilon=None, omega0_eV=None, overwrite
     if epsilon is not None and omega0_eV is None:
         raise InputError("write_fits: give omega0_eV (the observed photon energy) with epsilon")
     cards = _run_cards(sky, epsilon, omega0_eV, owner, shown_eV)
+    extensions = [(masses_eV, "RAYTRACE_MAPS")] if shown_eV is None else [([shown_eV], "SHOWN_MAP"),
+                                                                            (masses_eV, "GRID_MAPS")]
     path = Path(path)
-    with atomic_output(path, overwrite=overwrite) as temporary:
-        grid = _columns(sky, masses_eV, epsilon, omega0_eV)
-        if shown_eV is None:
-            _write_healpix(sky, temporary, grid, cards, "RAYTRACE_MAPS")
-            return path
-        extensions = []
-        for columns, name in ((_columns(sky, [shown_eV], epsilon, omega0_eV), "SHOWN_MAP"), (grid, "GRID_MAPS")):
-            # Each extension through healpy (its HEALPix header), then both into one file.
-            handle, part = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-            os.close(handle)
-            try:
-                _write_healpix(sky, part, columns, cards, name)
-                with fits.open(part) as hdus:
-                    extensions.append(fits.BinTableHDU(data=hdus[1].data.copy(), header=hdus[1].header.copy()))
-            finally:
-                os.unlink(part)
-        fits.HDUList([fits.PrimaryHDU(), *extensions]).writeto(temporary, overwrite=True)
+    with atomic_output(path, overwrite=overwrite) as temporary, open(temporary, "wb") as out:
+        out.write(fits.PrimaryHDU().header.tostring().encode("ascii"))
+        for masses, name in extensions:
+            columns, mass_cards = _columns(sky, masses, epsilon, omega0_eV)
+            _write_table(out, sky, columns, mass_cards + cards, name)
     return path
+
+
+def _write_table(out, sky, columns, cards, extension):
+    """One binary table of ``columns``: its header as healpy.write_map writes it, then its rows streamed."""
+    from astropy.io import fits
+
+    per_row = 1024 if sky.npix > 1024 else 1
+    form = f"{per_row}D" if per_row > 1 else "D"
+    definitions = fits.ColDefs([fits.Column(name=name, format=form, unit=unit or None) for name, unit, _ in columns])
+    header = fits.BinTableHDU.from_columns(definitions, nrows=0).header
+    header["NAXIS2"] = sky.npix // per_row
+    header["PIXTYPE"] = ("HEALPIX", "HEALPIX pixelisation")
+    header["ORDERING"] = (sky.ordering, "Pixel ordering scheme, either RING or NESTED")
+    header["EXTNAME"] = (extension, "conversion kernel maps of a raytrace sky")  # no COORDSYS: see SKYFRAME
+    header["NSIDE"] = (sky.nside, "Resolution parameter of HEALPIX")
+    header["FIRSTPIX"] = (0, "First pixel # (0 based)")
+    header["LASTPIX"] = (sky.npix - 1, "Last pixel # (0 based)")
+    header["INDXSCHM"] = ("IMPLICIT", "Indexing: IMPLICIT or EXPLICIT")
+    header["OBJECT"] = ("FULLSKY", "Sky coverage, either FULLSKY or PARTIAL")
+    for card in cards:
+        header[card[0]] = card[1:]
+    out.write(header.tostring().encode("ascii"))
+    rows = max(1, BLOCK_BYTES // (8 * per_row * len(columns)))
+    written = 0
+    for first in range(0, sky.npix, rows * per_row):
+        last = min(first + rows * per_row, sky.npix)
+        block = np.empty(((last - first) // per_row, len(columns), per_row), dtype=">f8")
+        for c, (_, _, values) in enumerate(columns):
+            block[:, c, :] = np.asarray(values(first, last), dtype=float).reshape(-1, per_row)
+        out.write(block.tobytes())
+        written += block.nbytes
+    out.write(bytes(-written % _FITS_RECORD))

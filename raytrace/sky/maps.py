@@ -2,12 +2,20 @@
 
 In: a box series, a mass grid, nside and z_max. Out: :class:`SkyResult`, the
 conversion kernel per pixel and mass (HEALPix, Gorski et al. 2005, ApJ 622, 759),
+its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x,
 the maps of two independent splits of each pixel's rays
 (:mod:`raytrace.tracing.splits`; their signal and noise: :mod:`raytrace.sky.spectra`),
-its maps of P and of the CMB temperature anisotropy dT/T = -P (1 - e^-x)/x, angular
-power spectra (healpy.anafast), FITS maps and Mollweide plots
-(:mod:`raytrace.sky.figures`). The limits on epsilon from its anisotropy are
-:mod:`raytrace.limits.anisotropy`'s.
+angular power spectra (healpy.anafast), FITS maps (:mod:`raytrace.sky.fits`),
+Mollweide plots (:mod:`raytrace.sky.figures`) and maps per redshift shell. The
+limits on epsilon from its anisotropy are :mod:`raytrace.limits.anisotropy`'s.
+
+A sky's maps stay where its run wrote them: in its result file, or for a run
+without one in the same file in memory. Everything downstream reads them one
+mass at a time (:meth:`SkyResult.map`, :meth:`SkyResult.split_maps`,
+:meth:`SkyResult.columns`), so memory holds one map (plus the file's page cache)
+whatever nside and the number of masses; the whole arrays (``kernel``,
+``crossings``, ``kernel_splits`` ...) are still there for small skies and read
+every map.
 
 The light cone is traced by :mod:`raytrace.tracing.lattice`, which says how
 the copies of the boxes are laid out and transformed. The random transforms break the exact repetition a plain periodic
@@ -16,18 +24,25 @@ angle at each distance (about box size / chi), so beyond chi ~ box size / theta
 the map of one copy is no longer a fair sample of larger structures.
 """
 
-
 import numpy as np
 
 from raytrace.core.errors import InputError
-from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_arrays
+from raytrace.core.resultchecks import check_values, mass_grid, read_arrays, run_record, scalar_attribute, sky_rows
+from raytrace.core.resultfiles import RowArray, open_complete, read_group, read_rows, save_rows
 from raytrace.physics.conversion import anisotropy_per_probability
-from raytrace.statistics.meancheck import attach_pdf_check, read_pdf_check
+from raytrace.statistics.meancheck import SKY_CHECK_POINTS, check_groups, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.onepoint import PER_MASS
 from raytrace.statistics.results import KernelRows, tangent_arrays
-from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
-from raytrace.tracing.lattice import FORMAT, sky_layout, trace_sky
-from raytrace.tracing.redshiftbins import background_by_bin
+from raytrace.statistics.spread import Columns
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
+from raytrace.tracing.lattice import FORMAT, trace_sky
+from raytrace.tracing.splits import SPLITS
+
+#: Pixels per piece when the face of each pixel is worked out (RING order): 8 MB of indices at a time.
+_FACE_PIECE = 1 << 20
+#: What a sky's readers need of its run record.
+_REQUIRED = ("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel")
+_MAPS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent")
 
 
 def _healpy():
@@ -37,29 +52,73 @@ def _healpy():
 
 
 class SkyResult(KernelRows):
-    """Kernel maps of one observer's sky.
+    """Kernel maps of one observer's sky, in memory or in its result file.
 
-    ``kernel`` is (npix, n_masses) in eV, pixel order as ``ordering`` says; P = epsilon^2 K / omega_0.
-    ``kernel_splits`` is (npix, 2, n_masses): the boxes' kernel of each independent
-    split of the pixels' rays (:mod:`raytrace.tracing.splits`), None for a sky of one
-    ray per pixel (or a file from before the splits): its noise is unknown.
+    ``maps`` holds each per-mass array (n_masses, npix), mass-major, as numpy
+    arrays or the file's datasets; :meth:`map` reads one mass's map. ``kernel``
+    (npix, n_masses) in eV, pixel order as ``ordering`` says, reads them all;
+    P = epsilon^2 K / omega_0. ``splits`` holds the boxes' kernel of each
+    independent split of the pixels' rays (:mod:`raytrace.tracing.splits`),
+    (n_masses, 2, npix), read a mass at a time by :meth:`split_maps`; None for a
+    sky of one ray per pixel (or a file from before the splits): its noise is unknown.
     """
 
     def __init__(self, mass_eV, kernel_boxes, kernel_background, crossings, dispersion_measure_boxes,
                  dispersion_measure_background, run, tangent_events=None, kernel_tangent=None, kernel_splits=None):
-        self.mass_eV = np.asarray(mass_eV, dtype=float)
-        self.kernel_boxes = np.asarray(kernel_boxes, dtype=float)
-        self.kernel_background = np.asarray(kernel_background, dtype=float)
-        self.crossings = np.asarray(crossings, dtype=float)
+        kernel_boxes = np.asarray(kernel_boxes, dtype=float)
         # Per pixel: means over the pixel's rays, so fractional counts.
-        self.tangent_events, self.kernel_tangent = tangent_arrays(self.kernel_boxes, tangent_events, kernel_tangent)
+        events, tangent = tangent_arrays(kernel_boxes, tangent_events, kernel_tangent)
+        maps = {"kernel_boxes": kernel_boxes.T, "crossings": np.asarray(crossings, dtype=float).T,
+                "tangent_events": np.asarray(events, dtype=float).T, "kernel_tangent": tangent.T}
+        splits = None if kernel_splits is None else np.asarray(kernel_splits, dtype=float).transpose(2, 1, 0)
+        self._set_up(mass_eV, maps, splits, kernel_background, dispersion_measure_boxes, dispersion_measure_background,
+                     run)
+
+    def _set_up(self, mass_eV, maps, splits, kernel_background, dispersion_measure_boxes,
+                dispersion_measure_background, run, handle=None):
+        self.mass_eV = np.asarray(mass_eV, dtype=float)
+        self.maps = maps
+        self.splits = splits
+        self.kernel_background = np.asarray(kernel_background, dtype=float)
         self.dispersion_measure_boxes = np.asarray(dispersion_measure_boxes, dtype=float)
         self.dispersion_measure_background = float(dispersion_measure_background)
-        self.kernel_splits = None if kernel_splits is None else np.asarray(kernel_splits, dtype=float)
         self.run = dict(run)
         self.nside = int(self.run["nside"])
         self.ordering = self.run["ordering"]
+        self.handle = handle
         self.shell_edges_z = self.kernel_shells_boxes = self.shells_background = None
+
+    @classmethod
+    def from_file(cls, handle):
+        """The sky an open, complete result file holds; its maps are read from the file when asked, each
+        checked as it is read, the rest checked now (:mod:`raytrace.core.resultchecks`)."""
+        path = handle.filename
+        sky = object.__new__(cls)
+        maps = {name: item for name, item in handle.items() if int(item.attrs.get("rows_axis", 0)) >= 1}
+        splits = maps.pop("kernel_splits", None)
+        if maps:
+            run, mass = run_record(handle, path, _REQUIRED), mass_grid(handle, path)
+            npix = sky_rows(run, path)
+            arrays = read_arrays(handle, path, ("kernel_background", "dispersion_measure_boxes"), mass.size, npix)
+            for name, item in {**maps, **({} if splits is None else {"kernel_splits": splits})}.items():
+                expected = (mass.size, npix) if name != "kernel_splits" else (mass.size, SPLITS, npix)
+                if item.shape != expected:
+                    raise InputError(f"{path}: dataset {name} has shape {item.shape}; expected {expected} "
+                                     "(masses, [splits,] pixels): the file is damaged or cut short")
+            dm_background = scalar_attribute(handle, path, "dispersion_measure_background")
+        else:  # files before format version 3 hold (npix, [splits,] n_masses), rows first, and fit in memory
+            run, mass, arrays, dm_background = read_rows(handle, path, required=_REQUIRED, sky=True)
+            events, tangent = tangent_arrays(arrays["kernel_boxes"], arrays["tangent_events"], arrays["kernel_tangent"])
+            maps = {"kernel_boxes": arrays["kernel_boxes"].T, "crossings": arrays["crossings"].astype(float).T,
+                    "tangent_events": events.astype(float).T, "kernel_tangent": tangent.T}
+            splits = _legacy_splits(handle, path, mass.size, sky_rows(run, path))
+        sky._set_up(mass, maps, splits, arrays["kernel_background"], arrays["dispersion_measure_boxes"],
+                    dm_background, run, handle)
+        shells = read_group(handle, "redshift_shells", mass.size)
+        if shells is not None:
+            sky.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
+        sky.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), sky.mass_eV)
+        return sky
 
     def set_shells(self, edges_z, kernel_shells_boxes, shells_background):
         """Give the result its maps per redshift shell: edges (S+1), the boxes' maps (npix, S, n_masses)
@@ -90,18 +149,110 @@ class SkyResult(KernelRows):
     def __repr__(self):
         return f"SkyResult(nside {self.nside} {self.ordering}, {self._mass_range()})"
 
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def close(self):
+        """Close the result file the maps are read from (a sky in memory has none)."""
+        if self.handle is not None:
+            self.handle.close()
+
     @property
     def npix(self):
-        return self.kernel_boxes.shape[0]
+        return self.dispersion_measure_boxes.size
+
+    def _whole(self, name):
+        return np.asarray(self.maps[name][...], dtype=float).T
+
+    kernel_boxes = property(lambda self: self._whole("kernel_boxes"), doc="(npix, n_masses): every map, read whole")
+    crossings = property(lambda self: self._whole("crossings"), doc="(npix, n_masses): every map, read whole")
+    tangent_events = property(lambda self: self._whole("tangent_events"), doc="(npix, n_masses), read whole")
+    kernel_tangent = property(lambda self: self._whole("kernel_tangent"), doc="(npix, n_masses), read whole")
+
+    # -- one mass at a time ---------------------------------------------------------------
+    def pixels(self, name, k, start=0, stop=None):
+        """Pixels start..stop-1 of mass ``k``'s map of ``name`` (one read, checked when it comes from a file);
+        "kernel" is boxes plus background."""
+        if name == "kernel":
+            return self.pixels("kernel_boxes", k, start, stop) + self.kernel_background[k]
+        values = np.asarray(self.maps[name][k, start:self.npix if stop is None else stop], dtype=float)
+        if self.handle is not None:
+            check_values(values, self.handle.filename, f"dataset {name} (mass {k})")
+        return values
+
+    def map(self, name, k):
+        """Mass ``k``'s whole map of ``name`` (float64, one contiguous read of the file)."""
+        return self.pixels(name, k)
+
+    def columns(self, name="kernel", masses=None, scale=1.0):
+        """The maps of ``name`` at the mass indices ``masses`` (default all) times ``scale``, as
+        :class:`~raytrace.statistics.spread.Columns`: read a block of pixels or one map at a time."""
+        masses = list(range(self.mass_eV.size)) if masses is None else [int(k) for k in masses]
+        return Columns(self.npix, len(masses),
+                       lambda a, b: np.stack([self.pixels(name, k, a, b) * scale for k in masses], axis=1),
+                       lambda j: self.map(name, masses[j]) * scale)
+
+    def mean(self):
+        """Mean kernel over the pixels (eV), per mass."""
+        return self.columns().each(np.mean)
+
+    def resonating_fraction(self):
+        """Share of pixels with a crossing inside the boxes, per mass."""
+        return self.columns("crossings").each(lambda crossings: np.count_nonzero(crossings) / crossings.size)
+
+    def saturates(self, epsilon, omega0_eV):
+        """Whether P = epsilon^2 K / omega_0 leaves the linear regime in some pixel at some mass (then P is
+        given in the saturating form): the largest K of each map, one map at a time."""
+        from raytrace.physics.conversion import needs_saturation
+
+        cache = self.__dict__.setdefault("_saturation", {})
+        key = (float(epsilon), float(omega0_eV))
+        if key not in cache:
+            cache[key] = needs_saturation(self.columns().each(np.max), epsilon, omega0_eV)
+        return cache[key]
+
+    def faces(self):
+        """The base HEALPix pixel (0 to 11) of every pixel, in this sky's order (int8: npix bytes)."""
+        per_face = self.nside * self.nside
+        if self.ordering == "NESTED":
+            return np.repeat(np.arange(12, dtype=np.int8), per_face)
+        faces = np.empty(self.npix, dtype=np.int8)
+        for start in range(0, self.npix, _FACE_PIECE):
+            stop = min(start + _FACE_PIECE, self.npix)
+            faces[start:stop] = _healpy().ring2nest(self.nside, np.arange(start, stop)) // per_face
+        return faces
+
+    def face_means(self):
+        """(12, n_masses): the mean kernel over each of the 12 base pixels, one map at a time."""
+        faces = self.faces()
+        counts = np.bincount(faces, minlength=12)
+        return self.columns().each(lambda kernel: np.bincount(faces, weights=kernel, minlength=12) / counts).T
 
     @property
     def split_rays(self):
         """Rays per pixel of each split, () where the sky has no splits."""
-        return tuple(self.run.get("split_rays", ())) if self.kernel_splits is not None else ()
+        return tuple(self.run.get("split_rays", ())) if self.splits is not None else ()
+
+    @property
+    def kernel_splits(self):
+        """(npix, 2, n_masses): the boxes' kernel of each split, every mass read whole; None without splits."""
+        return None if self.splits is None else np.asarray(self.splits[...], dtype=float).transpose(2, 1, 0)
+
+    def split_maps(self, k):
+        """(2, npix): mass ``k``'s boxes' kernel of split A and of split B (float64, one contiguous read of the
+        file, checked when it comes from one)."""
+        self.require_splits()
+        values = np.asarray(self.splits[k], dtype=float)
+        if self.handle is not None:
+            check_values(values, self.handle.filename, f"dataset kernel_splits (mass {k})")
+        return values
 
     def require_splits(self, what="the signal"):
         """Refuse, in one line, what needs the splits on a sky without them."""
-        if self.kernel_splits is None:
+        if self.splits is None:
             raise InputError(f"{what}: this sky has {self.run.get('rays_per_pixel', 1)} ray per pixel and no "
                              "independent splits, so its map's sampling noise is unknown; cast it with "
                              "rays_per_pixel >= 2 (--rays-per-pixel)")
@@ -113,11 +264,11 @@ class SkyResult(KernelRows):
         return int(np.argmin(np.abs(np.log(self.mass_eV) - np.log(mass_eV))))
 
     def kernel_map(self, mass_eV):
-        return self.kernel[:, self.mass_index(mass_eV)]
+        return self.map("kernel", self.mass_index(mass_eV))
 
     def probability_map(self, mass_eV, epsilon, omega0_eV, saturate=None):
         """P per pixel at one mass: linear, or (``saturate`` None) saturating where the sky leaves the
-        linear regime (:meth:`KernelRows.saturates`)."""
+        linear regime (:meth:`saturates`)."""
         from raytrace.physics.conversion import probability_from_kernel
 
         saturate = self.saturates(epsilon, omega0_eV) if saturate is None else saturate
@@ -150,32 +301,36 @@ class SkyResult(KernelRows):
         return groups
 
     def save(self, path, overwrite=False):
-        layout = sky_layout(self.run.get("rays_per_pixel", 1) if self.kernel_splits is not None else 1)
+        """Write the sky to HDF5 atomically, one map at a time (maps in their stored precision)."""
+        layout = {name: RowArray(lambda r, m: (m, r), maps.dtype, 1) for name, maps in self.maps.items()}
+        layout["dispersion_measure_boxes"] = RowArray(lambda r, m: (r,), np.float64)
+        if self.splits is not None:
+            layout["kernel_splits"] = RowArray(lambda r, m: (m, SPLITS, r), self.splits.dtype, 2)
         if self.kernel_shells_boxes is not None:
-            layout["kernel_shells_boxes"] = None
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, layout, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background},
-                           self.stored_groups())
+            shells = self.kernel_shells_boxes.shape[1]
+            layout["kernel_shells_boxes"] = RowArray(lambda r, m: (r, shells, m), np.float64)
+
+        def fill(handle):
+            for name, maps in {**self.maps, **({} if self.splits is None else {"kernel_splits": self.splits})}.items():
+                for k in range(self.mass_eV.size):
+                    handle[name][k] = maps[k]
+            handle["dispersion_measure_boxes"][...] = self.dispersion_measure_boxes
+            if self.kernel_shells_boxes is not None:
+                handle["kernel_shells_boxes"][...] = self.kernel_shells_boxes
+
+        return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, layout, self.npix,
+                         {"kernel_background": self.kernel_background},
+                         {"dispersion_measure_background": self.dispersion_measure_background}, self.stored_groups(),
+                         fill)
 
     @classmethod
     def load(cls, path):
-        with open_result(path, FORMAT, "sky") as handle:
-            splits = ("kernel_splits",) if "kernel_splits" in handle else ()
-            run, mass, arrays, dm_background = read_rows(
-                handle, path, ROW_DATASETS + splits,
-                required=("z_max", "z_boxes", "seed", "nside", "ordering", "rays_per_pixel"), sky=True)
-            result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
-                         arrays["dispersion_measure_boxes"], dm_background, run,
-                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"],
-                         kernel_splits=arrays.get("kernel_splits"))
-            shells = read_group(handle, "redshift_shells", mass.size)
-            if shells is not None:
-                result.set_shells(shells[0]["edges_z"], handle["kernel_shells_boxes"][...], shells[0]["background"])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
-        return result
+        """The sky of a result file, its maps read from the file when asked (close it, or use ``with``)."""
+        return cls.from_file(open_complete(path, FORMAT, "sky"))
 
     def write_fits(self, path, masses_eV, epsilon=None, omega0_eV=None, overwrite=False, owner=None, shown_eV=None):
-        """HEALPix FITS maps (healpy.write_map) of K at ``masses_eV``, and of P when ``epsilon`` is given.
+        """HEALPix FITS maps of K at ``masses_eV``, and of P when ``epsilon`` is given, streamed a block of
+        pixels at a time (:func:`raytrace.sky.fits.write_sky_fits`).
 
         The maps come in the order of ``masses_eV``; with ``shown_eV`` (the mass a
         run shows) that mass's maps come first in their own extension (HDU 1, what
@@ -184,7 +339,7 @@ class SkyResult(KernelRows):
         axes, no celestial COORDSYS), each map's mass (MASS1 ...), SHOWMASS, the
         run's seed, z range, the input checksums, EPSILON and OMEGA0 only with
         probability maps, and ``owner`` (the run's result file, keyword RTRESULT;
-        see :mod:`raytrace.core.companions`). Written by :mod:`raytrace.sky.fits`.
+        see :mod:`raytrace.core.companions`).
         """
         from raytrace.sky.fits import write_sky_fits
 
@@ -211,10 +366,23 @@ class SkyResult(KernelRows):
         return figure
 
 
+def _legacy_splits(handle, path, n_masses, npix):
+    """(n_masses, 2, npix) of a file before format version 3 that holds kernel_splits (npix, 2, n_masses), or
+    None."""
+    if "kernel_splits" not in handle:
+        return None
+    values = handle["kernel_splits"][...]
+    if values.shape != (npix, SPLITS, n_masses):
+        raise InputError(f"{path}: dataset kernel_splits has shape {values.shape}; expected "
+                         f"{(npix, SPLITS, n_masses)} (pixels, splits, masses): the file is damaged or cut short")
+    check_values(values, path, "dataset kernel_splits")
+    return values.transpose(2, 1, 0)
+
+
 def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, include_background=True,
              z_boxes=None, ordering="RING", plasma=None, randomise_copies=True, batch_pixels=1024,
-             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, shells_z=None,
-             device="cpu", **removed):
+             backend=None, progress=False, executor=None, photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV,
+             map_precision="float64", shells_z=None, device="cpu", **removed):
     """A HEALPix map of the conversion kernel seen by one observer out to ``z_max``.
 
     ``rays_per_pixel`` (>= 2) rays per pixel, at random stratified positions inside
@@ -224,33 +392,26 @@ def cast_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, n_jobs=1, 
     is a plain map, one ray at each pixel's centre, whose noise is unknown.
     ``ordering`` is "RING" or "NESTED" for the result's pixel order. ``randomise_copies=False`` leaves every copy of the
     lattice untransformed: a diagnostic that shows the replication pattern.
+    ``map_precision`` "float32" stores the maps per mass in single precision
+    (half the file; see :data:`raytrace.tracing.lattice.PRECISIONS`).
     Other arguments (``backend``, ``executor`` for a cluster) as in
     :func:`raytrace.cast_sightlines`, including ``photon_energy_eV`` and ``device``;
-    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster.
+    results are bit-identical for any ``n_jobs``, ``batch_pixels`` or cluster. With an
+    :class:`~raytrace.tracing.backends.HDF5Backend` the maps (and each split's maps)
+    go batch by batch to the result file and the returned sky reads them from there.
     ``shells_z``: edges in z of redshift shells (or a count, as ``redshift_bins`` of
     :func:`raytrace.cast_sightlines`): the result also holds a map per shell and mass
     (``kernel_shells``), each crossing in the shell of its redshift.
     """
-    traced = trace_sky(series, mass_eV, nside, z_max, seed=seed, rays_per_pixel=rays_per_pixel, n_jobs=n_jobs,
-                       include_background=include_background, z_boxes=z_boxes, ordering=ordering, plasma=plasma,
-                       randomise_copies=randomise_copies, batch_pixels=batch_pixels, backend=backend,
-                       progress=progress, executor=executor, photon_energy_eV=photon_energy_eV, shells_z=shells_z,
-                       device=device,
-                       **removed)
-    arrays, nside = traced.arrays, traced.run["nside"]
-    if traced.run["ordering"] == "RING":
-        ring_to_nest = _healpy().ring2nest(nside, np.arange(12 * nside * nside))
-        for values in arrays.values():  # in place, one array at a time: no second set of maps
-            values[...] = values[ring_to_nest]
-    result = SkyResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
-                       arrays["dispersion_measure_boxes"], traced.dispersion_measure_background, traced.run,
-                       tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"],
-                       kernel_splits=arrays.get("kernel_splits"))
-    edges = traced.run["shell_edges_z"]
-    if edges is not None:
-        run, plasma = traced.run, traced.plasma
-        by_shell, _ = background_by_bin(plasma, traced.mass_eV, run["z_boxes"],
-                                        run["z_max"] if run["include_background"] else run["z_boxes"], np.array(edges))
-        result.set_shells(edges, arrays["kernel_shells_boxes"], by_shell)
-    attach_pdf_check(result, traced.series, traced.plasma, n_jobs)  # the built-in check (raytrace.statistics.meancheck)
-    return traced.backend.finish(result)
+    from raytrace.boxes import as_series
+
+    series = as_series(series)
+    plasma = check_background(plasma)
+    traced = trace_sky(series, mass_eV, nside, z_max, n_jobs=n_jobs, backend=backend, progress=progress,
+                       executor=executor, groups=check_groups(series, plasma, n_jobs, SKY_CHECK_POINTS), seed=seed,
+                       rays_per_pixel=rays_per_pixel, include_background=include_background, z_boxes=z_boxes,
+                       ordering=ordering, plasma=plasma, randomise_copies=randomise_copies,
+                       batch_pixels=batch_pixels, photon_energy_eV=photon_energy_eV, map_precision=map_precision,
+                       shells_z=shells_z, device=device, **removed)
+    # The built-in check (raytrace.statistics.meancheck), per mass and per shell.
+    return warn_on_mismatch(SkyResult.from_file(traced.backend.finish()))

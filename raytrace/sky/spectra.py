@@ -146,13 +146,14 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
     total = n_a + n_b
     window2 = pixel_window(sky.nside, lmax) ** 2
     ring = (lambda m: m) if sky.ordering == "RING" else (lambda m: healpy.reorder(m, n2r=True))
-    mean = sky.kernel.mean(axis=0)
-    flat = ~(sky.kernel_boxes.std(axis=0) > FLAT_LEVEL * np.abs(mean))
+    # One mass's maps at a time, read from the sky's result file: memory holds a few maps whatever the masses.
+    mean = sky.mean()
+    flat = ~(sky.columns("kernel_boxes").each(np.std) > FLAT_LEVEL * np.abs(mean))
     names = ("cross", "auto_a", "auto_b", "full", "noise")
     spectra = {name: np.zeros((lmax + 1, sky.mass_eV.size)) for name in names}
     for k in np.flatnonzero(~flat):
         alm_a, alm_b = (healpy.map2alm(ring(m - m.mean()), lmax=lmax, iter=3)
-                        for m in (sky.kernel_splits[:, 0, k], sky.kernel_splits[:, 1, k]))
+                        for m in sky.split_maps(k))
         alm_full = (n_a * alm_a + n_b * alm_b) / total
         alm_diff = (alm_a - alm_b) * (math.sqrt(n_a * n_b) / total)
         for name, (one, two) in zip(names, ((alm_a, alm_b), (alm_a, alm_a), (alm_b, alm_b), (alm_full, alm_full),
@@ -167,17 +168,19 @@ def _split_moments(sky, flat, n_resamples, seed, level):
     """Per mass: the covariance over pixels of the two split maps (the signal variance) with its bootstrap
     error and interval, and the variance of the difference map (the noise) with its bootstrap error."""
     n_a, n_b = sky.split_rays
-    a = sky.kernel_splits[:, 0] - sky.kernel_splits[:, 0].mean(axis=0)
-    b = sky.kernel_splits[:, 1] - sky.kernel_splits[:, 1].mean(axis=0)
-    d = (a - b) * (math.sqrt(n_a * n_b) / (n_a + n_b))
-    n = a.shape[0]
-    samples = np.empty((2, n_resamples, a.shape[1]))
-    for start, count, weights in resample_weights(n, n_resamples, seed):
-        samples[0, start:start + count] = weights @ (a * b) / n - (weights @ a / n) * (weights @ b / n)
-        samples[1, start:start + count] = weights @ d**2 / n - (weights @ d / n) ** 2
+    samples = np.zeros((2, n_resamples, sky.mass_eV.size))
+    variance, noise_variance = np.zeros(sky.mass_eV.size), np.zeros(sky.mass_eV.size)
+    for k in np.flatnonzero(~flat):  # one mass's split maps at a time; the same seeded resamples for each
+        a, b = (m - m.mean() for m in sky.split_maps(k))
+        d = (a - b) * (math.sqrt(n_a * n_b) / (n_a + n_b))
+        n = a.size
+        for start, count, weights in resample_weights(n, n_resamples, seed):
+            samples[0, start:start + count, k] = weights @ (a * b) / n - (weights @ a / n) * (weights @ b / n)
+            samples[1, start:start + count, k] = weights @ d**2 / n - (weights @ d / n) ** 2
+        variance[k], noise_variance[k] = (a * b).mean(), d.var()
     low, high = percentile_interval(samples[0], level)
-    values = {"variance": (a * b).mean(axis=0), "variance_error": samples[0].std(axis=0, ddof=1),
-              "variance_low": low, "variance_high": high, "noise_variance": d.var(axis=0),
+    values = {"variance": variance, "variance_error": samples[0].std(axis=0, ddof=1),
+              "variance_low": low, "variance_high": high, "noise_variance": noise_variance,
               "noise_variance_error": samples[1].std(axis=0, ddof=1)}
     return {name: np.where(flat, 0.0, value) for name, value in values.items()}
 

@@ -1,8 +1,10 @@
 """The built-in check of every ray run: its Monte Carlo mean against the one-point-PDF mean.
 
-In: a sightline or sky result and the series it was cast through. Out: the
-result carries ``pdf_check`` (a :class:`~raytrace.statistics.onepoint.PdfMean` over the same
-redshifts, stored in its HDF5 file), :func:`mean_check` compares the two per mass
+In: the series a run casts through and its run record (before tracing), then
+its result. Out: the result file's group ``pdf_mean`` (:func:`check_groups`: a
+:class:`~raytrace.statistics.onepoint.PdfMean` over the same redshifts, made
+with the file, so a finished file never changes but for its completion flag),
+the result's ``pdf_check`` read back from it, :func:`mean_check` comparing the two per mass
 (ratio, Monte Carlo standard error, their difference in standard errors), and
 a :class:`MeanCheckWarning` names the masses where they differ by more than
 3 standard errors (for a sky, the Student-t equivalent for its 11 degrees of
@@ -12,8 +14,8 @@ The Monte Carlo standard error of a sightline run is std/sqrt(n_rays) (the rays
 are independent). The pixels of one sky are not: they share the structures of
 one light cone, so a sky's error is that of the mean of the 12 base HEALPix
 pixels (batch means over the 12 independent-looking faces; still an
-underestimate where structures span faces, as they do at low redshift).
-Measured over 64 skies each, the pulls of this check have a standard deviation
+underestimate where structures span faces, as they do at low redshift),
+computed one map at a time. Measured over 64 skies each, the pulls of this check have a standard deviation
 of 1.4-2.5 for a light cone 2.5 box lengths deep at nside 16 (tests/test_sky.py)
 and 1.0-1.9 for the demo series to z = 6 at nside 8 (largest at the lowest
 masses), not the 1.1 of 11 degrees of freedom: a sky may be flagged without a
@@ -26,6 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from raytrace.boxes import as_series
 from raytrace.core.errors import RaytraceWarning
 from raytrace.statistics.onepoint import PDF_MEAN_DATASETS, PdfMean, pdf_mean
 
@@ -119,45 +122,53 @@ def _finite(value, spec):
 
 def monte_carlo_error(result):
     """(standard error of the mean kernel per mass, what it is) for a sightline or sky result."""
-    kernel = result.kernel
-    if hasattr(result, "nside"):
-        face = _face_of_pixels(result)
-        means = np.array([kernel[face == f].mean(axis=0) for f in range(12)])
+    if hasattr(result, "face_means"):
+        means = result.face_means()
         return means.std(axis=0, ddof=1) / np.sqrt(12), "batch means over the 12 base HEALPix pixels"
+    kernel = result.kernel
     if kernel.shape[0] < 2:
         return np.full(kernel.shape[1], np.nan), "one ray: no standard error"
     return kernel.std(axis=0, ddof=1) / np.sqrt(kernel.shape[0]), "std / sqrt(rays)"
 
 
-def _face_of_pixels(sky):
-    pixels = np.arange(sky.npix)
-    if sky.ordering == "RING":
-        import healpy
-
-        pixels = healpy.ring2nest(sky.nside, pixels)
-    return pixels // (sky.nside * sky.nside)
+#: Points of a sky's check: a sky's error is that of its 12 faces (0.4-3 % of the mean on the demo
+#: series, nside 16 to z = 3), which the PDF mean's at 2^22 points (0.05-0.1 %) hardly widens, at a
+#: quarter of the cost of 2^24 (a sightline run's error falls with its rays: it gets up to 2^24).
+SKY_CHECK_POINTS = 1 << 22
 
 
-def check_points(series):
-    """Points for a run's check: 64 per cell of the largest box, from 2^20 to 2^24."""
+def check_points(series, most=1 << 24):
+    """Points for a run's check: 64 per cell of the largest box, from 2^20 to ``most``."""
     cells = max(box.n_cells for box in series.boxes) ** 3
-    return int(np.clip(64 * cells, 1 << 20, 1 << 24))
+    return int(np.clip(64 * cells, 1 << 20, most))
 
 
-def attach_pdf_check(result, series, plasma=None, n_jobs=1, warn=True):
-    """Compute the PDF mean over the redshifts ``result`` covers, store it on the result, warn on a mismatch.
+def check_groups(series, plasma=None, n_jobs=1, most_points=1 << 24):
+    """The result file's groups as a function of the run record (what
+    :class:`~raytrace.tracing.backends.Contents` takes): ``pdf_mean``, the one-point-PDF mean of
+    ``series`` over the run's redshifts at :func:`check_points` points (at most ``most_points``)."""
+    series = as_series(series)
+    points = check_points(series, most_points)
 
-    Returns ``result`` (its ``pdf_check`` set).
-    """
-    run = result.run
-    means = bin_means(result)
-    edges = None if means is None else means[0]
-    result.pdf_check = pdf_mean(series, result.mass_eV, run["z_max"], include_background=run["include_background"],
-                                z_boxes=run["z_boxes"] if run["include_background"] else None, plasma=plasma,
-                                points=check_points(series), seed=run["seed"], n_jobs=n_jobs, redshift_bins=edges)
+    def groups(run):
+        # The bins of a sightline run, or the shells of a sky: the check covers each of them as well.
+        edges = run.get("redshift_bin_edges") or run.get("shell_edges_z")
+        pdf = pdf_mean(series, np.asarray(run["mass_eV"], dtype=float), run["z_max"],
+                       include_background=run["include_background"],
+                       z_boxes=run["z_boxes"] if run["include_background"] else None, plasma=plasma,
+                       points=points, seed=run["seed"], n_jobs=n_jobs,
+                       redshift_bins=None if edges is None else np.asarray(edges))
+        return {"pdf_mean": pdf_check_group(pdf)}
+
+    return groups
+
+
+def warn_on_mismatch(result):
+    """Warn (:class:`MeanCheckWarning`, naming the masses) where ``result`` differs from its check, per
+    mass and per redshift bin; returns it."""
     for check in (mean_check(result), binned_mean_check(result)):
         message = None if check is None else check.message()
-        if warn and message:
+        if message:
             warnings.warn(MeanCheckWarning(message), stacklevel=3)
     return result
 
@@ -176,7 +187,7 @@ def bin_means(result):
     shells = getattr(result, "kernel_shells", None)
     if shells is None:
         return None
-    face = _face_of_pixels(result)
+    face = result.faces()
     means = np.array([shells[face == f].mean(axis=0) for f in range(12)])
     return (result.shell_edges_z, shells.mean(axis=0), means.std(axis=0, ddof=1) / np.sqrt(12),
             "batch means over the 12 base HEALPix pixels", (shells > 0).sum(axis=0))
@@ -208,8 +219,8 @@ def mean_check(result):
     if pdf is None:
         return None
     error, kind = monte_carlo_error(result)
-    return MeanCheck(result.mass_eV, result.mean() if hasattr(result, "mean") else result.kernel.mean(axis=0),
-                     error, pdf.kernel, pdf.error, kind, 11 if hasattr(result, "nside") else None)
+    return MeanCheck(result.mass_eV, result.mean(), error, pdf.kernel, pdf.error, kind,
+                     11 if hasattr(result, "nside") else None)
 
 
 def pdf_check_group(pdf):

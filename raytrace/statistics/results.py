@@ -14,13 +14,14 @@ from functools import partial
 import numpy as np
 
 from raytrace.core.errors import InputError, float_array
-from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_arrays
+from raytrace.core.resultfiles import ROW_DATASETS, open_result, read_group, read_rows, save_rows, write_rows
 from raytrace.physics.conversion import probability_from_kernel
 from raytrace.statistics.binstats import BinAccumulator, binned_group, read_binned
-from raytrace.statistics.meancheck import attach_pdf_check, mean_check, pdf_check_group, read_pdf_check
+from raytrace.statistics.meancheck import check_groups, mean_check, pdf_check_group, read_pdf_check, warn_on_mismatch
 from raytrace.statistics.onepoint import FORMAT as PDF_MEAN_FORMAT
 from raytrace.statistics.onepoint import PER_MASS, PdfMean
-from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV
+from raytrace.statistics.spread import Columns
+from raytrace.tracing.checks import DEFAULT_PHOTON_ENERGY_EV, check_background
 from raytrace.tracing.redshiftbins import DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES
 from raytrace.tracing.sightlines import FORMAT, SIGHTLINE_LAYOUT, trace_sightlines
 
@@ -48,6 +49,12 @@ class KernelRows:
     def kernel(self):
         """K in eV per row and mass, boxes plus background; P = epsilon^2 K / omega_0."""
         return self.kernel_boxes + self.kernel_background[None, :]
+
+    def columns(self, name="kernel", masses=None, scale=1.0):
+        """The per-row values of ``name`` at the mass indices ``masses`` (default all) times ``scale``, as
+        :class:`~raytrace.statistics.spread.Columns` (a sky reads them from its file one map at a time)."""
+        values = getattr(self, name)
+        return Columns.of((values if masses is None else values[:, list(masses)]) * scale)
 
     @property
     def dispersion_measure(self):
@@ -173,20 +180,27 @@ class SightlineResult(KernelRows):
     # -- files ------------------------------------------------------------------------
     def save(self, path, overwrite=False):
         """Write the result to HDF5 atomically, with its provenance."""
-        return save_arrays(path, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self, overwrite,
-                           {"dispersion_measure_background": self.dispersion_measure_background},
-                           self.stored_groups())
+        return save_rows(path, overwrite, FORMAT, self.mass_eV, self.run, SIGHTLINE_LAYOUT, self.n_rays,
+                         {"kernel_background": self.kernel_background},
+                         {"dispersion_measure_background": self.dispersion_measure_background}, self.stored_groups(),
+                         lambda handle: write_rows(handle, SIGHTLINE_LAYOUT, 0, vars(self), path))
 
     @classmethod
     def load(cls, path):
-        """Read a result written by :meth:`save`."""
+        """Read a result written by :meth:`save` or by a run."""
         with open_result(path, FORMAT, "sightline") as handle:
-            run, mass, arrays, dm_background = read_rows(handle, path, ROW_DATASETS + ("direction",))
-            result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
-                         arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
-                         tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
-            result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
-            result.redshift_bins = read_binned(read_group(handle, "redshift_bins", mass.size))
+            return cls.from_file(handle)
+
+    @classmethod
+    def from_file(cls, handle):
+        """The result an open, complete result file holds, every piece checked (read whole: a sightline
+        run's rows fit in memory)."""
+        run, mass, arrays, dm_background = read_rows(handle, handle.filename, ROW_DATASETS + ("direction",))
+        result = cls(mass, arrays["kernel_boxes"], arrays["kernel_background"], arrays["crossings"],
+                     arrays["dispersion_measure_boxes"], dm_background, arrays["direction"], run,
+                     tangent_events=arrays["tangent_events"], kernel_tangent=arrays["kernel_tangent"])
+        result.pdf_check = read_pdf_check(read_group(handle, "pdf_mean", mass.size, PER_MASS), result.mass_eV)
+        result.redshift_bins = read_binned(read_group(handle, "redshift_bins", mass.size))
         return result
 
 
@@ -234,8 +248,8 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         the boxes serve all of 0..z_max
     batch_size : rays per batch (results do not depend on it)
     plasma : MeanPlasma for the background part (default: CAMB, Planck 2018)
-    backend : MemoryBackend (default) or HDF5Backend (checkpointed, resumable),
-        both in :mod:`raytrace.tracing.backends`
+    backend : MemoryBackend (default) or HDF5Backend (the result file written batch by
+        batch, resumable), both in :mod:`raytrace.tracing.backends`
     executor : optional callable ``executor(tracer, batches)`` that runs the
         batches ``(batch, start, stop)`` elsewhere (a cluster) and yields
         ``(batch, start, arrays)`` as they complete; if it has a ``prepare(tracer)``
@@ -256,18 +270,15 @@ def cast_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_ba
         (a GPU where numba-cuda sees one, else the CPU); the run records the
         device used. Per ray, a GPU's rows equal the CPU's to rounding.
     """
+    plasma = check_background(plasma)
     traced = trace_sightlines(series, mass_eV, n_rays, z_max, seed=seed, n_jobs=n_jobs,
                               include_background=include_background, z_boxes=z_boxes, batch_size=batch_size,
                               plasma=plasma, backend=backend, progress=progress, executor=executor,
                               photon_energy_eV=photon_energy_eV, redshift_bins=redshift_bins,
-                              density_classes=density_classes,
+                              density_classes=density_classes, groups=check_groups(series, plasma, n_jobs),
                               reducer=partial(BinAccumulator.for_run, keep_rays=bool(keep_ray_bins)), device=device,
                               **removed)
-    arrays = traced.arrays
-    result = SightlineResult(traced.mass_eV, arrays["kernel_boxes"], traced.kernel_background, arrays["crossings"],
-                             arrays["dispersion_measure_boxes"], traced.dispersion_measure_background,
-                             arrays["direction"], traced.run, tangent_events=arrays["tangent_events"],
-                             kernel_tangent=arrays["kernel_tangent"])
-    result.redshift_bins = None if traced.reducer is None else traced.reducer.finish()
-    attach_pdf_check(result, traced.series, traced.plasma, n_jobs)
-    return traced.backend.finish(result)
+    bins = None if traced.reducer is None else traced.reducer.finish()
+    with traced.backend.finish({} if bins is None else {"redshift_bins": binned_group(bins)}) as handle:
+        result = SightlineResult.from_file(handle)
+    return warn_on_mismatch(result)

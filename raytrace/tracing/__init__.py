@@ -6,7 +6,8 @@ and dispersion measures, plus the homogeneous background's part. Modules:
 ``checks`` (the run checks the later stages share), ``rays`` (the ray plan and
 copy transforms), ``sightlines`` and ``lattice`` (random sightlines and the sky's
 light cone, driving the numba kernels of :mod:`raytrace.kernels`), ``splits`` (a
-sky pixel's rays in two independent splits), ``batches``
-(rows in batches into a backend), ``backends`` (memory or checkpointed HDF5),
-``cluster`` (batches on dask.distributed) and ``progress``.
+sky pixel's rays in two independent splits), ``batches`` (rows in batches into a
+backend), ``backends`` (the result file, written batch by batch, on disk or in
+memory), ``cluster`` (batches on dask.distributed), ``devices`` and ``gputrace``
+(the GPU path), ``progress`` and ``sizing`` (a run's rate measured on its own rows).
 """

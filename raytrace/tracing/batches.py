@@ -1,7 +1,9 @@
 """Rows (rays or pixels) traced in batches into a backend, here on numba threads or on a cluster.
 
-In: a tracer (a pure function of row indices), a backend, the run record. Out:
-the backend's arrays, every batch written as it completes, resumable.
+In: a tracer (a pure function of row indices), a backend, the run record and
+what its result file holds besides the rows. Out: the backend's result file,
+every batch written as it completes (and given to a reducer), resumable; a
+progress bar in box cells per second with the time left.
 """
 
 import sys
@@ -18,7 +20,7 @@ from raytrace.tracing.progress import compile_notice, step_rows
 
 def check_backend_and_executor(backend, executor):
     """An InputError saying what a backend and an executor must be, where they are not."""
-    needed = ("open", "completed_batches", "write_batch", "read", "finish")
+    needed = ("open", "completed_batches", "write_batch", "read_rows", "finish")
     if not all(callable(getattr(backend, name, None)) for name in needed):
         raise InputError("backend: expected raytrace.tracing.backends.MemoryBackend() or HDF5Backend(path), "
                          f"got {backend!r}")
@@ -28,8 +30,9 @@ def check_backend_and_executor(backend, executor):
 
 
 def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_size, n_jobs, executor, progress,
-                unit, description, reducer=None):
-    """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` and return its arrays.
+                description, contents, reducer=None):
+    """Trace rows 0..n_rows-1 (rays or pixels) in batches into ``backend`` (its result file, made with
+    ``contents``: :class:`~raytrace.tracing.backends.Contents`); the caller finishes it (``backend.finish``).
 
     Batches the backend already holds (a resumed checkpoint) are skipped; the rest
     run here on ``n_jobs`` numba threads, or through ``executor`` (a cluster), each
@@ -46,18 +49,20 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
         executor.prepare(tracer)
     watch = InputWatch([(box.path, box.checksum) for box in tracer.boxes if box.path is not None])
     starts = list(range(0, n_rows, batch_size))
-    backend.open(mass, n_rows, run, len(starts), layout, format_name)
+    backend.open(mass, n_rows, run, len(starts), layout, format_name, contents)
     done = backend.completed_batches()
     todo = [(b, s, min(s + batch_size, n_rows)) for b, s in enumerate(starts) if not done[b]]
     if reducer is not None:
         for b in np.flatnonzero(done):
             reducer.add(b, starts[b], backend.read_rows(starts[b], min(starts[b] + batch_size, n_rows), reducer.names))
-    with tqdm(total=n_rows, initial=n_rows - sum(stop - start for _, start, stop in todo), unit=unit,
-              desc=description, disable=not progress) as bar:
+    cells = tracer.cells_per_row()  # every row is as long: the bar counts cells, so it shows cells/s
+    left = sum(stop - start for _, start, stop in todo)
+    with tqdm(total=round(n_rows * cells), initial=round((n_rows - left) * cells), unit="cell", unit_scale=True,
+              desc=description, disable=not progress, smoothing=0.05) as bar:
         if executor is None:
             with numba_threads(n_jobs):
                 # Without a bar, one call per batch; with one, steps small enough for it to move.
-                step = step_rows(batch_size, numba.get_num_threads()) if progress else batch_size
+                step = step_rows(batch_size, numba.get_num_threads(), cells) if progress else batch_size
                 for number, (b, start, stop) in enumerate(todo):
                     # Small steps move the bar per group of rays; each row is traced on its own,
                     # so the arrays are the same bits as one call for the batch.
@@ -66,18 +71,20 @@ def run_batches(tracer, backend, mass, run, layout, format_name, n_rows, batch_s
                         with compile_notice(progress and number == 0 and first == start,
                                             lambda text: bar.write(text, file=sys.stderr)):
                             parts.append(tracer.trace(range(first, min(first + step, stop))))
-                        bar.update(min(first + step, stop) - first)
-                    arrays = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
+                        bar.update(round(min(first + step, stop) * cells) - round(first * cells))
                     watch.quick()  # before the write: a batch that read a changed box is never stored
-                    _store(backend, reducer, b, start, arrays)
+                    _store(backend, reducer, b, start, joined(parts))
         else:
-            finished = dict((b, stop - start) for b, start, stop in todo)
             for b, start, arrays in executor(tracer, todo):
                 watch.quick()
                 _store(backend, reducer, b, start, arrays)
-                bar.update(finished[b])
+                bar.update(round(len(next(iter(arrays.values()))) * cells))
     watch.final()
-    return backend.read()
+
+
+def joined(parts):
+    """The per-row arrays of consecutive groups of rows, as one."""
+    return parts[0] if len(parts) == 1 else {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
 
 
 def _store(backend, reducer, batch, start, arrays):
@@ -88,16 +95,13 @@ def _store(backend, reducer, batch, start, arrays):
 
 @dataclass(frozen=True, eq=False)
 class Traced:
-    """A finished trace: the rows' arrays and what a result and its built-in check are built from."""
+    """A finished trace: its backend (``finish`` gives its result file, open for reading) and what a
+    result is built from."""
 
-    mass_eV: np.ndarray
-    arrays: dict
-    kernel_background: np.ndarray
-    dispersion_measure_background: float
+    backend: object
     run: dict
     series: object
     plasma: object
-    backend: object
     n_jobs: object
     #: What took the batches' redshift cells (``reducer`` of :func:`run_batches`), where there were any.
     reducer: object = None

@@ -23,6 +23,7 @@ from raytrace.core.errors import (
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.cosmology import Z_TABLE_MAX
 from raytrace.physics.units import CMB_PHOTON_ENERGY_EV
+from raytrace.tracing.backends import Contents
 
 #: Options the API no longer takes, with the reason a user is told (the run file and the flags too).
 REMOVED_OPTIONS = {
@@ -189,3 +190,11 @@ def background_part(plasma, mass, z_boxes, z_max, include_background):
     if include_background and z_max > z_boxes:
         return plasma.kernel(mass, z_boxes, z_max), background_dispersion_measure(plasma, z_boxes, z_max)
     return np.zeros(mass.size), 0.0
+
+
+def background_contents(plasma, mass, z_boxes, z_max, include_background, groups):
+    """A run's result file besides its rows: the homogeneous background's kernel and DM, and ``groups``
+    (a function of the run record, :class:`~raytrace.tracing.backends.Contents`)."""
+    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
+    return Contents({"kernel_background": kernel_background}, {"dispersion_measure_background": dm_background},
+                    groups)

@@ -5,12 +5,15 @@ machine, or a ready ``distributed.Client``), then, from
 ``cast_sightlines(executor=...)`` or ``cast_sky(executor=...)``, the run's
 tracer and its batches
 (batch index, first ray, stop). Out: ``(batch, start, arrays)`` for each batch
-as soon as it completes, in any order, so the backend checkpoints each one.
+as soon as it completes, in any order, so the client writes each one into the
+run's result file (:mod:`raytrace.tracing.backends`) as it arrives: a killed
+client resumes from that file, and holds no more than the batches in flight.
 
 Boxes never travel through the scheduler: the tracer goes out once per run
 without them (its plan and mass targets: small arrays), with each box's
 ``load_arguments``, and every worker reopens the box files itself (a shared
-file system) and keeps the rebuilt tracer for the run's later batches. Ray i's
+file system; contiguous boxes are memory-mapped, shared by a node's workers)
+and keeps the rebuilt tracer for the run's later batches. Ray i's
 numbers depend on (seed, i) alone and the tracer's arrays are the client's own,
 so the result is bit-identical to the serial run.
 

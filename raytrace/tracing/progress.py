@@ -2,8 +2,9 @@
 
 In: the kernels package, a batch of rows. Out: a notice while the ray kernels
 compile (numba, on the first run; later runs load them from its cache) and a
-line with the time it took, and how many rows one progress step traces (a few
-per thread, so a bar moves per small group of rays, not per checkpoint batch).
+line with the time it took, and how many rows one progress step traces (about
+2^18 box cells per thread, a few hundredths of a second: a bar moves per small
+group of rays, not per checkpoint batch, and a call's fixed cost stays small).
 """
 
 import importlib
@@ -61,6 +62,13 @@ def compile_notice(enabled, write=None):
         write(f"raytrace: compiled the ray kernels in {time.perf_counter() - start:.1f} s")
 
 
-def step_rows(batch_rows, threads):
-    """Rows per progress step: four per thread (enough to keep them busy), at most a batch."""
-    return max(1, min(int(batch_rows), 4 * max(1, int(threads))))
+#: Box cells per thread in a progress step. Measured on the demo series (nside 64, z = 3, 2816 cells a
+#: ray, one thread): calls of 64 rows or more trace at full speed, of 8 rows 13 % slower, of one 28 %.
+STEP_CELLS_PER_THREAD = 1 << 18
+
+
+def step_rows(batch_rows, threads, cells_per_row):
+    """Rows per progress step: about :data:`STEP_CELLS_PER_THREAD` box cells and at least four rows per
+    thread (enough to keep them busy), at most a batch."""
+    per_thread = max(4, -(-STEP_CELLS_PER_THREAD // max(1, int(cells_per_row))))
+    return max(1, min(int(batch_rows), per_thread * max(1, int(threads))))

@@ -209,10 +209,10 @@ def background_by_bin(plasma, mass, z_boxes, z_max, edges_z):
 
 def run_layout(layout, bins):
     """A run's per-row layout: ``layout`` plus, with bins, each row's cells, streamed in float32
-    (:data:`raytrace.tracing.backends.STREAMED`: reduced batch by batch, kept only in a checkpoint)."""
+    (:class:`raytrace.core.resultfiles.RowArray` ``streamed``: reduced batch by batch, kept only in a checkpoint)."""
     if bins is None:
         return layout
-    from raytrace.tracing.backends import STREAMED
+    from raytrace.core.resultfiles import RowArray
 
     cells = bins.n_cells
-    return dict(layout, kernel_cells=(lambda r, m: (r, cells, m), np.float32, STREAMED))
+    return dict(layout, kernel_cells=RowArray(lambda r, m: (r, cells, m), np.float32, streamed=True))

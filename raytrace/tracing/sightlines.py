@@ -1,9 +1,9 @@
 """Random sightlines: each ray walks its own stack of randomly transformed box copies.
 
 In: a box series (or a list of boxes, or one box), a sorted mass grid (eV), the
-number of rays, z_max and the run's options. Out: a :class:`Traced` run: per-ray
-arrays (kernel from the boxes, crossings, near-tangent events, dispersion
-measure, direction) and the homogeneous background's part.
+number of rays, z_max and the run's options. Out: a :class:`Traced` run: its
+result file of per-ray arrays (kernel from the boxes, crossings, near-tangent
+events, dispersion measure, direction) and the homogeneous background's part.
 
 The boxes serve redshifts up to ``z_boxes``; with ``include_background`` the
 homogeneous universe adds the rest up to ``z_max`` (the same for every ray and
@@ -17,18 +17,18 @@ import numpy as np
 from raytrace import __version__
 from raytrace.boxes import as_series
 from raytrace.core.errors import require_number
+from raytrace.core.resultfiles import RowArray, result_bytes
 from raytrace.kernels.sightlines import trace_pieces
 from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
 from raytrace.tracing.backends import MemoryBackend
-from raytrace.tracing.batches import Traced, run_batches
+from raytrace.tracing.batches import Traced, check_backend_and_executor, run_batches
 from raytrace.tracing.checks import (
     DEFAULT_PHOTON_ENERGY_EV,
-    background_part,
+    background_contents,
     boxes_redshift_range,
     check_background,
     check_masses,
     check_no_other_options,
-    check_run_memory,
     check_seed,
     check_trace_options,
     warn_outside_probed_range,
@@ -40,14 +40,14 @@ from raytrace.tracing.redshiftbins import DEFAULT_DENSITY_EDGES, run_bins, run_l
 
 FORMAT = "raytrace-sightlines-2"
 
-# name -> (shape from (n_rows, n_masses), dtype): the per-ray arrays a sightline run fills.
+# The per-ray arrays a sightline run fills, rows first (counts stored as float64, as a sky's means are).
 SIGHTLINE_LAYOUT = {
-    "kernel_boxes": (lambda r, m: (r, m), np.float64),
-    "crossings": (lambda r, m: (r, m), np.int32),
-    "tangent_events": (lambda r, m: (r, m), np.int32),
-    "kernel_tangent": (lambda r, m: (r, m), np.float64),
-    "dispersion_measure_boxes": (lambda r, m: (r,), np.float64),
-    "direction": (lambda r, m: (r, 3), np.float64),
+    "kernel_boxes": RowArray(lambda r, m: (r, m), np.float64),
+    "crossings": RowArray(lambda r, m: (r, m), np.float64),
+    "tangent_events": RowArray(lambda r, m: (r, m), np.float64),
+    "kernel_tangent": RowArray(lambda r, m: (r, m), np.float64),
+    "dispersion_measure_boxes": RowArray(lambda r, m: (r,), np.float64),
+    "direction": RowArray(lambda r, m: (r, 3), np.float64),
 }
 
 
@@ -72,6 +72,15 @@ class Tracer:
         # Each crossing's kernel also goes to its redshift cell (raytrace.tracing.redshiftbins); none without bins.
         self.cell_edges = np.zeros((mass_eV.size, 0)) if bins is None else bins.inner_opz
         self.cell_count = 0 if bins is None else bins.n_cells
+
+    #: Rays traced per row (a sky's pixel averages several).
+    rays_per_row = 1
+
+    def cells_per_row(self):
+        """Length of one row's rays in cells of the boxes that serve each span: what a row costs."""
+        plan = self.plan
+        cell = np.array([self.boxes[int(box)].cell_size_cMpc for box in plan.span_box])
+        return self.rays_per_row * float(np.sum((plan.span_chi_b - plan.span_chi_a) / cell))
 
     def _span_arguments(self, span):
         """The leading arguments of a kernel call for span ``span``: cubes, scales, blending."""
@@ -177,8 +186,9 @@ class GpuRayTracer(GpuTracing, RayTracer):
 def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_background=True, z_boxes=None,
                      batch_size=256, plasma=None, backend=None, progress=False, executor=None,
                      photon_energy_eV=DEFAULT_PHOTON_ENERGY_EV, redshift_bins=None,
-                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, device="cpu", **removed):
-    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s. Returns a :class:`Traced`.
+                     density_classes=DEFAULT_DENSITY_EDGES, reducer=None, groups=None, device="cpu", **removed):
+    """Trace ``n_rays`` random sightlines; the arguments are :func:`raytrace.cast_sightlines`'s, and
+    ``groups`` that of :class:`~raytrace.tracing.backends.Contents`. Returns a :class:`Traced`.
 
     With ``redshift_bins`` each ray's kernel also goes to its redshift cells, which the object
     ``reducer(bins, mass_eV, plasma, z_end, kernel_background, n_rays)`` makes takes batch by batch
@@ -188,9 +198,8 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     series = as_series(series)
     mass = check_masses(mass_eV)
     seed = check_seed(seed)
-    n_rays = require_number(n_rays, "n_rays", whole=True, at_least=1)
+    n_rays = int(require_number(n_rays, "n_rays", whole=True, at_least=1))
     z_max, photon_energy_eV = check_trace_options(z_max, photon_energy_eV, batch_size, "batch_size")
-    check_run_memory(n_rays, mass.size, "n_rays and mass_eV (--rays, --mass-count)")
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     device, device_note = choose_device(device, executor)
@@ -213,12 +222,20 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
     run.update(bins.run_record() if bins is not None else {})
     warn_outside_probed_range(series, mass, z_boxes)
-    tracer, executor = device_tracer(device, RayTracer, GpuRayTracer,
-                                     (series, mass, z_boxes, seed, photon_energy_eV, plasma.cosmology, bins), executor)
-    kernel_background, dm_background = background_part(plasma, mass, z_boxes, z_max, include_background)
+    tracer, device_executor = device_tracer(device, RayTracer, GpuRayTracer, (series, mass, z_boxes, seed,
+                                            photon_energy_eV, plasma.cosmology, bins), executor)
+    contents = background_contents(plasma, mass, z_boxes, z_max, include_background, groups)
     reduce = None if bins is None or reducer is None else reducer(
-        bins, mass, plasma, z_max if include_background else z_boxes, kernel_background, n_rays)
+        bins, mass, plasma, z_max if include_background else z_boxes, contents.per_mass["kernel_background"], n_rays)
     backend = backend if backend is not None else MemoryBackend()
-    arrays = run_batches(tracer, backend, mass, run, run_layout(SIGHTLINE_LAYOUT, bins), FORMAT, n_rays, batch_size,
-                         n_jobs, executor, progress, unit="ray", description="sightlines", reducer=reduce)
-    return Traced(mass, arrays, kernel_background, dm_background, run, series, plasma, backend, n_jobs, reduce)
+    check_backend_and_executor(backend, executor)
+    layout = run_layout(SIGHTLINE_LAYOUT, bins)
+    # With bins the checkpoint keeps each ray's cells and the result is written apart at the end: room for both.
+    kept = {name: entry for name, entry in layout.items() if not entry.streamed}
+    n_batches = -(-n_rays // int(batch_size))
+    backend.check_room(result_bytes(layout, n_rays, mass.size, n_batches)
+                       + (result_bytes(kept, n_rays, mass.size, n_batches) if len(kept) < len(layout) else 0),
+                       "rays or masses (--rays, --mass-count)")
+    run_batches(tracer, backend, mass, run, layout, FORMAT, n_rays, batch_size, n_jobs, device_executor, progress,
+                f"{n_rays} sightlines", contents, reduce)
+    return Traced(backend, run, series, plasma, n_jobs, reduce)
