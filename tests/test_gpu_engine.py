@@ -145,11 +145,17 @@ def simulate(path):
     from raytrace.tracing import gputrace
 
     warnings.simplefilter("ignore")  # the probed-range notes and numba's launch-size hints
+    # The simulator runs a block's threads as Python threads that poll and lock against each other: the nside-2
+    # sky took 840 s in blocks of 128 threads, 4 s in blocks of 1 (measured on 2 cores). A thread traces one
+    # ray and shares nothing with its block, so the block size changes no result; the call-size cases below
+    # use blocks of 3, whose last block is part empty (the guard on the ray index).
+    gputrace.THREADS_PER_BLOCK = 1
     runs = {"sightlines": [sightline_run(device) for device in ("cpu", "gpu")],
             "sky": [sky_run(device) for device in ("cpu", "auto")],
             "cells": [cell_rows(device) for device in ("cpu", "gpu")]}
     # Against one call for all 8 rays: batches of 5 split into calls of 3 rays (3 a multiprocessor: the
     # simulator has one), and batches of 2 grouped into calls of 5.
+    gputrace.THREADS_PER_BLOCK = 3
     gputrace.RAYS_PER_MULTIPROCESSOR = 3
     runs["split_calls"] = [runs["sightlines"][1], sightline_run("gpu", batch_size=5)]
     gputrace.RAYS_PER_MULTIPROCESSOR = 5
@@ -168,7 +174,7 @@ def simulated(tmp_path_factory):
     environment = dict(os.environ, NUMBA_ENABLE_CUDASIM="1")
     environment["PYTHONPATH"] = os.pathsep.join([str(Path(raytrace.__file__).parents[1]),
                                                  environment.get("PYTHONPATH", "")])
-    subprocess.run([sys.executable, __file__, "--simulate", str(path)], env=environment, check=True, timeout=900)
+    subprocess.run([sys.executable, __file__, "--simulate", str(path)], env=environment, check=True, timeout=600)
     with np.load(path) as stored:
         arrays = {name: stored[name] for name in stored.files if name != "facts"}
         facts = json.loads(str(stored["facts"]))

@@ -23,6 +23,7 @@ import numpy as np
 
 from raytrace.core.errors import RaytraceWarning
 
+#: Threads per block. A thread traces one ray and shares nothing with its block, so the size changes no row.
 THREADS_PER_BLOCK = 128
 #: Rays per multiprocessor in one call: several times what it holds at once (~10 warps at ~200 registers
 #: a thread), so that the last rays of a call do not leave it idle for long.
