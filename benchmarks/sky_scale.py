@@ -4,14 +4,16 @@ Every figure comes from a child process running the command line as a user
 would (``raytrace sky``, ``raytrace limits``), its peak resident memory read
 from /proc/self/status (VmHWM) as it ends:
 
-(a) skies of nside 64, 128 and 256 (49 152 to 786 432 pixels), 32 masses, one
-    ray per pixel to z = 0.5 through one 128^3 series (snapshots z = 0 and 0.5
+(a) skies of nside 64, 128 and 256 (49 152 to 786 432 pixels), 32 masses, two
+    rays per pixel (two independent splits of one ray each: the split maps are
+    stored and read too) to z = 0.5 through one 128^3 series (snapshots z = 0 and 0.5
     of 200 cMpc, contiguous float32, so memory-mapped: 16 MB), 2 threads, the
     maps streamed to the result file: the growth of the peak from nside 64 to 256
     against 10 % of the boxes' bytes + 50 MB (target; maps held in memory grow
     by 48 bytes x pixels x masses, 1.2 GB at nside 256);
-(b) ``raytrace limits --sky`` on the nside-256 result: its peak against 1.3 x
-    one map (6.3 MB) + 300 MB (target);
+(b) ``raytrace limits --sky`` on the nside-256 result (its signal and noise
+    spectra, the Planck TT test): its peak against 1.3 x one map (6.3 MB) +
+    300 MB (target);
 (c) ``raytrace sky --estimate`` of the nside-128 run against that run's wall
     time (target: within a factor 1.5).
 
@@ -19,6 +21,7 @@ The default sizes are modest: this machine has 2 cores shared with others (a
 neighbour's load stretches the measured wall times alike, not the memory).
 
 Usage: python benchmarks/sky_scale.py [--nsides 64 128 256] [--cells 128] [--masses 32] [--z-max 0.5]
+                                      [--rays-per-pixel 2]
 """
 
 import argparse
@@ -96,6 +99,7 @@ def main():
     parser.add_argument("--masses", type=int, default=32)
     parser.add_argument("--z-max", type=float, default=0.5)
     parser.add_argument("--jobs", type=int, default=2)
+    parser.add_argument("--rays-per-pixel", type=int, default=2)
     parser.add_argument("--child", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -108,9 +112,11 @@ def main():
         boxes = write_series(folder, args.cells, args.box_size)
         boxes_mb = sum(os.path.getsize(path) for path in boxes) / 2**20
         common = ["--boxes", *boxes, "--mass-min", "5e-15", "--mass-max", "5e-14", "--mass-count", str(args.masses),
-                  "--z-max", str(args.z_max), "--no-include-background", "--jobs", str(args.jobs), "--seed", "3"]
+                  "--z-max", str(args.z_max), "--no-include-background", "--jobs", str(args.jobs), "--seed", "3",
+                  "--rays-per-pixel", str(args.rays_per_pixel)]
         print(f"series: 2 snapshots of {args.cells}^3 cells, {args.box_size:g} cMpc ({boxes_mb:.0f} MB, "
-              f"memory-mapped); {args.masses} masses, z = 0 to {args.z_max:g}, {args.jobs} threads; "
+              f"memory-mapped); {args.masses} masses, {args.rays_per_pixel} rays per pixel, z = 0 to {args.z_max:g}, "
+              f"{args.jobs} threads; "
               f"load average {os.getloadavg()[0]:.1f}")
         run_child(["sky", *common, "--nside", "1"])  # compiles the kernels once (numba caches them): not measured
         peaks, walls = {}, {}
