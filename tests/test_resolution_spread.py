@@ -161,3 +161,24 @@ def test_top_share_and_robust_spreads():
     assert found.mad[0] == 0.0 and found.half_width[0] == 0.0  # median absolute deviation of a constant bulk
     with pytest.raises(InputError, match="at least 2 rows"):
         spread(np.ones((1, 3)), np.ones(3))
+
+
+def test_resample_blocks_draw_each_resample_as_one_multinomial(monkeypatch):
+    # Blocks of 50 rows (20 blocks): each resample's counts must be one multinomial draw of n = 1000 over
+    # 1000 rows, as numpy's rng.multinomial draws it whole: every resample sums to n, and a row's count is
+    # Binomial(n, 1/n) (mean 1, variance 1 - 1/n; P(0) = (1 - 1/n)^n) in every block alike (the marginals of
+    # the multinomial distribution, Feller 1968 vol. 1 VI.9, from memory). 2000 resamples.
+    from raytrace.statistics import spread as spread_module
+
+    n, resamples = 1000, 2000
+    monkeypatch.setattr(spread_module, "_BLOCK_VALUES", 50 * resamples)
+    weights = np.concatenate([w for _, _, w in spread_module.resample_blocks(n, resamples, seed=3)], axis=1)
+    assert weights.shape == (resamples, n)
+    np.testing.assert_array_equal(weights.sum(axis=1), n)
+    per_block = weights.reshape(resamples, 20, 50).mean(axis=(0, 2))  # mean count of each block's rows
+    # Each block's mean over 2000 x 50 counts: standard error sqrt((1 - 1/n) / 1e5) = 0.0032; 4 sigma.
+    assert np.all(np.abs(per_block - 1.0) < 4 * np.sqrt((1 - 1 / n) / (resamples * 50)))
+    assert weights.var() == pytest.approx(1 - 1 / n, rel=0.02)  # 2e6 counts: relative error ~0.1 %
+    whole = np.random.default_rng(7).multinomial(n, np.full(n, 1 / n), size=resamples)
+    zeros, expected = np.mean(weights == 0), (1 - 1 / n) ** n
+    assert abs(zeros - expected) < 0.003 and abs(np.mean(whole == 0) - expected) < 0.003
