@@ -82,7 +82,7 @@ def per_thread_rates(series, mass, z_max, plasma, rows=1536, rounds=3):
 
 def one_thread_costs(series, mass, z_max, plasma, nside):
     """(CPU seconds of an nside-1 sky: the fixed costs, of an nside ``nside`` sky), one thread, 1 ray per pixel."""
-    options = dict(z_max=z_max, include_background=False, plasma=plasma, n_jobs=1)
+    options = dict(z_max=z_max, include_background=False, plasma=plasma, n_jobs=1, rays_per_pixel=1)
     seconds = []
     for size in (1, nside):
         with warnings.catch_warnings():  # 12 pixels are too few for the built-in check: its warning is not the point
