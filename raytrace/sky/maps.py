@@ -245,7 +245,19 @@ class SkyResult(KernelRows):
         """(2, npix): mass ``k``'s boxes' kernel of split A and of split B (float64, one contiguous read of the
         file, checked when it comes from one)."""
         self.require_splits()
-        values = np.asarray(self.splits[k], dtype=float)
+        return self._split_pixels(k, slice(None), 0, self.npix)
+
+    def split_columns(self, part):
+        """Split ``part``'s (0: A, 1: B) maps of every mass as :class:`~raytrace.statistics.spread.Columns`:
+        read a block of pixels or one map at a time."""
+        self.require_splits()
+        masses = range(self.mass_eV.size)
+        return Columns(self.npix, len(masses),
+                       lambda a, b: np.stack([self._split_pixels(k, part, a, b) for k in masses], axis=1),
+                       lambda k: self._split_pixels(k, part, 0, self.npix))
+
+    def _split_pixels(self, k, part, start, stop):
+        values = np.asarray(self.splits[k, part, start:stop], dtype=float)
         if self.handle is not None:
             check_values(values, self.handle.filename, f"dataset kernel_splits (mass {k})")
         return values

@@ -35,7 +35,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from raytrace.statistics.spread import LEVEL, N_RESAMPLES, percentile_interval, resample_weights
+from raytrace.statistics.spread import LEVEL, N_RESAMPLES, percentile_interval, resample_blocks
 
 #: A map whose pixels differ by less than this share of their mean (rms) is flat: no anisotropy.
 FLAT_LEVEL = 1e-5
@@ -166,21 +166,28 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
 
 def _split_moments(sky, flat, n_resamples, seed, level):
     """Per mass: the covariance over pixels of the two split maps (the signal variance) with its bootstrap
-    error and interval, and the variance of the difference map (the noise) with its bootstrap error."""
+    error and interval, and the variance of the difference map (the noise) with its bootstrap error. The
+    maps are read a block of pixels at a time, every mass at once, so each resample is drawn once for all
+    masses (:func:`raytrace.statistics.spread.resample_blocks`) and memory holds a block, whatever nside."""
     n_a, n_b = sky.split_rays
-    samples = np.zeros((2, n_resamples, sky.mass_eV.size))
-    variance, noise_variance = np.zeros(sky.mass_eV.size), np.zeros(sky.mass_eV.size)
-    for k in np.flatnonzero(~flat):  # one mass's split maps at a time; the same seeded resamples for each
-        a, b = (m - m.mean() for m in sky.split_maps(k))
-        d = (a - b) * (math.sqrt(n_a * n_b) / (n_a + n_b))
-        n = a.size
-        for start, count, weights in resample_weights(n, n_resamples, seed):
-            samples[0, start:start + count, k] = weights @ (a * b) / n - (weights @ a / n) * (weights @ b / n)
-            samples[1, start:start + count, k] = weights @ d**2 / n - (weights @ d / n) ** 2
-        variance[k], noise_variance[k] = (a * b).mean(), d.var()
+    scale = math.sqrt(n_a * n_b) / (n_a + n_b)
+    split = [sky.split_columns(part) for part in (0, 1)]
+    centre = [columns.each(np.mean) for columns in split]
+    n = sky.npix
+    sums = {name: np.zeros((n_resamples, sky.mass_eV.size)) for name in ("ab", "a", "b", "dd", "d")}
+    totals = {name: np.zeros(sky.mass_eV.size) for name in ("ab", "dd")}
+    for start, stop, weights in resample_blocks(n, n_resamples, seed):
+        a, b = (columns.block(start, stop) - middle for columns, middle in zip(split, centre))
+        d = (a - b) * scale
+        for name, values in (("ab", a * b), ("a", a), ("b", b), ("dd", d * d), ("d", d)):
+            sums[name] += weights @ values
+        totals["ab"] += (a * b).sum(axis=0)
+        totals["dd"] += (d * d).sum(axis=0)
+    samples = np.stack([sums["ab"] / n - (sums["a"] / n) * (sums["b"] / n), sums["dd"] / n - (sums["d"] / n) ** 2])
     low, high = percentile_interval(samples[0], level)
-    values = {"variance": variance, "variance_error": samples[0].std(axis=0, ddof=1),
-              "variance_low": low, "variance_high": high, "noise_variance": noise_variance,
+    # a and b are centred, so the difference map's mean is 0: its variance is its mean square.
+    values = {"variance": totals["ab"] / n, "variance_error": samples[0].std(axis=0, ddof=1),
+              "variance_low": low, "variance_high": high, "noise_variance": totals["dd"] / n,
               "noise_variance_error": samples[1].std(axis=0, ddof=1)}
     return {name: np.where(flat, 0.0, value) for name, value in values.items()}
 

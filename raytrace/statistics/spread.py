@@ -37,7 +37,6 @@ LEVEL = 0.68
 TOP_FRACTION = 0.01
 #: Warn when the top 1 % of rows carry more than this share of the variance.
 TOP_SHARE_WARNING = 0.5
-_CHUNK = 64  # resamples per matrix product in resample_weights: bounds memory at 64 x n_rows counts
 _BLOCK_VALUES = 1 << 20  # values of a block (resamples x rows of counts, or rows x columns of data): 8 MB
 
 
@@ -103,38 +102,39 @@ def moments(kernel):
 def bootstrap_moments(kernel, n_resamples=N_RESAMPLES, seed=0):
     """(mean, std) per resample and mass, each (n_resamples, n_masses), of rows resampled with replacement."""
     columns = _rows(kernel)
-    if isinstance(n_resamples, bool) or not isinstance(n_resamples, (int, np.integer)) or n_resamples < 10:
-        raise InputError(f"n_resamples: expected a whole number >= 10, got {n_resamples!r}")
     n = columns.n_rows
-    rng = _rng(seed)
+    blocks = resample_blocks(n, n_resamples, seed)
     # Centred and scaled first, so the second moment loses no digits.
     centre, scale = moments(columns)
     scale = np.where(scale > 0, scale, 1.0)
     first, second = np.zeros((n_resamples, columns.n_columns)), np.zeros((n_resamples, columns.n_columns))
-    draws_left, rows_left = np.full(n_resamples, n), n
-    rows = max(1, _BLOCK_VALUES // n_resamples)
-    for start in range(0, n, rows):
-        size = min(rows, n - start)
-        # This block's share of each resample's n draws, then the draws among its rows.
-        counts = draws_left if size == rows_left else rng.binomial(draws_left, size / rows_left)
-        weights = rng.multinomial(counts, np.full(size, 1.0 / size)).astype(float)
-        draws_left, rows_left = draws_left - counts, rows_left - size
-        unit = (columns.block(start, start + size) - centre) / scale
+    for start, stop, weights in blocks:
+        unit = (columns.block(start, stop) - centre) / scale
         first += weights @ unit
         second += weights @ unit**2
     first, second = first / n, second / n
     return centre + scale * first, scale * np.sqrt(np.maximum(second - first**2, 0.0) * n / (n - 1))
 
 
-def resample_weights(n_rows, n_resamples=N_RESAMPLES, seed=0):
-    """(first resample, count, weights (count, n_rows)) in chunks: how often each row is drawn, with
-    replacement, in each bootstrap resample; the same for a given seed on every run."""
+def resample_blocks(n_rows, n_resamples=N_RESAMPLES, seed=0):
+    """(start, stop, weights (n_resamples, stop - start)) for blocks of rows: how often each row is drawn, with
+    replacement, in each bootstrap resample; the same for a given seed on every run. Each resample's counts
+    (multinomial: n draws over n rows) come block by block, the block's share binomial and its rows' counts
+    multinomial within it: the same distribution in a block's memory (8 MB), whatever the rows."""
     if isinstance(n_resamples, bool) or not isinstance(n_resamples, (int, np.integer)) or n_resamples < 10:
         raise InputError(f"n_resamples: expected a whole number >= 10, got {n_resamples!r}")
     rng = _rng(seed)  # checked here, before any resample is drawn
-    return ((start, min(_CHUNK, n_resamples - start),
-             rng.multinomial(n_rows, np.full(n_rows, 1.0 / n_rows), size=min(_CHUNK, n_resamples - start)).astype(float))
-            for start in range(0, n_resamples, _CHUNK))
+
+    def blocks():
+        draws_left, rows_left = np.full(n_resamples, n_rows), n_rows
+        rows = max(1, _BLOCK_VALUES // n_resamples)
+        for start in range(0, n_rows, rows):
+            size = min(rows, n_rows - start)
+            counts = draws_left if size == rows_left else rng.binomial(draws_left, size / rows_left)
+            yield start, start + size, rng.multinomial(counts, np.full(size, 1.0 / size)).astype(float)
+            draws_left, rows_left = draws_left - counts, rows_left - size
+
+    return blocks()
 
 
 def percentile_interval(samples, level=LEVEL):
