@@ -7,8 +7,6 @@ References: numpy percentiles, astropy constants and Planck18, PHYSICS.md sectio
 import json
 import re
 
-import astropy.constants as const
-import astropy.units as u
 import h5py
 import numpy as np
 import pytest

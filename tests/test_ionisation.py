@@ -10,7 +10,7 @@ import astropy.units as u
 import camb
 import numpy as np
 import pytest
-from astropy.cosmology import FlatLambdaCDM, Planck18
+from astropy.cosmology import FlatLambdaCDM
 from conftest import camb_background_for_planck18
 from scipy.optimize import brentq
 

@@ -15,7 +15,7 @@ import sys
 import numpy as np
 import pytest
 
-from raytrace.boxes import Box, BoxSeries
+from raytrace.boxes import Box
 from raytrace.core.errors import InputError
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
