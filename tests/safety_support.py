@@ -11,23 +11,8 @@ from pathlib import Path
 
 import numpy as np
 
-from conftest import REPOSITORY, write_lognormal_box
+from conftest import REPOSITORY, two_box_run_file, write_lognormal_box
 
-RUN_FILE = """\
-[boxes]
-files = ["box_z0.h5", "box_z1.h5"]
-
-[masses]
-min_eV = 1e-14
-max_eV = 1.2e-13
-count = 8
-
-[rays]
-count = {rays}
-z_max = 1.5
-batch_size = 10
-seed = {seed}
-"""
 
 
 def box_folder(folder, rays=40, seed=11):
@@ -35,9 +20,10 @@ def box_folder(folder, rays=40, seed=11):
     folder = Path(folder)
     write_lognormal_box(folder / "box_z0.h5", 0.0, np.random.default_rng(1))
     write_lognormal_box(folder / "box_z1.h5", 1.0, np.random.default_rng(2))
-    (folder / "run.toml").write_text(RUN_FILE.format(rays=rays, seed=seed))
+    text = two_box_run_file(rays, seed)
+    (folder / "run.toml").write_text(text)
     # The same without [rays] count, which a sky does not use (and the code before issue 24 refused).
-    (folder / "sky.toml").write_text("\n".join(line for line in RUN_FILE.format(rays=rays, seed=seed).splitlines()
+    (folder / "sky.toml").write_text("\n".join(line for line in text.splitlines()
                                                if not line.startswith("count = " + str(rays))) + "\n")
     return folder / "run.toml"
 

@@ -19,7 +19,7 @@ import warnings
 import h5py
 import numpy as np
 import pytest
-from conftest import write_lognormal_box
+from conftest import two_box_run_file, write_lognormal_box
 
 from raytrace.cli import main
 from raytrace.core.errors import InputError
@@ -28,21 +28,6 @@ from raytrace.tracing.backends import HDF5Backend
 
 ARRAYS = ("kernel_boxes", "crossings", "dispersion_measure_boxes", "direction")
 N_RAYS, BATCH = 120, 10  # 12 batches
-RUN_FILE = """\
-[boxes]
-files = ["box_z0.h5", "box_z1.h5"]
-
-[masses]
-min_eV = 1e-14
-max_eV = 1.2e-13
-count = 16
-
-[rays]
-count = {n_rays}
-z_max = 1.5
-batch_size = {batch}
-seed = 11
-"""
 
 
 @pytest.fixture(scope="module")
@@ -51,7 +36,7 @@ def reference(tmp_path_factory):
     folder = tmp_path_factory.mktemp("reference")
     write_lognormal_box(folder / "box_z0.h5", 0.0, np.random.default_rng(1))
     write_lognormal_box(folder / "box_z1.h5", 1.0, np.random.default_rng(2))
-    (folder / "run.toml").write_text(RUN_FILE.format(n_rays=N_RAYS, batch=BATCH))
+    (folder / "run.toml").write_text(two_box_run_file(N_RAYS, 11, BATCH, mass_count=16))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert main(["sightlines", str(folder / "run.toml"), "--output", str(folder / "reference.h5")]) == 0
@@ -189,7 +174,7 @@ def test_a_disk_that_fills_during_a_sky_run_does_not_stop_it(workspace, small_fi
 
 
 def test_a_disk_too_small_for_the_result_refuses_it_at_the_start(workspace, small_file_system, capsys):
-    workspace.write_text(RUN_FILE.format(n_rays=4000, batch=BATCH))  # a result of a few MB
+    workspace.write_text(two_box_run_file(4000, 11, BATCH, mass_count=16))  # a result of a few MB
     output = small_file_system / "s.h5"
     assert run(workspace, output) == 2
     line = error_line(capsys)

@@ -18,7 +18,7 @@ import time
 import h5py
 import numpy as np
 import pytest
-from conftest import write_lognormal_box
+from conftest import two_box_run_file, write_lognormal_box
 
 from raytrace.cli import main
 from raytrace.core.provenance import file_checksum
@@ -28,21 +28,6 @@ from raytrace.statistics.results import SightlineResult
 from raytrace.tracing.sightlines import SIGHTLINE_LAYOUT
 
 N_RAYS = 1500  # one ray per batch: many batches, so kills land mid-run
-RUN_FILE = """\
-[boxes]
-files = ["box_z0.h5", "box_z1.h5"]
-
-[masses]
-min_eV = 1e-14
-max_eV = 1.2e-13
-count = 16
-
-[rays]
-count = {n_rays}
-z_max = 1.5
-batch_size = 1
-seed = 7
-"""
 
 
 def write_box(path, redshift, seed):
@@ -55,7 +40,7 @@ def reference(tmp_path_factory):
     folder = tmp_path_factory.mktemp("reference")
     write_box(folder / "box_z0.h5", 0.0, seed=1)
     write_box(folder / "box_z1.h5", 1.0, seed=2)
-    (folder / "run.toml").write_text(RUN_FILE.format(n_rays=N_RAYS))
+    (folder / "run.toml").write_text(two_box_run_file(N_RAYS, 7, batch_size=1, mass_count=16))
     output = folder / "uninterrupted.h5"
     assert main(arguments(folder / "run.toml", output)) == 0
     return folder, output
