@@ -42,11 +42,13 @@ def demo_series(demo_dir):
     return load_series(sorted(str(p) for p in demo_dir.glob("demo_z*.h5")))
 
 
-def two_box_run_file(rays, seed, batch_size=10, mass_count=8):
+def two_box_run_file(rays, seed, batch_size=10, mass_count=8, extra=""):
     """The text of a run file over two boxes box_z0.h5 and box_z1.h5 (z = 0, 1) to z = 1.5, 1e-14 to
-    1.2e-13 eV: what the resume and data-safety tests write beside :func:`write_lognormal_box`'s boxes."""
+    1.2e-13 eV: what the resume and data-safety tests write beside :func:`write_lognormal_box`'s boxes.
+    ``rays`` None leaves out [rays] count (a sky does not use it); ``extra`` is added at the end."""
+    count = "" if rays is None else f"count = {rays}\n"
     return (f'[boxes]\nfiles = ["box_z0.h5", "box_z1.h5"]\n\n[masses]\nmin_eV = 1e-14\nmax_eV = 1.2e-13\n'
-            f"count = {mass_count}\n\n[rays]\ncount = {rays}\nz_max = 1.5\nbatch_size = {batch_size}\nseed = {seed}\n")
+            f"count = {mass_count}\n\n[rays]\n{count}z_max = 1.5\nbatch_size = {batch_size}\nseed = {seed}\n{extra}")
 
 
 def write_lognormal_box(path, redshift, rng, cells=16, mean_comoving_cm3=2.5e-7):

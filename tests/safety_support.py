@@ -14,17 +14,14 @@ import numpy as np
 from conftest import REPOSITORY, two_box_run_file, write_lognormal_box
 
 
-
 def box_folder(folder, rays=40, seed=11):
     """Two 16^3 log-normal boxes (z = 0, 1) and a run file of ``rays`` rays; returns the run file."""
     folder = Path(folder)
     write_lognormal_box(folder / "box_z0.h5", 0.0, np.random.default_rng(1))
     write_lognormal_box(folder / "box_z1.h5", 1.0, np.random.default_rng(2))
-    text = two_box_run_file(rays, seed)
-    (folder / "run.toml").write_text(text)
+    (folder / "run.toml").write_text(two_box_run_file(rays, seed))
     # The same without [rays] count, which a sky does not use (and the code before issue 24 refused).
-    (folder / "sky.toml").write_text("\n".join(line for line in text.splitlines()
-                                               if not line.startswith("count = " + str(rays))) + "\n")
+    (folder / "sky.toml").write_text(two_box_run_file(None, seed))
     return folder / "run.toml"
 
 

@@ -28,6 +28,11 @@ from raytrace.boxes import Box, BoxSeries
 from raytrace.core.errors import InputError
 from raytrace.physics.background import MeanPlasma
 from raytrace.physics.ionisation import IonisationHistory
+from raytrace.tracing.redshiftbins import (
+    DEFAULT_BIN_COUNT,
+    DEFAULT_DENSITY_EDGES,
+    run_bins,
+)
 
 ROWS = ("kernel_boxes", "crossings", "tangent_events", "kernel_tangent", "dispersion_measure_boxes")
 #: Per case, the rows compared besides ROWS: each ray's kernel per redshift cell (the tracers' own float64
@@ -89,24 +94,23 @@ def sky_run(device):
                              device=device)
 
 
+def default_bins(mass, background):
+    """The run's redshift cells to z = 0.03 with the default bins and density classes."""
+    return run_bins(DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, mass, background, 0.03, 0.03, False)
+
+
 def cell_rows(device):
     """The 8 rays of :func:`sightline_run` traced with the default redshift bins and density classes: each
     ray's rows, with its kernel per redshift cell (``kernel_cells``, float64)."""
     from types import SimpleNamespace
 
-    from raytrace.tracing.redshiftbins import (
-        DEFAULT_BIN_COUNT,
-        DEFAULT_DENSITY_EDGES,
-        run_bins,
-    )
     from raytrace.tracing.sightlines import GpuRayTracer, RayTracer
 
     background = plasma()
     series = random_series(background)
     mass = case_masses(series, True)
-    bins = run_bins(DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, mass, background, 0.03, 0.03, False)
     tracer = (RayTracer if device == "cpu" else GpuRayTracer)(series, mass, 0.03, 3, 1e-2, background.cosmology,
-                                                               bins)
+                                                               default_bins(mass, background))
     return SimpleNamespace(run={"device": tracer.device}, **tracer.trace(np.arange(8)))
 
 
@@ -278,18 +282,13 @@ def test_the_streaming_walk_gives_the_table_walks_bits_on_the_cpu():
     from raytrace.kernels.streaming import stream_segment
     from raytrace.physics.constants import C_MPC_S, HBAR_EV_S, PLASMA_MASS2_PER_DENSITY
     from raytrace.tracing.rays import plan_rays
-    from raytrace.tracing.redshiftbins import (
-        DEFAULT_BIN_COUNT,
-        DEFAULT_DENSITY_EDGES,
-        run_bins,
-    )
 
     background = plasma()
     series = random_series(background)
     mass = case_masses(series, False)
     targets = mass**2 / PLASMA_MASS2_PER_DENSITY
     plan = plan_rays(background.cosmology, series, 0.03)
-    bins = run_bins(DEFAULT_BIN_COUNT, DEFAULT_DENSITY_EDGES, mass, background, 0.03, 0.03, False)
+    bins = default_bins(mass, background)
     rng = np.random.default_rng(5)
     lo, hi = series.boxes[0], series.boxes[1]
     cells_hit = set()

@@ -139,28 +139,12 @@ def test_a_disk_that_fills_during_a_run_stops_it_in_one_line_and_resume_is_bit_i
     assert_same_as_reference(output, reference)
 
 
-SKY_RUN = """\
-[boxes]
-files = ["box_z0.h5", "box_z1.h5"]
-[masses]
-min_eV = 1e-14
-max_eV = 1.2e-13
-count = 16
-[rays]
-z_max = 1.5
-batch_size = 16
-seed = 11
-[sky]
-nside = 4
-"""
-
-
 def test_a_disk_that_fills_during_a_sky_run_does_not_stop_it(workspace, small_file_system, monkeypatch):
     # A sky's result file is its checkpoint: its blocks were reserved when it was made and finishing it
     # only sets a flag in place, so a disk that fills while batches are written does not stop the run.
     # Reference: the same sky run uninterrupted on the ordinary disk.
     sky_file = workspace.parent / "sky.toml"
-    sky_file.write_text(SKY_RUN)
+    sky_file.write_text(two_box_run_file(None, 11, batch_size=16, mass_count=16, extra="[sky]\nnside = 4\n"))
     assert main(["sky", str(sky_file), "--output", str(workspace.parent / "reference_sky.h5")]) == 0
     output = small_file_system / "sky.h5"
     filler = []
