@@ -28,7 +28,6 @@ Usage: python benchmarks/sightline_speed.py [--cells 256] [--rays 48] [--compare
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -53,18 +52,9 @@ from raytrace.tracing.sightlines import RayTracer
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from half_cell_engine import HalfCellTracer  # noqa: E402  (the baseline lives beside this file)
+from peakmemory import peak_rss_mb  # noqa: E402
 
 REPOSITORY = Path(__file__).resolve().parents[1]
-
-
-def peak_rss_mb():
-    """This process's peak resident memory (VmHWM: unlike ru_maxrss it does not carry over
-    from the parent across exec)."""
-    with open("/proc/self/status") as status:
-        for line in status:
-            if line.startswith("VmHWM:"):
-                return float(line.split()[1]) / 1024.0
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def timed(function):

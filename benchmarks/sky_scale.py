@@ -36,17 +36,10 @@ import time
 import warnings
 from pathlib import Path
 
+from peakmemory import peak_rss_mb  # beside this file: a script's folder is on sys.path
+
 REPOSITORY = Path(__file__).resolve().parents[1]
 UNITS = {"s": 1.0, "min": 60.0, "h": 3600.0, "days": 86400.0}
-
-
-def peak_rss_mb():
-    """This process's peak resident memory (VmHWM, which does not carry over across exec)."""
-    with open("/proc/self/status") as status:
-        for line in status:
-            if line.startswith("VmHWM:"):
-                return float(line.split()[1]) / 1024.0
-    raise RuntimeError("no VmHWM in /proc/self/status")
 
 
 def child(argv):

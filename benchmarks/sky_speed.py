@@ -28,6 +28,7 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from peakmemory import peak_rss_mb  # beside this file: a script's folder is on sys.path
 
 import raytrace
 from raytrace.boxes import load_series
@@ -41,15 +42,6 @@ from raytrace.tracing.sightlines import RayTracer
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 DEMO = str(REPOSITORY / "cubes_demo" / "demo_z*.h5")
-
-
-def peak_rss_mb():
-    """This process's peak resident memory (VmHWM, which does not carry over across exec)."""
-    with open("/proc/self/status") as status:
-        for line in status:
-            if line.startswith("VmHWM:"):
-                return float(line.split()[1]) / 1024.0
-    raise RuntimeError("no VmHWM in /proc/self/status")
 
 
 def cells_per_ray(series, z_max, plasma):
