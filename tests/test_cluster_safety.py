@@ -67,6 +67,22 @@ def bounded(target):
     return not thread.is_alive(), outcome.get("value")
 
 
+def assert_a_local_cluster_gives_the_serial_rays(inputs):
+    """The run on a one-worker local cluster ends within BOUND_S with the serial run's rays, bit for bit."""
+    import raytrace
+    from raytrace.tracing import cluster
+
+    _, files, mass, arguments, serial = inputs
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        finished, value = bounded(lambda: raytrace.cast_sightlines(
+            raytrace.load_series(files), mass, executor=cluster.DaskExecutor("local", workers=1), **arguments))
+    assert finished, f"still running after {BOUND_S} s"
+    assert not isinstance(value, BaseException), repr(value)
+    for name in ARRAYS:
+        assert np.array_equal(getattr(value, name), getattr(serial, name)), name
+
+
 def test_a_run_that_never_gets_a_worker_stops_after_its_stated_time(inputs, monkeypatch):
     import raytrace
     from raytrace.tracing import cluster
@@ -89,10 +105,8 @@ def test_a_run_that_never_gets_a_worker_stops_after_its_stated_time(inputs, monk
 
 
 def test_a_local_cluster_whose_workers_are_gone_for_good_starts_new_ones(inputs, monkeypatch):
-    import raytrace
     from raytrace.tracing import cluster
 
-    folder, files, mass, arguments, serial = inputs
     monkeypatch.setattr(cluster, "_WAIT_S", 0.5)
     monkeypatch.setattr(cluster, "_RESTART_S", 2.0, raising=False)
     enter = cluster.DaskExecutor.__enter__
@@ -106,14 +120,7 @@ def test_a_local_cluster_whose_workers_are_gone_for_good_starts_new_ones(inputs,
         return self
 
     monkeypatch.setattr(cluster.DaskExecutor, "__enter__", workers_die)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        finished, value = bounded(lambda: raytrace.cast_sightlines(
-            raytrace.load_series(files), mass, executor=cluster.DaskExecutor("local", workers=1), **arguments))
-    assert finished, f"still waiting for a worker after {BOUND_S} s"
-    assert not isinstance(value, BaseException), repr(value)
-    for name in ARRAYS:
-        assert np.array_equal(getattr(value, name), getattr(serial, name)), name
+    assert_a_local_cluster_gives_the_serial_rays(inputs)
 
 
 def test_a_local_cluster_that_trips_on_a_worker_it_no_longer_lists_as_it_closes_keeps_the_run(inputs, monkeypatch):
@@ -123,10 +130,6 @@ def test_a_local_cluster_that_trips_on_a_worker_it_no_longer_lists_as_it_closes_
     # Planted here for every leaving worker, through distributed's own handler.
     from distributed.deploy.spec import SpecCluster
 
-    import raytrace
-    from raytrace.tracing import cluster
-
-    _, files, mass, arguments, serial = inputs
     update = SpecCluster._update_worker_status
 
     def copy_already_forgot(self, op, msg):
@@ -135,14 +138,7 @@ def test_a_local_cluster_that_trips_on_a_worker_it_no_longer_lists_as_it_closes_
         return update(self, op, msg)
 
     monkeypatch.setattr(SpecCluster, "_update_worker_status", copy_already_forgot)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        finished, value = bounded(lambda: raytrace.cast_sightlines(
-            raytrace.load_series(files), mass, executor=cluster.DaskExecutor("local", workers=1), **arguments))
-    assert finished, f"still running after {BOUND_S} s"
-    assert not isinstance(value, BaseException), repr(value)
-    for name in ARRAYS:
-        assert np.array_equal(getattr(value, name), getattr(serial, name)), name
+    assert_a_local_cluster_gives_the_serial_rays(inputs)
 
 
 @pytest.fixture
