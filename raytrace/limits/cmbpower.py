@@ -14,7 +14,9 @@ then the binned high-l spectrum (83 bins of Delta l = 30 from l = 30, the last
   states and tests/test_cmbpower.py checks to the printed digits).
 - The model: the binned file's best-fit LCDM column for l >= 30; below, CAMB with
   the Planck 2018 parameters (:data:`PLANCK_2018_PARAMETERS`; the file carries
-  no model there). Run once per process (cached in memory).
+  no model there), shipped as ``raytrace/data/lcdm_tt_low_ell.txt`` (written by
+  scripts/write_lcdm_low_ell.py with :func:`lcdm_power`): CAMB's run would cost
+  every ``limits`` and ``report`` about 145 MB for 28 numbers.
 - The TT spectrum combines the 100-217 GHz channels after component separation:
   :func:`check_frequency` refuses an observed frequency outside that range.
 """
@@ -31,6 +33,7 @@ from raytrace.core.errors import InputError, require_path
 
 UNBINNED = "planck2018_tt_unbinned.txt"
 BINNED = "planck2018_tt_binned.txt"
+LCDM_LOW_ELL = "lcdm_tt_low_ell.txt"
 #: First multipole of the binned (high-l) spectrum; below it the unbinned low-l rows serve.
 HIGH_ELL_START = 30
 #: Bin edges of the binned Planck 2018 TT spectrum: [30, 60), [60, 90), ..., [2460, 2490), [2490, 2509).
@@ -94,8 +97,8 @@ class BandPowers:
 
 
 def planck_tt(unbinned=None, binned=None):
-    """The Planck 2018 TT :class:`BandPowers`: l = 2-29 from ``unbinned`` (model: CAMB), then the bins of
-    ``binned`` (model: its own column). None reads the shipped copies."""
+    """The Planck 2018 TT :class:`BandPowers`: l = 2-29 from ``unbinned`` (model: CAMB's, shipped), then
+    the bins of ``binned`` (model: its own column). None reads the shipped copies."""
     ell, power, low, high = read_unbinned(unbinned)
     below = ell < HIGH_ELL_START
     _, power_b, low_b, high_b, model_b = read_binned(binned)
@@ -108,7 +111,7 @@ def planck_tt(unbinned=None, binned=None):
         ell_effective=np.concatenate([ell[below], _effective_multipoles()]),
         power=np.concatenate([power[below], power_b]),
         error_low=np.concatenate([low[below], low_b]), error_high=np.concatenate([high[below], high_b]),
-        model=np.concatenate([lcdm_power(HIGH_ELL_START - 1)[ell[below].astype(int)], model_b]), source=source)
+        model=np.concatenate([lcdm_low_ell()[ell[below].astype(int) - 2], model_b]), source=source)
 
 
 def read_unbinned(path=None):
@@ -153,9 +156,20 @@ def check_frequency(omega0_eV, what="frequency (--frequency)"):
     return ghz
 
 
+def lcdm_low_ell():
+    """D_l (muK^2) of LCDM at l = 2-29, index l - 2: the shipped table of :func:`lcdm_power`'s values."""
+    with resources.as_file(resources.files("raytrace") / "data" / LCDM_LOW_ELL) as shipped:
+        table = np.loadtxt(shipped, comments="#", ndmin=2)
+    if not np.array_equal(table[:, 0], np.arange(2, HIGH_ELL_START)):  # a broken installation, not user input
+        raise InputError(f"{shipped}: expected l = 2-{HIGH_ELL_START - 1} in column 1; reinstall raytrace")
+    return table[:, 1]
+
+
 @lru_cache(maxsize=2)
 def lcdm_power(lmax):
-    """D_l (muK^2, l = 0..lmax, lensed) of LCDM with :data:`PLANCK_2018_PARAMETERS`, from CAMB; read-only."""
+    """D_l (muK^2, l = 0..lmax, lensed) of LCDM with :data:`PLANCK_2018_PARAMETERS`, from CAMB; read-only.
+
+    Not run by the tool: it wrote the shipped :func:`lcdm_low_ell` table, and the tests check both."""
     import camb
 
     params = camb.set_params(lmax=max(int(lmax), 40), **PLANCK_2018_PARAMETERS)
