@@ -184,13 +184,21 @@ def test_spectra_one_mass_at_a_time_from_the_file_equal_anafast_of_the_whole_map
             np.testing.assert_array_equal(on_disk.split_maps(k), in_memory.kernel_splits[:, :, k].T)
     # The signal spectrum read one mass at a time from the file: healpy's cross-spectrum of the in-memory
     # split maps (map2alm, alm2cl; the outside reference), over the pixel window squared.
-    cross = np.zeros_like(spectra.cross)
+    # The map's spectrum and the noise spectrum (of the difference map (A - B) sqrt(n_a n_b) / N), which the
+    # sky's spectra derive from the splits' three, are healpy's of those maps made here.
+    n_a, n_b = spectra.split_rays
+    cross, full, noise = (np.zeros_like(spectra.cross) for _ in range(3))
     for k in np.flatnonzero(~spectra.flat):
-        alm_a, alm_b = (healpy.map2alm(healpy.reorder(m - m.mean(), n2r=True), lmax=spectra.lmax, iter=3)
-                        for m in in_memory.kernel_splits[:, :, k].T)
+        a, b = (healpy.reorder(m - m.mean(), n2r=True) for m in in_memory.kernel_splits[:, :, k].T)
+        alm_a, alm_b = (healpy.map2alm(m, lmax=spectra.lmax, iter=3) for m in (a, b))
         cross[:, k] = healpy.alm2cl(alm_a, alm_b, lmax=spectra.lmax) / spectra.window**2
+        for spectrum, m in ((full, (n_a * a + n_b * b) / (n_a + n_b)),
+                            (noise, (a - b) * np.sqrt(n_a * n_b) / (n_a + n_b))):
+            spectrum[:, k] = healpy.anafast(m, lmax=spectra.lmax, iter=3) / spectra.window**2
     assert np.any(~spectra.flat)
     np.testing.assert_allclose(spectra.cross, cross, rtol=1e-9, atol=0)
+    for found, expected in ((spectra.full, full), (spectra.noise, noise)):
+        np.testing.assert_allclose(found, expected, rtol=1e-9, atol=0)
     # The C_l limit from that signal spectrum of dT/T = -K (1 - e^-x)/x / omega_0 at epsilon = 1 (PHYSICS.md
     # s.6), the table's l = 2..16 (the resolved 2 nside), worked out here.
     x = 2.35e-4 / (8.617333262e-5 * 2.72548)  # h nu / k T_0 at omega_0 = 2.35e-4 eV (CODATA 2018 k_B)

@@ -150,19 +150,25 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
     # Each mass's map read once for its mean and its spread (one map is 400 MB at nside 2048).
     mean, spread = sky.columns().each(lambda kernel: (kernel.mean(), kernel.std())).T
     flat = ~(spread > FLAT_LEVEL * np.abs(mean))
-    names = ("cross", "auto_a", "auto_b", "full", "noise")
-    spectra = {name: np.zeros((lmax + 1, sky.mass_eV.size)) for name in names}
+    spectra = {name: np.zeros((lmax + 1, sky.mass_eV.size)) for name in ("cross", "auto_a", "auto_b")}
+    split = [sky.split_columns(part) for part in (0, 1)]
     for k in np.flatnonzero(~flat):
-        alm_a, alm_b = (healpy.map2alm(ring(m - m.mean()), lmax=lmax, iter=3)
-                        for m in sky.split_maps(k))
-        alm_full = (n_a * alm_a + n_b * alm_b) / total
-        alm_diff = (alm_a - alm_b) * (math.sqrt(n_a * n_b) / total)
-        for name, (one, two) in zip(names, ((alm_a, alm_b), (alm_a, alm_a), (alm_b, alm_b), (alm_full, alm_full),
-                                            (alm_diff, alm_diff))):
+        # One split's map at a time (with healpy's work arrays, a few maps), then its alm (lmax^2 / 2 complex).
+        alm_a, alm_b = (healpy.map2alm(ring(_centred(columns.column(k))), lmax=lmax, iter=3) for columns in split)
+        for name, (one, two) in (("cross", (alm_a, alm_b)), ("auto_a", (alm_a, alm_a)), ("auto_b", (alm_b, alm_b))):
             spectra[name][:, k] = healpy.alm2cl(one, two, lmax=lmax) / window2
+    # C_l is bilinear and symmetric in the alm of real maps, so the map (n_a A + n_b B) / N and the difference
+    # map (A - B) sqrt(n_a n_b) / N have their spectra from these three, without their own alm.
+    spectra["full"] = (n_a**2 * spectra["auto_a"] + n_b**2 * spectra["auto_b"]
+                       + 2 * n_a * n_b * spectra["cross"]) / total**2
+    spectra["noise"] = n_a * n_b * (spectra["auto_a"] + spectra["auto_b"] - 2 * spectra["cross"]) / total**2
     moments = _split_moments(sky, flat, n_resamples, seed, level)
     return SkySpectra(sky.mass_eV, sky.nside, int(total), (n_a, n_b), np.sqrt(window2), mean, **spectra, **moments,
                       flat=flat, n_resamples=int(n_resamples), level=float(level), seed=int(seed))
+
+
+def _centred(values):
+    return values - values.mean()
 
 
 def _split_moments(sky, flat, n_resamples, seed, level):
