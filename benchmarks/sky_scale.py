@@ -14,8 +14,7 @@ from /proc/self/status (VmHWM) as it ends:
 (b) ``raytrace limits --sky`` on each result (its signal and noise spectra,
     the Planck TT test): the nside-256 peak against 1.3 x one map (6.3 MB) +
     300 MB (target), and its growth from nside 64, which is what a map's size
-    can change (CAMB's LCDM spectrum below l = 30, part of the TT test, takes
-    about 160 MB whatever the sky);
+    can change (the imported libraries take about 200 MB whatever the sky);
 (c) ``raytrace sky --estimate`` of the nside-128 run against that run's wall
     time (target: within a factor 1.5).
 
