@@ -13,6 +13,7 @@ from contextlib import contextmanager
 import numba
 import numpy as np
 
+from raytrace import __version__
 from raytrace.core.errors import (
     InputError,
     ProbedRangeWarning,
@@ -136,6 +137,19 @@ def boxes_redshift_range(series, plasma, z_max, z_boxes, include_background):
                                           f"serve all of z = 0 to {z_max:g} and there is no background part"),
                           stacklevel=4)
     return min(float(z_boxes), float(z_max))
+
+
+def run_record(series, mass, plasma, seed, z_max, z_boxes, include_background, photon_energy_eV, batch_name,
+               batch):
+    """The part of a run's record (the result file's ``run``) that sightlines and skies share: the version,
+    the ray range and seed, the batch size, and the inputs (boxes, masses, ionisation, cosmology)."""
+    return {
+        "raytrace": __version__, "z_max": float(z_max), "z_boxes": float(z_boxes),
+        "include_background": bool(include_background), "seed": int(seed), "photon_energy_eV": photon_energy_eV,
+        batch_name: int(batch), "blend": series.blend, "mass_eV": mass.tolist(),
+        "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
+        "cosmology": plasma.cosmology.name,
+    }
 
 
 def warn_outside_probed_range(series, mass, z_boxes):

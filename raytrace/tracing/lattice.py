@@ -22,7 +22,6 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from raytrace import __version__
 from raytrace.boxes import as_series
 from raytrace.core.errors import InputError, require_number
 from raytrace.core.resultfiles import RowArray, result_bytes
@@ -38,6 +37,7 @@ from raytrace.tracing.checks import (
     check_no_other_options,
     check_seed,
     check_trace_options,
+    run_record,
     warn_outside_probed_range,
 )
 from raytrace.tracing.devices import choose_device, device_record, device_tracer
@@ -227,17 +227,12 @@ def plan_sky(series, mass_eV, nside, z_max, seed=0, rays_per_pixel=4, include_ba
     edges = bin_edges(shells_z, z_boxes, z_max, include_background, "shells_z (--shells)")
     shells = None if edges is None else bin_setup(edges, np.zeros(0), mass, plasma, z_boxes)
     layout = sky_layout(map_precision, rays_per_pixel, shells)
-    run = {
-        "raytrace": __version__, "nside": nside, "ordering": ordering, "rays_per_pixel": rays_per_pixel,
-        "split_rays": list(split_counts(rays_per_pixel)),
-        "z_max": float(z_max), "z_boxes": float(z_boxes), "include_background": bool(include_background),
-        "seed": int(seed), "photon_energy_eV": photon_energy_eV, "batch_pixels": int(batch_pixels),
-        "randomise_copies": bool(randomise_copies), "map_precision": map_precision,
-        "blend": series.blend, "mass_eV": mass.tolist(),
-        "boxes": [box.describe() for box in series.boxes], "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name, "shell_edges_z": None if edges is None else edges.tolist(),
-        **device_record(device, device_note),
-    }
+    run = {**run_record(series, mass, plasma, seed, z_max, z_boxes, include_background, photon_energy_eV,
+                        "batch_pixels", batch_pixels),
+           "nside": nside, "ordering": ordering, "rays_per_pixel": rays_per_pixel,
+           "split_rays": list(split_counts(rays_per_pixel)), "randomise_copies": bool(randomise_copies),
+           "map_precision": map_precision, "shell_edges_z": None if edges is None else edges.tolist(),
+           **device_record(device, device_note)}
     warn_outside_probed_range(series, mass, z_boxes)
     # Pixels are traced and stored in the result's own order: each is traced on its own,
     # so the maps are the same bits in RING or NESTED order, with no reordering pass.

@@ -14,7 +14,6 @@ bit-identical for any ``n_jobs`` and ``batch_size``.
 
 import numpy as np
 
-from raytrace import __version__
 from raytrace.boxes import as_series
 from raytrace.core.errors import require_number
 from raytrace.core.resultfiles import RowArray, result_bytes
@@ -31,6 +30,7 @@ from raytrace.tracing.checks import (
     check_no_other_options,
     check_seed,
     check_trace_options,
+    run_record,
     warn_outside_probed_range,
 )
 from raytrace.tracing.devices import choose_device, device_record, device_tracer
@@ -203,22 +203,9 @@ def trace_sightlines(series, mass_eV, n_rays, z_max, seed=0, n_jobs=1, include_b
     plasma = check_background(plasma)
     z_boxes = boxes_redshift_range(series, plasma, z_max, z_boxes, include_background)
     device, device_note = choose_device(device, executor)
-    run = {
-        "raytrace": __version__,
-        "n_rays": int(n_rays),
-        "z_max": float(z_max),
-        "z_boxes": float(z_boxes),
-        "include_background": bool(include_background),
-        "seed": int(seed),
-        "photon_energy_eV": photon_energy_eV,
-        "batch_size": int(batch_size),
-        "blend": series.blend,
-        "mass_eV": mass.tolist(),
-        "boxes": [box.describe() for box in series.boxes],
-        "ionisation": plasma.ionisation.description,
-        "cosmology": plasma.cosmology.name,
-        **device_record(device, device_note),
-    }
+    run = {**run_record(series, mass, plasma, seed, z_max, z_boxes, include_background, photon_energy_eV,
+                        "batch_size", batch_size),
+           "n_rays": int(n_rays), **device_record(device, device_note)}
     bins = run_bins(redshift_bins, density_classes, mass, plasma, z_boxes, z_max, include_background)
     run.update(bins.run_record() if bins is not None else {})
     warn_outside_probed_range(series, mass, z_boxes)
