@@ -256,8 +256,15 @@ def main():
     rounding_sensitivity(report, args.compare_rays)
     if args.rounding_only:
         return
-    from raytrace.kernels import gpu
+    from numba import config
 
+    from raytrace.kernels import gpu
+    from raytrace.tracing import gputrace
+
+    if config.ENABLE_CUDASIM:
+        # The simulator runs a block's threads as Python threads that contend for a lock: blocks of 1 thread
+        # (as in tests/test_gpu_engine.py; a thread shares nothing with its block, so no row changes).
+        gputrace.THREADS_PER_BLOCK = 1
     device = gpu.cuda.get_current_device()
     name = getattr(device, "name", "the CUDA simulator")
     report(f"device: {name.decode() if isinstance(name, bytes) else name}, "
