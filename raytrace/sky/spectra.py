@@ -152,9 +152,10 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
     flat = ~(spread > FLAT_LEVEL * np.abs(mean))
     spectra = {name: np.zeros((lmax + 1, sky.mass_eV.size)) for name in ("cross", "auto_a", "auto_b")}
     split = [sky.split_columns(part) for part in (0, 1)]
+    centre = np.zeros((2, sky.mass_eV.size))  # the split maps' means, kept for their moments (flat masses: unused)
     for k in np.flatnonzero(~flat):
         # One split's map at a time (with healpy's work arrays, a few maps), then its alm (lmax^2 / 2 complex).
-        alm_a, alm_b = (healpy.map2alm(ring(_centred(columns.column(k))), lmax=lmax, iter=3) for columns in split)
+        alm_a, alm_b = (_centred_alm(columns, part, k, centre, ring, lmax) for part, columns in enumerate(split))
         for name, (one, two) in (("cross", (alm_a, alm_b)), ("auto_a", (alm_a, alm_a)), ("auto_b", (alm_b, alm_b))):
             spectra[name][:, k] = healpy.alm2cl(one, two, lmax=lmax) / window2
     # C_l is bilinear and symmetric in the alm of real maps, so the map (n_a A + n_b B) / N and the difference
@@ -162,27 +163,33 @@ def sky_spectra(sky, lmax=None, n_resamples=N_RESAMPLES, seed=None, level=LEVEL)
     spectra["full"] = (n_a**2 * spectra["auto_a"] + n_b**2 * spectra["auto_b"]
                        + 2 * n_a * n_b * spectra["cross"]) / total**2
     spectra["noise"] = n_a * n_b * (spectra["auto_a"] + spectra["auto_b"] - 2 * spectra["cross"]) / total**2
-    moments = _split_moments(sky, flat, n_resamples, seed, level)
+    moments = _split_moments(split, centre, sky.split_rays, flat, n_resamples, seed, level)
     return SkySpectra(sky.mass_eV, sky.nside, int(total), (n_a, n_b), np.sqrt(window2), mean, **spectra, **moments,
                       flat=flat, n_resamples=int(n_resamples), level=float(level), seed=int(seed))
 
 
-def _centred(values):
-    return values - values.mean()
+def _centred_alm(columns, part, k, centre, ring, lmax):
+    """The alm of split ``part``'s map of mass ``k`` less its mean, which goes to ``centre[part, k]``."""
+    import healpy
+
+    values = columns.column(k)
+    centre[part, k] = values.mean()
+    centred = values - centre[part, k]
+    del values  # healpy's transform holds a few maps of its own
+    return healpy.map2alm(ring(centred), lmax=lmax, iter=3)
 
 
-def _split_moments(sky, flat, n_resamples, seed, level):
-    """Per mass: the covariance over pixels of the two split maps (the signal variance) with its bootstrap
-    error and interval, and the variance of the difference map (the noise) with its bootstrap error. The
-    maps are read a block of pixels at a time, every mass at once, so each resample is drawn once for all
-    masses (:func:`raytrace.statistics.spread.resample_blocks`) and memory holds a block, whatever nside."""
-    n_a, n_b = sky.split_rays
+def _split_moments(split, centre, split_rays, flat, n_resamples, seed, level):
+    """Per mass: the covariance over pixels of the two split maps (``split``, as columns; ``centre``: their
+    means) with its bootstrap error and interval (the signal variance), and the variance of the difference map
+    (the noise) with its bootstrap error. The maps are read a block of pixels at a time, every mass at once,
+    so each resample is drawn once for all masses (:func:`raytrace.statistics.spread.resample_blocks`) and
+    memory holds a block, whatever nside. Flat masses' values are 0."""
+    n_a, n_b = split_rays
     scale = math.sqrt(n_a * n_b) / (n_a + n_b)
-    split = [sky.split_columns(part) for part in (0, 1)]
-    centre = [columns.each(np.mean) for columns in split]
-    n = sky.npix
-    sums = {name: np.zeros((n_resamples, sky.mass_eV.size)) for name in ("ab", "a", "b", "dd", "d")}
-    totals = {name: np.zeros(sky.mass_eV.size) for name in ("ab", "dd")}
+    n, n_masses = split[0].n_rows, split[0].n_columns
+    sums = {name: np.zeros((n_resamples, n_masses)) for name in ("ab", "a", "b", "dd", "d")}
+    totals = {name: np.zeros(n_masses) for name in ("ab", "dd")}
     for start, stop, weights in resample_blocks(n, n_resamples, seed):
         a, b = (columns.block(start, stop) - middle for columns, middle in zip(split, centre))
         d = (a - b) * scale
